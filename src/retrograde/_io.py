@@ -1,0 +1,62 @@
+"""Atomic file writing: write to a temporary sibling, then rename.
+
+Nothing half-written is ever left at the destination path.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import os
+import shutil
+import tempfile
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+__all__ = ["atomic_dir", "atomic_write_bytes", "atomic_write_json", "atomic_write_text"]
+
+
+def atomic_write_bytes(path: str | os.PathLike[str], data: bytes) -> None:
+    """Write ``data`` to ``path`` via a temporary file in the same folder and a rename."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as handle:
+            handle.write(data)
+        os.replace(tmp, path)
+    except BaseException:
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(tmp)
+        raise
+
+
+def atomic_write_text(path: str | os.PathLike[str], text: str) -> None:
+    atomic_write_bytes(path, text.encode("utf-8"))
+
+
+def atomic_write_json(path: str | os.PathLike[str], obj: Any) -> None:
+    """Deterministic JSON: sorted keys, two-space indent, trailing newline."""
+    atomic_write_text(path, json.dumps(obj, indent=2, sort_keys=True, allow_nan=False) + "\n")
+
+
+@contextlib.contextmanager
+def atomic_dir(path: str | os.PathLike[str]) -> Iterator[Path]:
+    """Yield a temporary folder; on success it replaces ``path`` whole, on failure it is removed."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent))
+    try:
+        yield tmp
+        if path.exists():
+            old = path.with_name(f".{path.name}.old")
+            shutil.rmtree(old, ignore_errors=True)
+            os.replace(path, old)
+            os.replace(tmp, path)
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            os.replace(tmp, path)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise

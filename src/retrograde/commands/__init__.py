@@ -1,0 +1,1 @@
+"""One module per CLI command: ``configure(parser)`` and ``run(args) -> int``."""

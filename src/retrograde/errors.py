@@ -1,0 +1,52 @@
+"""User-facing exceptions.
+
+Every exception a user can act on derives from :class:`RetrogradeError`. Its ``str`` is one
+line: what is wrong, where (file, key, unit), and how to fix it. The CLI prints it and exits
+with status 2; a traceback appears only with ``--debug``.
+"""
+
+from __future__ import annotations
+
+__all__ = [
+    "BijectionError",
+    "ConfigError",
+    "DataError",
+    "FitError",
+    "HostRepoError",
+    "MissingDependencyError",
+    "RetrogradeError",
+]
+
+
+class RetrogradeError(Exception):
+    """A mistake the user can fix; printed as one line, exit status 2."""
+
+    exit_status = 2
+
+    def __str__(self) -> str:
+        # Collapse accidental newlines so the message stays on one line.
+        return " ".join(super().__str__().split())
+
+
+class ConfigError(RetrogradeError):
+    """A config key, value or command-line option is invalid."""
+
+
+class DataError(RetrogradeError):
+    """Input data is missing, empty, malformed or inconsistent."""
+
+
+class BijectionError(DataError):
+    """An order transform failed to round-trip a unit."""
+
+
+class FitError(RetrogradeError):
+    """A model fit or an external trainer failed."""
+
+
+class HostRepoError(RetrogradeError):
+    """The host repository is not in a state the plug-in can work with."""
+
+
+class MissingDependencyError(RetrogradeError):
+    """An optional dependency is not installed."""

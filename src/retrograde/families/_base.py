@@ -1,0 +1,125 @@
+"""The contract every model family follows.
+
+A family is configured by keyword-only parameters stored unchanged in ``__init__`` and
+checked in ``_validate_params`` (called first thing in ``fit``). ``fit`` learns state whose
+attribute names end in ``_`` and returns ``self``. A fitted model scores units: for every
+unit, one natural-log probability per token **plus one for the end-of-unit marker**, each
+under a distribution over ``vocab_size + 1`` outcomes (every token id, unknown token
+included, and the end marker, which is outcome ``vocab_size``). A unit is scored with no
+context beyond its own earlier tokens.
+
+Saving writes ``family.json`` (name, params, vocab size, learning curve) and ``state.npz``
+(arrays only, loaded with ``allow_pickle=False``). Families with other weight formats
+override ``_save_state`` / ``_load_state``.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from abc import ABC, abstractmethod
+from collections.abc import Sequence
+from pathlib import Path
+from typing import Any, ClassVar
+
+import numpy as np
+
+from .._io import atomic_dir
+from ..errors import DataError, FitError
+from ..sequences import Ragged, SequenceSet
+
+__all__ = ["Family", "FAMILY_FORMAT"]
+
+FAMILY_FORMAT = "retrograde.family/1"
+
+
+class Family(ABC):
+    """Base class of every model family (an estimator in scikit-learn's sense)."""
+
+    #: registry name, set by each subclass
+    name: ClassVar[str] = ""
+
+    def __init__(self, **params: Any) -> None:
+        self._params = dict(params)
+        for key, value in params.items():
+            setattr(self, key, value)
+
+    # ----------------------------------------------------------------- parameters
+    def get_params(self) -> dict[str, Any]:
+        """The keyword parameters this family was built with (JSON-able)."""
+        return dict(self._params)
+
+    def _validate_params(self) -> None:  # noqa: B027 (optional hook, not abstract)
+        """Raise ConfigError naming the parameter, the value and what is allowed."""
+
+    # ------------------------------------------------------------------- learning
+    @abstractmethod
+    def fit(self, train: SequenceSet, valid: SequenceSet | None = None, seed: int = 0) -> Family:
+        """Learn from ``train`` (``valid`` for early stopping); deterministic for ``seed``."""
+
+    @abstractmethod
+    def logprobs(self, units: SequenceSet) -> Ragged:
+        """Per-position natural-log probabilities: row i has ``len(units[i]) + 1`` values."""
+
+    @abstractmethod
+    def next_token_probs(self, contexts: Sequence[np.ndarray]) -> np.ndarray:
+        """(n_contexts, vocab_size + 1) full next-outcome distributions after each context."""
+
+    #: validation curve; one dict per epoch: {"epoch": int, "valid_bits_per_token": float, ...}
+    learning_curve_: list[dict[str, float]]
+
+    @property
+    def vocab_size(self) -> int:
+        """Token ids the model covers (the end marker is the extra outcome ``vocab_size``)."""
+        self._check_fitted()
+        return int(self.vocab_size_)
+
+    vocab_size_: int
+
+    def _check_fitted(self) -> None:
+        if not hasattr(self, "vocab_size_"):
+            raise FitError(f"family {self.name!r}: call fit() before scoring")
+
+    def _check_units(self, units: SequenceSet) -> None:
+        if len(units.tokens) and int(units.tokens.max()) >= self.vocab_size:
+            raise DataError(
+                f"family {self.name!r}: token id {int(units.tokens.max())} is outside the "
+                f"fitted vocabulary of {self.vocab_size}; units and model must share one vocabulary"
+            )
+
+    # --------------------------------------------------------------- persistence
+    def _get_state(self) -> dict[str, np.ndarray]:
+        """Arrays that, with the params, reconstruct the fitted model."""
+        raise NotImplementedError
+
+    def _set_state(self, state: dict[str, np.ndarray]) -> None:
+        raise NotImplementedError
+
+    def _save_state(self, folder: Path) -> None:
+        np.savez(folder / "state.npz", **self._get_state())  # type: ignore[arg-type]
+
+    def _load_state(self, folder: Path) -> None:
+        with np.load(folder / "state.npz", allow_pickle=False) as data:
+            self._set_state({key: data[key] for key in data.files})
+
+    def save(self, folder: str | os.PathLike[str]) -> None:
+        """Write the fitted model to ``folder`` (atomically; no pickle)."""
+        self._check_fitted()
+        with atomic_dir(folder) as tmp:
+            meta = {
+                "format": FAMILY_FORMAT,
+                "family": self.name,
+                "params": self.get_params(),
+                "vocab_size": int(self.vocab_size_),
+                "learning_curve": getattr(self, "learning_curve_", []),
+            }
+            (tmp / "family.json").write_text(json.dumps(meta, indent=2, sort_keys=True) + "\n")
+            self._save_state(tmp)
+
+    @classmethod
+    def _from_saved(cls, folder: Path, meta: dict[str, Any]) -> Family:
+        model = cls(**meta["params"])
+        model.vocab_size_ = int(meta["vocab_size"])
+        model.learning_curve_ = list(meta.get("learning_curve", []))
+        model._load_state(folder)
+        return model

@@ -1,0 +1,1 @@
+"""Imports the built-in families so they register."""

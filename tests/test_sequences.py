@@ -1,0 +1,60 @@
+"""SequenceSet and Ragged: construction, indexing, folder format."""
+
+import json
+
+import numpy as np
+import pytest
+
+from retrograde import Ragged, SequenceSet
+from retrograde.errors import DataError
+
+
+def test_from_list_indexes_rows_in_order():
+    s = SequenceSet.from_list([[1, 2, 3], [], [4]], vocab_size=5)
+    assert len(s) == 3
+    assert s[0].tolist() == [1, 2, 3]
+    assert s[1].tolist() == []
+    assert s[-1].tolist() == [4]
+    assert s.lengths.tolist() == [3, 0, 1]
+    assert s.offsets.tolist() == [0, 3, 3, 4]
+
+
+def test_token_ids_outside_vocabulary_are_refused():
+    with pytest.raises(ValueError, match="token ids"):
+        SequenceSet.from_list([[1, 7]], vocab_size=5)
+
+
+def test_save_load_round_trip_with_metadata_and_mmap(tmp_path):
+    s = SequenceSet.from_list([[1, 2], [3, 4, 0]], vocab_size=5, doc_ids=[0, 0], n_bytes=[2, 3])
+    s.save(tmp_path / "set")
+    meta = json.loads((tmp_path / "set" / "meta.json").read_text())
+    assert meta == {
+        "format": "retrograde.sequences/1",
+        "vocab_size": 5,
+        "n_units": 2,
+        "n_tokens": 5,
+    }
+    loaded = SequenceSet.load(tmp_path / "set", mmap=True)
+    assert not loaded.tokens.flags.owndata  # a view of the memory map, not a copy
+    assert [u.tolist() for u in loaded] == [[1, 2], [3, 4, 0]]
+    assert loaded.doc_ids.tolist() == [0, 0] and loaded.n_bytes.tolist() == [2, 3]
+    assert loaded.vocab_size == 5
+
+
+def test_load_of_a_folder_without_meta_is_a_data_error(tmp_path):
+    with pytest.raises(DataError, match="meta.json"):
+        SequenceSet.load(tmp_path)
+
+
+def test_subset_keeps_metadata():
+    s = SequenceSet.from_list([[1], [2, 2], [3, 3, 3]], vocab_size=4, doc_ids=[7, 8, 9])
+    sub = s.subset(np.array([2, 0]))
+    assert [u.tolist() for u in sub] == [[3, 3, 3], [1]]
+    assert sub.doc_ids.tolist() == [9, 7]
+
+
+def test_ragged_sums_positions_and_row_ids():
+    r = Ragged.from_list([[1.0, 2.0], [], [3.0]])
+    assert r.sums().tolist() == [3.0, 0.0, 3.0]
+    assert r.positions().tolist() == [0, 1, 0]
+    assert r.row_ids().tolist() == [0, 0, 2]
