@@ -1,0 +1,69 @@
+"""Real git + DVC host repositories in temporary folders, for the host-integration tests.
+
+Creating a repository costs a few DVC calls (about a second each), so one template per
+test process is built once and each test gets a copy of it.
+"""
+
+from __future__ import annotations
+
+import atexit
+import functools
+import shutil
+import subprocess
+import sys
+import tempfile
+from pathlib import Path
+
+DVC = [sys.executable, "-m", "dvc"]
+
+
+def sh(argv: list[str], cwd: Path) -> str:
+    """Run a command (argument list), fail the test with its output if it fails."""
+    result = subprocess.run(argv, cwd=cwd, capture_output=True, text=True, check=False)
+    assert result.returncode == 0, f"{argv} failed:\n{result.stdout}\n{result.stderr}"
+    return result.stdout
+
+
+def git_init(folder: Path) -> None:
+    folder.mkdir(parents=True, exist_ok=True)
+    sh(["git", "init", "-q", "-b", "main"], folder)
+    sh(["git", "config", "user.email", "tests@localhost"], folder)
+    sh(["git", "config", "user.name", "retrograde tests"], folder)
+    sh(["git", "config", "commit.gpgsign", "false"], folder)
+
+
+def dvc_init(folder: Path, *extra: str) -> None:
+    sh([*DVC, "init", "-q", *extra], folder)
+    sh([*DVC, "config", "core.analytics", "false"], folder)
+    sh([*DVC, "config", "core.check_update", "false"], folder)
+
+
+@functools.cache
+def _template(with_dvc: bool) -> Path:
+    root = Path(tempfile.mkdtemp(prefix="retrograde-host-template-"))
+    atexit.register(shutil.rmtree, root, True)
+    host = root / "host"
+    git_init(host)
+    (host / "README.md").write_text("# a host project\n")
+    (host / ".gitignore").write_text("*.pyc\n")
+    if with_dvc:
+        dvc_init(host)
+    sh(["git", "add", "-A"], host)
+    sh(["git", "commit", "-q", "-m", "host project"], host)
+    return host
+
+
+def new_host(dest: Path, *, with_dvc: bool = True) -> Path:
+    """A fresh committed git repository at ``dest`` (with DVC initialised unless told not)."""
+    shutil.copytree(_template(with_dvc), dest, symlinks=True)
+    return dest
+
+
+def snapshot(folder: Path) -> dict[str, bytes]:
+    """Every file below ``folder`` (except git internals and DVC's scratch) with its bytes."""
+    skip = (".git/", ".dvc/tmp/")
+    return {
+        path.relative_to(folder).as_posix(): path.read_bytes()
+        for path in sorted(folder.rglob("*"))
+        if path.is_file() and not path.relative_to(folder).as_posix().startswith(skip)
+    }
