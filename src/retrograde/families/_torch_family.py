@@ -1,0 +1,331 @@
+"""Base class of the PyTorch families: the training loop, scoring, saving.
+
+Subclasses (``gru``, ``lstm``, ``transformer``) declare their network parameters, check them
+in ``_validate_network`` and build the network in ``_build_network``. Everything else —
+AdamW with warm-up and cosine decay, gradient clipping, early stopping, the token budget,
+threads, bf16 autocast and the window scheme of :mod:`._torch_common` — lives here.
+"""
+
+from __future__ import annotations
+
+import copy
+import math
+import time
+from collections.abc import Iterator, Sequence
+from pathlib import Path
+from types import ModuleType
+from typing import Any
+
+import numpy as np
+from tqdm import tqdm
+
+from .._validation import check_float, check_int, invalid
+from ..errors import DataError
+from ..sequences import Ragged, SequenceSet
+from ._base import Family
+from ._torch_common import (
+    Stream,
+    Windows,
+    batches,
+    check_threads_and_bf16,
+    import_torch,
+    learning_rate,
+    make_stream,
+    make_windows,
+    prediction_windows,
+    torch_session,
+)
+
+__all__ = ["TRAINING_DEFAULTS", "TorchFamily"]
+
+#: training parameters shared by every torch family, with their defaults
+TRAINING_DEFAULTS: dict[str, Any] = {
+    "context": 128,  # positions a network sees at once
+    "stride": None,  # scoring stride in positions; None means context // 2
+    "batch_size": 32,  # windows per optimizer step
+    "epochs": 20,  # most passes over the training windows (ignored with token_budget)
+    "lr": 3e-3,  # peak learning rate
+    "weight_decay": 0.01,
+    "warmup": 0.05,  # fraction of the planned steps spent warming up
+    "min_lr_ratio": 0.1,  # cosine decay ends at min_lr_ratio * lr
+    "grad_clip": 1.0,  # largest global gradient norm
+    "patience": 3,  # epochs without validation gain before stopping; 0 never stops
+    "token_budget": None,  # train on exactly this many target positions
+    "threads": 1,
+    "bf16": False,
+    "progress": True,  # tqdm bar on a terminal, with tokens/s
+}
+
+# Scoring batches are capped so a batch's logits stay near 2**24 numbers (128 MB as float64).
+_LOGIT_BUDGET = 2**24
+
+
+class TorchFamily(Family):
+    """A Family whose network is a causal PyTorch module (see :mod:`._torch_common`)."""
+
+    # training parameters (set by Family.__init__ from the subclass's keyword arguments)
+    context: int
+    stride: int | None
+    batch_size: int
+    epochs: int
+    lr: float
+    weight_decay: float
+    warmup: float
+    min_lr_ratio: float
+    grad_clip: float
+    patience: int
+    token_budget: int | None
+    threads: int
+    bf16: bool
+    progress: bool
+
+    def __init__(self, **params: Any) -> None:
+        import_torch(self.name)  # fail at construction, with the install hint
+        super().__init__(**params)
+
+    # ------------------------------------------------------------------ parameters
+    def _validate_params(self) -> None:
+        owner = f"family {self.name!r}"
+        p = self.get_params()
+        context = check_int(owner, "context", p["context"], 1)
+        if p["stride"] is not None:
+            check_int(owner, "stride", p["stride"], 1, context)
+        check_int(owner, "batch_size", p["batch_size"], 1)
+        check_int(owner, "epochs", p["epochs"], 1)
+        check_float(owner, "lr", p["lr"], 0.0, low_open=True)
+        check_float(owner, "weight_decay", p["weight_decay"], 0.0)
+        check_float(owner, "warmup", p["warmup"], 0.0, 1.0, high_open=True)
+        check_float(owner, "min_lr_ratio", p["min_lr_ratio"], 0.0, 1.0)
+        check_float(owner, "grad_clip", p["grad_clip"], 0.0, low_open=True)
+        check_int(owner, "patience", p["patience"], 0)
+        if p["token_budget"] is not None:
+            check_int(owner, "token_budget", p["token_budget"], 1)
+        check_int(owner, "threads", p["threads"], 1)
+        for key in ("bf16", "progress"):
+            if not isinstance(p[key], bool):
+                raise invalid(owner, key, p[key], "True or False")
+        check_threads_and_bf16(import_torch(self.name), owner, p["bf16"])
+        self._validate_network(owner, p)
+
+    def _validate_network(self, owner: str, params: dict[str, Any]) -> None:
+        raise NotImplementedError
+
+    def _build_network(self, torch: ModuleType, vocab_size: int) -> Any:
+        raise NotImplementedError
+
+    @property
+    def _stride(self) -> int:
+        stride = self.get_params()["stride"]
+        return int(stride) if stride is not None else max(1, int(self.context) // 2)
+
+    # -------------------------------------------------------------------- training
+    def fit(
+        self, train: SequenceSet, valid: SequenceSet | None = None, seed: int = 0
+    ) -> TorchFamily:
+        self._validate_params()
+        torch = import_torch(self.name)
+        if len(train) == 0:
+            raise DataError(f"family {self.name!r}: the training split has no units")
+        self.vocab_size_ = max(
+            train.effective_vocab_size(), 0 if valid is None else valid.effective_vocab_size()
+        )
+        if valid is not None and len(valid) == 0:
+            valid = None
+        with torch_session(torch, threads=int(self.threads), seed=int(seed)):
+            self.network_ = self._build_network(torch, self.vocab_size_)
+            self._train(torch, train, valid, np.random.default_rng(seed))
+        return self
+
+    def _train(
+        self,
+        torch: ModuleType,
+        train: SequenceSet,
+        valid: SequenceSet | None,
+        rng: np.random.Generator,
+    ) -> None:
+        stream = make_stream(train, self.vocab_size_)
+        windows = make_windows(
+            np.diff(stream.offsets), context=int(self.context), stride=int(self.context)
+        )
+        steps_per_epoch = math.ceil(len(windows) / int(self.batch_size))
+        budget = self.token_budget
+        if budget is None:
+            total_steps, max_epochs = int(self.epochs) * steps_per_epoch, int(self.epochs)
+        else:
+            # Forward and reverse splits have the same window lengths, hence the same plan.
+            epochs_needed = budget / stream.n_positions
+            total_steps, max_epochs = (
+                math.ceil(epochs_needed * steps_per_epoch),
+                math.ceil(epochs_needed),
+            )
+        warmup_steps = round(float(self.warmup) * total_steps)
+        network = self.network_
+        optimizer = torch.optim.AdamW(
+            network.parameters(), lr=float(self.lr), weight_decay=float(self.weight_decay)
+        )
+        self.learning_curve_ = []
+        best_valid, best_state, stale_epochs, step, tokens_seen = math.inf, None, 0, 0, 0
+        started = time.perf_counter()
+        bar = tqdm(
+            total=budget or max_epochs * stream.n_positions,
+            unit="tok",
+            unit_scale=True,
+            desc=f"{self.name} fit",
+            disable=None if self.progress else True,
+        )
+        for epoch in range(1, max_epochs + 1):
+            network.train()
+            order = rng.permutation(len(windows))
+            epoch_nats, epoch_positions = 0.0, 0
+            for first in range(0, len(order), int(self.batch_size)):
+                inputs, targets, _, owned = batches(
+                    stream, windows, order[first : first + int(self.batch_size)]
+                )
+                if budget is not None and tokens_seen + int(owned.sum()) > budget:
+                    # Keep exactly the positions the budget has left, in row-major order.
+                    owned &= np.cumsum(owned).reshape(owned.shape) <= budget - tokens_seen
+                step += 1
+                for group in optimizer.param_groups:
+                    group["lr"] = learning_rate(
+                        step,
+                        total_steps=total_steps,
+                        peak=float(self.lr),
+                        warmup_steps=warmup_steps,
+                        min_ratio=float(self.min_lr_ratio),
+                    )
+                nats = self._train_step(torch, optimizer, inputs, targets, owned)
+                n_owned = int(owned.sum())
+                epoch_nats, epoch_positions, tokens_seen = (
+                    epoch_nats + nats,
+                    epoch_positions + n_owned,
+                    tokens_seen + n_owned,
+                )
+                bar.update(n_owned)
+                if budget is not None and tokens_seen >= budget:
+                    break
+            record = {
+                "epoch": epoch,
+                "train_nats_per_position": epoch_nats / max(epoch_positions, 1),
+                "tokens_seen": tokens_seen,
+                "lr": optimizer.param_groups[0]["lr"],
+            }
+            if valid is not None:
+                valid_bits = self._bits_per_token(valid)
+                record["valid_bits_per_token"] = valid_bits
+                bar.set_postfix(valid_bits_per_token=f"{valid_bits:.4f}")
+                if valid_bits < best_valid:
+                    best_valid, best_state, stale_epochs = (
+                        valid_bits,
+                        copy.deepcopy(network.state_dict()),
+                        0,
+                    )
+                else:
+                    stale_epochs += 1
+            self.learning_curve_.append(record)
+            if budget is not None and tokens_seen >= budget:
+                break
+            # Early stopping would end runs after unequal compute, so a budget disables it.
+            if budget is None and int(self.patience) and stale_epochs >= int(self.patience):
+                break
+        bar.close()
+        if best_state is not None:
+            network.load_state_dict(best_state)
+        # Wall-clock figures stay out of learning_curve_, which must be deterministic.
+        self.fit_seconds_ = time.perf_counter() - started
+        self.tokens_per_second_ = tokens_seen / max(self.fit_seconds_, 1e-9)
+        self.tokens_seen_ = tokens_seen
+
+    def _train_step(
+        self,
+        torch: ModuleType,
+        optimizer: Any,
+        inputs: np.ndarray,
+        targets: np.ndarray,
+        owned: np.ndarray,
+    ) -> float:
+        """One AdamW step on the owned positions; returns their summed loss in nats."""
+        n_owned = int(owned.sum())
+        if n_owned == 0:
+            return 0.0
+        masked_targets = torch.from_numpy(np.where(owned, targets, -100))  # -100: ignored
+        with torch.autocast("cpu", dtype=torch.bfloat16, enabled=bool(self.bf16)):
+            logits = self.network_(torch.from_numpy(inputs))  # (batch, time, vocab_size + 1)
+        total = torch.nn.functional.cross_entropy(
+            logits.float().flatten(0, 1),
+            masked_targets.flatten(),
+            ignore_index=-100,
+            reduction="sum",
+        )
+        optimizer.zero_grad(set_to_none=True)
+        (total / n_owned).backward()
+        torch.nn.utils.clip_grad_norm_(self.network_.parameters(), float(self.grad_clip))
+        optimizer.step()
+        return float(total.detach())
+
+    def _bits_per_token(self, units: SequenceSet) -> float:
+        total_nats = -float(self.logprobs(units).values.sum())
+        return total_nats / math.log(2) / max(len(units.tokens), 1)
+
+    # --------------------------------------------------------------------- scoring
+    def _forward_windows(
+        self, stream: Stream, windows: Windows
+    ) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray]]:
+        """Yield (flat positions, owned mask, float64 log-softmax of owned outputs) per batch.
+
+        Always float32 without autocast: bf16 only ever affects training.
+        """
+        torch = import_torch(self.name)
+        network = self.network_
+        network.eval()
+        order = np.argsort(-windows.length, kind="stable")  # similar lengths share a batch
+        longest = int(windows.length.max()) if len(windows) else 1
+        batch_size = max(
+            1, min(int(self.batch_size), _LOGIT_BUDGET // (longest * (self.vocab_size_ + 1)))
+        )
+        with torch.no_grad():
+            for first in range(0, len(order), batch_size):
+                inputs, _, flat, owned = batches(stream, windows, order[first : first + batch_size])
+                logits = network(torch.from_numpy(inputs))  # (batch, time, vocab_size + 1)
+                owned_logits = logits[torch.from_numpy(owned)].double()  # (n_owned, vocab_size + 1)
+                yield flat[owned], owned, owned_logits.log_softmax(-1).numpy()
+
+    def logprobs(self, units: SequenceSet) -> Ragged:
+        self._check_fitted()
+        self._check_units(units)
+        torch = import_torch(self.name)
+        stream = make_stream(units, self.vocab_size_)
+        windows = make_windows(
+            np.diff(stream.offsets), context=int(self.context), stride=self._stride
+        )
+        values = np.zeros(stream.n_positions, dtype=np.float64)
+        with torch_session(torch, threads=int(self.threads), seed=0):
+            for positions, _, log_softmax in self._forward_windows(stream, windows):
+                values[positions] = log_softmax[
+                    np.arange(len(positions)), stream.targets[positions]
+                ]
+        return Ragged(values, stream.offsets)
+
+    def next_token_probs(self, contexts: Sequence[np.ndarray]) -> np.ndarray:
+        self._check_fitted()
+        units = SequenceSet.from_list(list(contexts), vocab_size=self.vocab_size_)
+        self._check_units(units)
+        torch = import_torch(self.name)
+        stream = make_stream(units, self.vocab_size_)
+        windows = prediction_windows(units.lengths, context=int(self.context), stride=self._stride)
+        probs = np.zeros((len(units), self.vocab_size_ + 1), dtype=np.float64)
+        unit_of_position = np.repeat(np.arange(len(units)), np.diff(stream.offsets))
+        with torch_session(torch, threads=int(self.threads), seed=0):
+            for positions, _, log_softmax in self._forward_windows(stream, windows):
+                probs[unit_of_position[positions]] = np.exp(log_softmax)
+        return probs / probs.sum(axis=1, keepdims=True)
+
+    # ------------------------------------------------------------------ persistence
+    def _save_state(self, folder: Path) -> None:
+        import_torch(self.name).save(self.network_.state_dict(), folder / "weights.pt")
+
+    def _load_state(self, folder: Path) -> None:
+        torch = import_torch(self.name)
+        with torch_session(torch, threads=int(self.threads), seed=0):  # leaves the global RNG alone
+            self.network_ = self._build_network(torch, self.vocab_size_)
+        state = torch.load(folder / "weights.pt", map_location="cpu", weights_only=True)
+        self.network_.load_state_dict(state)
