@@ -1,0 +1,140 @@
+"""Run independent DVC stages as parallel ``dvc repro -s`` processes.
+
+This is not a scheduler: DVC decides what is stale and records every result, and this module
+only starts at most ``jobs`` DVC processes at a time, one stage each. The caller passes
+stages that do not depend on each other (the ``fit`` cells) after their inputs are up to
+date (``-s`` reproduces a single stage and does not look upstream), and runs the remaining
+stages with one ordinary ``dvc repro`` afterwards.
+
+Facts measured with DVC 3.67.1 (twelve one-second stages started at once): without
+``--wait-for-lock`` two of twelve processes failed with "Unable to acquire lock", because
+DVC holds its repository lock while it checks and records a stage (its retries give up
+after about 3 s); with ``--wait-for-lock`` all twelve succeeded and ``dvc.lock`` held all
+twelve entries. DVC releases that lock while the stage command runs, so the commands
+themselves overlap. Entries in ``dvc.lock`` appear in completion order, so the lock file's
+byte layout (not its content) can differ between runs with different ``jobs``.
+"""
+
+from __future__ import annotations
+
+import re
+from concurrent.futures import FIRST_COMPLETED, Future, ThreadPoolExecutor, wait
+from pathlib import Path
+from subprocess import CompletedProcess
+
+from tqdm import tqdm
+
+from ._validation import check_int
+from .errors import FitError
+from .hostrepo import PIPELINE_DIR, HostRepo, dvc_argv, last_error_line, run_tool
+
+__all__ = ["LOG_DIR", "log_path_for", "repro_argv", "run_stages_in_parallel"]
+
+#: Per-stage logs of parallel runs, relative to the host root (git-ignored by ``init``).
+LOG_DIR = PIPELINE_DIR / "logs"
+
+_UNSAFE_FILE_CHARS = re.compile(r"[^A-Za-z0-9@._=+-]")
+
+
+def log_path_for(host: Path, stage_name: str) -> Path:
+    """The log file of one stage: ``pipelines/retrograde/logs/<stage>.log``.
+
+    Examples
+    --------
+    >>> log_path_for(Path("/repo"), "fit@demo-ngram-forward-0").as_posix()
+    '/repo/pipelines/retrograde/logs/fit@demo-ngram-forward-0.log'
+    >>> log_path_for(Path("/repo"), "other/dvc.yaml:train").name
+    'other_dvc.yaml_train.log'
+    """
+    return Path(host) / LOG_DIR / f"{_UNSAFE_FILE_CHARS.sub('_', stage_name)}.log"
+
+
+def repro_argv(target: str, *, pull: bool = False) -> list[str]:
+    """DVC arguments that reproduce one stage alone, waiting for DVC's repository lock.
+
+    Examples
+    --------
+    >>> repro_argv("pipelines/retrograde/dvc.yaml:fit@a", pull=True)
+    ['--wait-for-lock', 'repro', '--single-item', '--pull', 'pipelines/retrograde/dvc.yaml:fit@a']
+    """
+    return ["--wait-for-lock", "repro", "--single-item", *(["--pull"] if pull else []), target]
+
+
+def run_stages_in_parallel(
+    host: Path, stage_names: list[str], jobs: int, *, pull: bool = False
+) -> None:
+    """Reproduce each stage with its own ``dvc repro -s`` process, at most ``jobs`` at once.
+
+    Parameters
+    ----------
+    host : Path
+        Host repository root (the folder holding ``.dvc/``).
+    stage_names : list of str
+        Stages of ``pipelines/retrograde/dvc.yaml`` (``fit@...``) or qualified targets
+        (``path/dvc.yaml:name``). They must not depend on each other, and their inputs must
+        be up to date. Duplicates are run once.
+    jobs : int
+        Most DVC processes running at the same time (>= 1).
+    pull : bool
+        Pass ``--pull`` so DVC fetches missing inputs and run-cache entries from the remote.
+
+    Raises
+    ------
+    FitError
+        When any stage fails. After the first failure no new stage starts; those already
+        running finish (and are recorded by DVC). The one-line message names the first
+        failed stage in the given order and its log file under ``pipelines/retrograde/logs/``.
+    ConfigError
+        When ``jobs`` is not a positive integer.
+    """
+    jobs = check_int("option 'run'", "jobs", jobs, low=1)
+    host = Path(host)
+    repo = HostRepo(root=host, git_root=host)
+    names = list(dict.fromkeys(stage_names))  # drop duplicates, keep the order
+    if not names:
+        return
+    results: dict[str, CompletedProcess[str]] = {}
+    with (
+        ThreadPoolExecutor(max_workers=jobs) as pool,
+        tqdm(total=len(names), desc="fit stages", unit="stage", disable=None) as progress,
+    ):
+        pending: dict[Future[CompletedProcess[str]], str] = {}
+        queue = iter(names)
+        failed = False
+        while True:
+            # Keep `jobs` processes busy until the queue is empty or something failed.
+            while not failed and len(pending) < jobs:
+                name = next(queue, None)
+                if name is None:
+                    break
+                pending[pool.submit(_repro_one, repo, name, pull)] = name
+            if not pending:
+                break
+            done, _ = wait(pending, return_when=FIRST_COMPLETED)
+            for future in done:
+                name = pending.pop(future)
+                results[name] = future.result()
+                failed = failed or results[name].returncode != 0
+                progress.update(1)
+    failures = [name for name in names if name in results and results[name].returncode != 0]
+    if failures:
+        first = failures[0]
+        result = results[first]
+        reason = last_error_line(f"{result.stdout}\n{result.stderr}")
+        not_started = len(names) - len(results)
+        raise FitError(
+            f"stage {first!r} failed with exit status {result.returncode} "
+            f"({len(failures)} of {len(results)} finished stages failed, "
+            f"{not_started} not started): {reason}; see {log_path_for(host, first)}"
+        )
+
+
+def _repro_one(repo: HostRepo, name: str, pull: bool) -> CompletedProcess[str]:
+    """One ``dvc repro -s`` process; stdout and stderr go to the stage's log file."""
+    return run_tool(
+        [*dvc_argv(), *repro_argv(repo.target(name), pull=pull)],
+        cwd=repo.root,
+        check=False,
+        log_path=log_path_for(repo.root, name),
+        display=["dvc", *repro_argv(repo.target(name), pull=pull)],
+    )

@@ -1,0 +1,129 @@
+"""parallel: independent stages as concurrent `dvc repro -s` processes (real git + DVC)."""
+
+from __future__ import annotations
+
+import textwrap
+from pathlib import Path
+
+import pytest
+import yaml
+
+from _host_fixtures import DVC, new_host, sh
+from retrograde.errors import ConfigError, FitError
+from retrograde.parallel import log_path_for, run_stages_in_parallel
+
+pytestmark = pytest.mark.dvc
+
+# Each cell sleeps, records when it ran (outside DVC's graph, in ../../trace) and writes a
+# deterministic output. `boom` exits 3 to stand in for a failing fit.
+STAGE_FILE = textwrap.dedent(
+    """\
+    stages:
+      fit:
+        matrix:
+          cell: [a, b, c, d]
+        cmd: >-
+          python -c "import time, pathlib;
+          start = time.time(); time.sleep(1.0);
+          pathlib.Path('../../trace').mkdir(exist_ok=True);
+          pathlib.Path('../../trace/${item.cell}').write_text(f'{start} {time.time()}');
+          pathlib.Path('out-${item.cell}.txt').write_text('cell ${item.cell}')"
+        outs:
+          - out-${item.cell}.txt
+      boom:
+        cmd: python -c "import sys; print('the trainer diverged', file=sys.stderr); sys.exit(3)"
+    """
+)
+CELLS = ["fit@a", "fit@b", "fit@c", "fit@d"]
+
+
+def _host_with_stages(folder: Path) -> Path:
+    host = new_host(folder)
+    pipeline = host / "pipelines" / "retrograde"
+    pipeline.mkdir(parents=True)
+    (pipeline / "dvc.yaml").write_text(STAGE_FILE)
+    sh(["git", "add", "-A"], host)
+    sh(["git", "commit", "-q", "-m", "stages"], host)
+    return host
+
+
+def _max_overlap(trace: Path) -> int:
+    """Most intervals [start, end] open at one moment (sweep over sorted endpoints)."""
+    events = []
+    for path in trace.iterdir():
+        start, end = map(float, path.read_text().split())
+        events += [(start, 1), (end, -1)]
+    running = peak = 0
+    for _, step in sorted(events, key=lambda e: (e[0], e[1])):
+        running += step
+        peak = max(peak, running)
+    return peak
+
+
+@pytest.mark.slow
+def test_two_jobs_run_every_stage_two_at_a_time_and_dvc_records_all(tmp_path):
+    host = _host_with_stages(tmp_path / "host")
+    run_stages_in_parallel(host, CELLS, jobs=2)
+    assert _max_overlap(host / "trace") == 2
+    lock = yaml.safe_load((host / "pipelines/retrograde/dvc.lock").read_text())
+    assert sorted(lock["stages"]) == CELLS
+    # Outside reference: DVC's own status agrees that nothing is left to run.
+    status = sh([*DVC, "status", "pipelines/retrograde/dvc.yaml:fit"], host)
+    assert "up to date" in status
+    for cell in "abcd":
+        out = host / "pipelines/retrograde" / f"out-{cell}.txt"
+        assert out.read_text() == f"cell {cell}"
+    assert "Running stage" in log_path_for(host, "fit@a").read_text()
+
+
+@pytest.mark.slow
+def test_one_job_never_overlaps_and_gives_the_same_lock_content_as_two(tmp_path):
+    serial = _host_with_stages(tmp_path / "serial")
+    parallel = _host_with_stages(tmp_path / "parallel")
+    run_stages_in_parallel(serial, CELLS, jobs=1)
+    run_stages_in_parallel(parallel, CELLS, jobs=2)
+    assert _max_overlap(serial / "trace") == 1
+
+    def lock(host: Path) -> dict:
+        return yaml.safe_load((host / "pipelines/retrograde/dvc.lock").read_text())
+
+    assert lock(serial) == lock(parallel)  # same hashes; only the entry order may differ
+
+
+@pytest.mark.slow
+def test_a_failing_stage_is_one_line_naming_it_and_its_log_and_no_new_stage_starts(tmp_path):
+    host = _host_with_stages(tmp_path / "host")
+    with pytest.raises(FitError) as info:
+        run_stages_in_parallel(host, ["boom", "fit@a", "fit@b", "fit@c"], jobs=1)
+    message = str(info.value)
+    assert "\n" not in message
+    assert message.startswith("stage 'boom' failed with exit status ")
+    assert "1 of 1 finished stages failed, 3 not started" in message
+    log = log_path_for(host, "boom")
+    assert f"see {log}" in message
+    assert "the trainer diverged" in log.read_text()
+    assert not (host / "trace").exists()
+
+
+def test_an_already_recorded_stage_is_not_run_again(tmp_path):
+    host = _host_with_stages(tmp_path / "host")
+    run_stages_in_parallel(host, ["fit@a"], jobs=1)
+    first = (host / "trace" / "a").read_text()
+    run_stages_in_parallel(host, ["fit@a", "fit@a"], jobs=2)
+    assert (host / "trace" / "a").read_text() == first
+    assert "Stage 'pipelines/retrograde/dvc.yaml:fit@a' didn't change, skipping" in (
+        log_path_for(host, "fit@a").read_text()
+    )
+
+
+@pytest.mark.parametrize("jobs", [0, -1, 1.5, True])
+def test_jobs_must_be_a_positive_integer(tmp_path, jobs):
+    with pytest.raises(
+        ConfigError, match=rf"parameter jobs={jobs!r} is invalid; allowed: an integer >= 1"
+    ):
+        run_stages_in_parallel(tmp_path, ["fit@a"], jobs=jobs)
+
+
+def test_no_stages_is_nothing_to_do(tmp_path):
+    run_stages_in_parallel(tmp_path, [], jobs=4)
+    assert list(tmp_path.iterdir()) == []
