@@ -1,0 +1,226 @@
+"""The two contracts sources follow, and the file helpers the file sources share.
+
+A *file source* streams :class:`~retrograde._document.Document` records from files
+(``paths()`` lists the files, for DVC dependencies; ``documents()`` yields records one at a
+time, so memory stays bounded by the largest record, not the corpus).
+
+A *calibration source* generates fixed-length units from a known distribution and gives the
+exact negative log-likelihood of every unit (its *floor*). Floor convention: nats per unit,
+end-of-unit marker **included**; because every unit has the same length, the true
+probability of the end marker after the last token is 1, so it adds 0 nats. A family scores
+the end marker too, so ``model NLL - floor`` is the excess of the model over the truth.
+
+Parameters are keyword-only, stored unchanged in ``__init__`` and checked by
+``_validate_params`` (called at the end of ``__init__``), so an invalid value fails before
+any work with ``source '<name>': parameter <key>=<value> is invalid; allowed: ...``.
+"""
+
+from __future__ import annotations
+
+import glob
+import inspect
+import os
+from abc import ABC, abstractmethod
+from collections.abc import Iterator, Sequence
+from pathlib import Path
+from typing import Any, ClassVar
+
+import numpy as np
+
+from .._document import Document
+from .._validation import check_choice, check_int, invalid
+from ..errors import DataError
+from ..sequences import SequenceSet
+
+__all__ = ["CalibrationSource", "FileSource", "Source", "expand_files", "iter_lines"]
+
+#: how undecodable bytes are handled: refuse (naming file and byte offset) or U+FFFD
+DECODE_ERRORS = ("strict", "replace")
+
+
+class Source(ABC):  # noqa: B024 (abstract methods live in the two sub-contracts)
+    """Base of every source: keyword parameters stored as given, checked in one place."""
+
+    #: registry name, set by each subclass
+    name: ClassVar[str] = ""
+    is_calibration: ClassVar[bool] = False
+
+    @property
+    def _owner(self) -> str:
+        return f"source {self.name!r}"
+
+    def _validate_params(self) -> None:  # noqa: B027 (optional hook)
+        """Raise ConfigError naming the parameter, the value and what is allowed."""
+
+    def get_params(self) -> dict[str, Any]:
+        """The keyword parameters of ``__init__`` with their current values."""
+        signature = inspect.signature(type(self).__init__)
+        return {
+            key: getattr(self, key)
+            for key, parameter in signature.parameters.items()
+            if parameter.kind is inspect.Parameter.KEYWORD_ONLY
+        }
+
+    def __repr__(self) -> str:
+        params = ", ".join(f"{k}={v!r}" for k, v in self.get_params().items())
+        return f"{type(self).__name__}({params})"
+
+
+class FileSource(Source):
+    """A source that streams documents from files."""
+
+    is_calibration: ClassVar[bool] = False
+
+    @abstractmethod
+    def paths(self) -> list[Path]:
+        """The files read, after glob expansion, in reading order (DVC dependencies)."""
+
+    @abstractmethod
+    def documents(self) -> Iterator[Document]:
+        """Yield the documents one at a time; ``doc_id`` counts them from 0."""
+
+
+class CalibrationSource(Source):
+    """A synthetic source with an exact per-unit negative log-likelihood (the floor)."""
+
+    is_calibration: ClassVar[bool] = True
+    #: token ids lie in [0, vocab_size)
+    vocab_size: int
+
+    @property
+    @abstractmethod
+    def unit_length(self) -> int:
+        """Tokens per unit (every unit has this length)."""
+
+    @abstractmethod
+    def generate(self, n_units: int, seed: int) -> SequenceSet:
+        """``n_units`` units drawn from the source; deterministic for ``seed``."""
+
+    @abstractmethod
+    def nll(self, units: SequenceSet) -> np.ndarray:
+        """(n_units,) float64 exact nats per unit, end marker included (it costs 0)."""
+
+    @abstractmethod
+    def spans(self, length: int) -> dict[str, tuple[int, int]]:
+        """Named natural-order position ranges ``[start, stop)`` of a unit of ``length``."""
+
+    @abstractmethod
+    def metadata(self) -> dict[str, Any]:
+        """JSON-able facts about the source (entropy, matrix density, ...)."""
+
+    # ------------------------------------------------------------------ helpers
+    def _check_length(self, length: int) -> None:
+        if int(length) != self.unit_length:
+            raise DataError(
+                f"{self._owner}: units have {self.unit_length} tokens, not {length}; "
+                "spans exist only for the source's own unit length"
+            )
+
+    def _check_n_units(self, n_units: int, seed: int) -> None:
+        check_int(self._owner, "n_units", n_units, 0)
+        check_int(self._owner, "seed", seed, 0)
+
+    def _as_matrix(self, units: SequenceSet) -> np.ndarray:
+        """(n_units, unit_length) int64 view of ``units``; refuses other lengths or ids."""
+        lengths = units.lengths
+        wrong = np.flatnonzero(lengths != self.unit_length)
+        if len(wrong):
+            raise DataError(
+                f"{self._owner}: unit {int(wrong[0])} has {int(lengths[wrong[0]])} tokens, "
+                f"expected {self.unit_length}; floors exist only for units this source generates"
+            )
+        tokens = np.asarray(units.tokens, dtype=np.int64)
+        if len(tokens) and (tokens.min() < 0 or tokens.max() >= self.vocab_size):
+            bad = int(np.flatnonzero((tokens < 0) | (tokens >= self.vocab_size))[0])
+            raise DataError(
+                f"{self._owner}: unit {bad // self.unit_length} holds token id {int(tokens[bad])} "
+                f"outside [0, {self.vocab_size}); floors exist only for units this source generates"
+            )
+        return tokens.reshape(len(units), self.unit_length)
+
+    def _impossible(self, unit_index: int, why: str) -> DataError:
+        return DataError(
+            f"{self._owner}: unit {unit_index} has probability 0 under this source ({why}); "
+            "floors exist only for units generated with the same parameters"
+        )
+
+
+# ---------------------------------------------------------------------- file helpers
+_GLOB_CHARS = set("*?[")
+
+
+def _as_path_list(owner: str, key: str, value: Any) -> list[str]:
+    """A single path or a list of paths (Hydra gives a ListConfig) as a list of strings."""
+    if isinstance(value, (str, os.PathLike)):
+        items: list[Any] = [value]
+    elif isinstance(value, Sequence) or hasattr(value, "__iter__"):
+        items = list(value)
+    else:
+        items = []
+    if not items or not all(isinstance(item, (str, os.PathLike)) for item in items):
+        raise invalid(owner, key, value, "a path or glob, or a non-empty list of them")
+    return [os.fspath(item) for item in items]
+
+
+def expand_files(owner: str, key: str, value: Any) -> list[Path]:
+    """Expand paths and globs into existing files, in the given order, sorted within a glob.
+
+    A glob matching nothing, a missing file and a folder are refused with a one-line
+    :class:`DataError`; a file named twice is read once.
+    """
+    found: list[Path] = []
+    for pattern in _as_path_list(owner, key, value):
+        if _GLOB_CHARS & set(pattern):
+            matches = sorted(Path(m) for m in glob.glob(pattern, recursive=True))
+            matches = [m for m in matches if m.is_file()]
+            if not matches:
+                raise DataError(
+                    f"{owner}: {key} pattern {pattern!r} matches no file "
+                    f"(relative to {Path.cwd()}); check the pattern"
+                )
+        else:
+            path = Path(pattern)
+            if path.is_dir():
+                raise DataError(
+                    f"{owner}: {key} {pattern!r} is a folder; name its files, e.g. '{pattern}/*.txt'"
+                )
+            if not path.is_file():
+                raise DataError(
+                    f"{owner}: {key} file {pattern!r} not found (relative to {Path.cwd()})"
+                )
+            matches = [path]
+        found.extend(m for m in matches if m not in found)
+    return found
+
+
+def check_decode_errors(owner: str, value: Any) -> str:
+    return check_choice(owner, "errors", value, DECODE_ERRORS)
+
+
+def iter_lines(path: Path, errors: str) -> Iterator[tuple[int, str, int]]:
+    """Stream ``(line_number, text, n_bytes)`` for each line of a UTF-8 file.
+
+    The line ending (LF or CRLF) is removed, so CRLF files read exactly like LF files; a
+    UTF-8 byte-order mark at the start is dropped. ``n_bytes`` counts the UTF-8 bytes of
+    ``text``. Memory is bounded by the longest line. With ``errors="strict"`` invalid UTF-8
+    raises a :class:`DataError` naming the file, line and byte offset.
+    """
+    line_start = 0  # byte offset of the current line in the file
+    with open(path, "rb") as handle:
+        for line_number, raw in enumerate(handle, start=1):
+            body = raw[:-1] if raw.endswith(b"\n") else raw
+            if body.endswith(b"\r"):
+                body = body[:-1]
+            body_start = line_start
+            if line_number == 1 and body.startswith(b"\xef\xbb\xbf"):
+                body, body_start = body[3:], 3
+            try:
+                text = body.decode("utf-8", errors=errors)
+            except UnicodeDecodeError as exc:
+                raise DataError(
+                    f"{path}:{line_number}: invalid UTF-8 at byte offset {body_start + exc.start} "
+                    "of the file; convert the file to UTF-8 or set the source's errors='replace'"
+                ) from None
+            n_bytes = len(body) if errors == "strict" else len(text.encode("utf-8"))
+            yield line_number, text, n_bytes
+            line_start += len(raw)

@@ -1,0 +1,92 @@
+"""Linear algebra over GF(2) (arithmetic mod 2) on 0/1 numpy arrays.
+
+Matrices are 2-D arrays of 0 and 1 (any integer or bool dtype in, ``uint8`` out).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+__all__ = ["inverse", "matmul", "random_invertible", "unit_triangular"]
+
+
+def matmul(left: np.ndarray, right: np.ndarray) -> np.ndarray:
+    """``left @ right`` mod 2 as uint8.
+
+    The product runs in float64 (BLAS); entries are sums of at most ``n`` ones, exact while
+    ``n < 2**53``.
+
+    Examples
+    --------
+    >>> matmul(np.array([[1, 1], [0, 1]]), np.array([[1, 1], [0, 1]])).tolist()
+    [[1, 0], [0, 1]]
+    """
+    product = np.asarray(left, dtype=np.float64) @ np.asarray(right, dtype=np.float64)
+    return (product % 2).astype(np.uint8)
+
+
+def inverse(matrix: np.ndarray) -> np.ndarray:
+    """The inverse over GF(2) by Gauss–Jordan elimination; ``ValueError`` if singular.
+
+    Rows of the augmented matrix ``[A | I]`` are packed 8 bits per byte, so each pivot step
+    is one vectorized XOR over ``(n, n/4)`` bytes.
+    """
+    matrix = np.asarray(matrix, dtype=np.uint8) & 1
+    n = matrix.shape[0]
+    if matrix.shape != (n, n):
+        raise ValueError(f"expected a square matrix, got shape {matrix.shape}")
+    augmented = np.packbits(np.concatenate([matrix, np.eye(n, dtype=np.uint8)], axis=1), axis=1)
+    for column in range(n):
+        byte, shift = divmod(column, 8)
+        has_one = (augmented[:, byte] >> (7 - shift)) & 1  # (n,) bit `column` of every row
+        candidates = np.flatnonzero(has_one[column:]) + column
+        if len(candidates) == 0:
+            raise ValueError("matrix is singular over GF(2)")
+        pivot = candidates[0]
+        if pivot != column:
+            augmented[[column, pivot]] = augmented[[pivot, column]]
+            has_one[[column, pivot]] = has_one[[pivot, column]]
+        others = has_one.astype(bool)
+        others[column] = False
+        augmented[others] ^= augmented[column]
+    return np.unpackbits(augmented, axis=1, count=2 * n)[:, n:]
+
+
+def unit_triangular(n: int, nonzeros: int, rng: np.random.Generator, *, lower: bool) -> np.ndarray:
+    """(n, n) unit-triangular 0/1 matrix with ``min(nonzeros, room)`` off-diagonal ones per row.
+
+    ``room`` is the number of off-diagonal places the row has on its side of the diagonal
+    (``i`` for row ``i`` of a lower factor, ``n - 1 - i`` of an upper one); the columns are
+    drawn uniformly without replacement.
+    """
+    rows, columns = np.indices((n, n))
+    allowed = columns < rows if lower else columns > rows
+    keys = np.where(allowed, rng.random((n, n)), np.inf)  # (n, n) random ranks per row
+    ranks = np.argsort(np.argsort(keys, axis=1, kind="stable"), axis=1, kind="stable")
+    factor = (ranks < nonzeros) & allowed
+    factor[np.arange(n), np.arange(n)] = True
+    return factor.astype(np.uint8)
+
+
+def random_invertible(
+    n: int, nonzeros: int, rng: np.random.Generator
+) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+    """A random invertible ``A = P L U Q`` over GF(2) and its factors.
+
+    ``L`` and ``U`` are unit lower and upper triangular (:func:`unit_triangular`), so their
+    determinant is 1; ``P`` and ``Q`` permute rows and columns. Returns ``(A, factors)``
+    with ``factors`` holding ``lower``, ``upper``, ``row_order`` and ``column_order``
+    (``A = (L @ U)[row_order][:, column_order]``).
+    """
+    lower = unit_triangular(n, nonzeros, rng, lower=True)
+    upper = unit_triangular(n, nonzeros, rng, lower=False)
+    row_order = rng.permutation(n)
+    column_order = rng.permutation(n)
+    matrix = matmul(lower, upper)[row_order][:, column_order]
+    factors = {
+        "lower": lower,
+        "upper": upper,
+        "row_order": row_order,
+        "column_order": column_order,
+    }
+    return matrix, factors

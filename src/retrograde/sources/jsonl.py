@@ -1,0 +1,115 @@
+"""``jsonl``: JSON Lines files, one document per line, from one named field.
+
+The field holds either a string (a text document, tokenized later) or a list of
+non-negative integers (a token document whose ids are kept). All lines of a source must
+agree on the kind. Blank lines are skipped; every error names ``file:line``.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from .._document import Document
+from .._validation import invalid
+from ..errors import DataError
+from . import registry
+from ._base import FileSource, check_decode_errors, expand_files, iter_lines
+
+__all__ = ["JsonlSource"]
+
+
+@registry.register("jsonl")
+class JsonlSource(FileSource):
+    """JSON Lines files.
+
+    Parameters
+    ----------
+    files : str or list of str
+        Paths or glob patterns.
+    field : str
+        The key read from every line's object: a string, or a list of token ids.
+    errors : {"strict", "replace"}
+        Invalid UTF-8: refuse naming the file and byte offset, or read it as U+FFFD.
+
+    Examples
+    --------
+    >>> import pathlib, tempfile
+    >>> path = pathlib.Path(tempfile.mkdtemp()) / "d.jsonl"
+    >>> _ = path.write_text('{"text": "héllo"}\\n{"text": "bye"}\\n')
+    >>> [(d.text, d.n_bytes) for d in JsonlSource(files=str(path)).documents()]
+    [('héllo', 6), ('bye', 3)]
+    """
+
+    name = "jsonl"
+
+    def __init__(self, *, files: Any, field: str = "text", errors: str = "strict") -> None:
+        self.files = files
+        self.field = field
+        self.errors = errors
+        self._validate_params()
+
+    def _validate_params(self) -> None:
+        if not isinstance(self.field, str) or not self.field:
+            raise invalid(self._owner, "field", self.field, "a non-empty key name")
+        check_decode_errors(self._owner, self.errors)
+        expand_files(self._owner, "files", self.files)
+
+    def paths(self) -> list[Path]:
+        return expand_files(self._owner, "files", self.files)
+
+    def documents(self) -> Iterator[Document]:
+        doc_id = 0
+        kind = ""  # "text" or "tokens", fixed by the first record
+        for path in self.paths():
+            for line_number, line, _ in iter_lines(path, self.errors):
+                if not line.strip():
+                    continue
+                where = f"{path}:{line_number}"
+                document = self._parse(line, where, doc_id)
+                this_kind = "text" if document.text is not None else "tokens"
+                if kind and this_kind != kind:
+                    raise DataError(
+                        f"{where}: field {self.field!r} holds {this_kind} but earlier lines hold "
+                        f"{kind}; use one kind (a string or a list of token ids) in every line"
+                    )
+                kind = this_kind
+                yield document
+                doc_id += 1
+        if doc_id == 0:
+            raise DataError(
+                f"{self._owner}: no records in {', '.join(map(str, self.paths()))}; "
+                "the files are empty"
+            )
+
+    def _parse(self, line: str, where: str, doc_id: int) -> Document:
+        try:
+            record = json.loads(line)
+        except json.JSONDecodeError as exc:
+            raise DataError(
+                f"{where}: invalid JSON at column {exc.colno} ({exc.msg}); "
+                "each line must be one JSON object"
+            ) from None
+        if not isinstance(record, dict):
+            raise DataError(f"{where}: expected a JSON object, got {type(record).__name__}")
+        if self.field not in record:
+            keys = ", ".join(sorted(record)) or "none"
+            raise DataError(
+                f"{where}: field {self.field!r} is missing (keys: {keys}); "
+                "add it or set the source's field= to the right key"
+            )
+        value = record[self.field]
+        if isinstance(value, str):
+            return Document(doc_id, where, text=value, n_bytes=len(value.encode("utf-8")))
+        if isinstance(value, list) and all(
+            isinstance(v, int) and not isinstance(v, bool) and v >= 0 for v in value
+        ):
+            return Document(doc_id, where, tokens=np.asarray(value, dtype=np.int64).reshape(-1))
+        raise DataError(
+            f"{where}: field {self.field!r} must be a string or a list of non-negative "
+            f"integers, got {json.dumps(value)[:40]}"
+        )

@@ -1,0 +1,122 @@
+"""``tokens``: token ids from a team's own tokenizer, kept as given.
+
+Each entry of ``files`` is a :class:`~retrograde.SequenceSet` folder (every unit becomes one
+token document, with its ``n_bytes`` when the folder has them) or a ``.npy`` file (a 1-D
+integer array is one document; a 2-D array is one document per row). Globs may match both.
+Arrays are memory-mapped, so a large file is read page by page.
+"""
+
+from __future__ import annotations
+
+import glob
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from .._document import Document
+from ..errors import DataError
+from ..sequences import SequenceSet
+from . import registry
+from ._base import _GLOB_CHARS, FileSource, _as_path_list
+
+__all__ = ["TokensSource"]
+
+
+@registry.register("tokens")
+class TokensSource(FileSource):
+    """Token-id arrays (``SequenceSet`` folders or ``.npy`` files).
+
+    Parameters
+    ----------
+    files : str or list of str
+        Folders written by ``SequenceSet.save``, ``.npy`` files, or globs over them.
+
+    Examples
+    --------
+    >>> import pathlib, tempfile
+    >>> import numpy as np
+    >>> path = pathlib.Path(tempfile.mkdtemp()) / "ids.npy"
+    >>> np.save(path, np.array([[3, 1, 2], [0, 0, 4]], dtype=np.int32))
+    >>> [d.tokens.tolist() for d in TokensSource(files=str(path)).documents()]
+    [[3, 1, 2], [0, 0, 4]]
+    """
+
+    name = "tokens"
+
+    def __init__(self, *, files: Any) -> None:
+        self.files = files
+        self._validate_params()
+
+    def _validate_params(self) -> None:
+        self.paths()
+
+    def paths(self) -> list[Path]:
+        """The ``.npy`` files and folders read; a folder's own files are listed inside it."""
+        found: list[Path] = []
+        for pattern in _as_path_list(self._owner, "files", self.files):
+            if _GLOB_CHARS & set(pattern):
+                matches = [Path(m) for m in sorted(glob.glob(pattern, recursive=True))]
+                matches = [m for m in matches if _is_input(m)]
+                if not matches:
+                    raise DataError(
+                        f"{self._owner}: files pattern {pattern!r} matches no .npy file or "
+                        f"sequence folder (relative to {Path.cwd()}); check the pattern"
+                    )
+            else:
+                path = Path(pattern)
+                if not path.exists():
+                    raise DataError(
+                        f"{self._owner}: {pattern!r} not found (relative to {Path.cwd()})"
+                    )
+                if not _is_input(path):
+                    raise DataError(
+                        f"{self._owner}: {pattern!r} is neither a .npy file nor a folder "
+                        "written by SequenceSet.save (with meta.json)"
+                    )
+                matches = [path]
+            found.extend(m for m in matches if m not in found)
+        return found
+
+    def documents(self) -> Iterator[Document]:
+        doc_id = 0
+        for path in self.paths():
+            for where, tokens, n_bytes in _read(path):
+                yield Document(doc_id, where, tokens=tokens, n_bytes=n_bytes)
+                doc_id += 1
+        if doc_id == 0:
+            raise DataError(f"{self._owner}: the files hold no units; check {self.files!r}")
+
+
+def _is_input(path: Path) -> bool:
+    if path.is_dir():
+        return (path / "meta.json").is_file()
+    return path.is_file() and path.suffix == ".npy"
+
+
+def _read(path: Path) -> Iterator[tuple[str, np.ndarray, int | None]]:
+    """``(where, tokens, n_bytes)`` per document of one folder or ``.npy`` file."""
+    if path.is_dir():
+        units = SequenceSet.load(path, mmap=True)
+        for index in range(len(units)):
+            n_bytes = None if units.n_bytes is None else int(units.n_bytes[index])
+            yield f"{path}:unit {index}", units[index], n_bytes
+        return
+    try:
+        array = np.load(path, mmap_mode="r", allow_pickle=False)
+    except ValueError as exc:
+        raise DataError(
+            f"{path}: not a plain .npy array ({exc}); save it with numpy.save"
+        ) from None
+    if array.dtype.kind not in "iu" or array.ndim not in (1, 2):
+        raise DataError(
+            f"{path}: expected a 1-D or 2-D integer array of token ids, got "
+            f"{array.ndim}-D {array.dtype}; convert it with numpy.asarray(ids, dtype='int32')"
+        )
+    if array.size and int(array.min()) < 0:
+        raise DataError(f"{path}: token ids must be >= 0, found {int(array.min())}")
+    rows = [array] if array.ndim == 1 else array
+    for index, row in enumerate(rows):
+        where = str(path) if array.ndim == 1 else f"{path}:row {index}"
+        yield where, row, None
