@@ -1,0 +1,385 @@
+"""Paired order gaps with uncertainty, Holm adjustment, position profiles and span losses.
+
+The statistics follow DESIGN.md section 8 and are explained in ``docs/statistics.md``.
+For one model on one source, ``NLL[order][s, i]`` is the loss in nats of test unit ``i``
+under the model trained with seed ``s`` on that order (end marker included). Then
+
+- ``bits_per_token = sum_i mean_s NLL[s, i] / ln 2 / sum_i n_tokens[i]``;
+- ``gap_pct = 100 * (T_order / T_reference - 1)`` with ``T = sum_i mean_s NLL[s, i]``;
+- the interval is a percentile bootstrap of that ratio that resamples units (grouped by
+  document when ``doc_ids`` is given) and, with 3 or more seeds, seeds as well;
+- ``p_value`` is a paired sign-flip test on the seed-averaged per-unit (per-document)
+  differences;
+- ``seed_spread_pct`` is the standard deviation over seeds of the per-seed gap.
+
+Every function is pure and deterministic for a given ``seed``; floats in the returned
+leaves are rounded to ``SIGNIFICANT_DIGITS`` significant digits so ``metrics.json`` is
+byte-stable and reads well in ``dvc metrics diff``.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from typing import Any
+
+import numpy as np
+
+from ._bootstrap import bootstrap_totals, group_sums, holm, sign_flip_pvalue
+from ._validation import check_float, check_int
+from .errors import DataError
+from .sequences import Ragged
+
+__all__ = [
+    "MIN_SEEDS_FOR_TRAINING_NOISE",
+    "SIGNIFICANT_DIGITS",
+    "adjust_holm",
+    "position_profile",
+    "rounded",
+    "seed_warning",
+    "span_breakdown",
+    "summarize_model",
+]
+
+SIGNIFICANT_DIGITS = 6
+#: with fewer seeds the interval resamples units only (seed resampling of 1-2 values is noise)
+MIN_SEEDS_FOR_TRAINING_NOISE = 3
+_LN2 = math.log(2.0)
+_OWNER = "stats 'summarize_model'"
+
+
+def rounded(value: float, digits: int = SIGNIFICANT_DIGITS) -> float:
+    """``value`` rounded to ``digits`` significant digits (a plain Python float).
+
+    Examples
+    --------
+    >>> rounded(3.14159265), rounded(-0.000123456789), rounded(0.0)
+    (3.14159, -0.000123457, 0.0)
+    """
+    result = float(f"{float(value):.{digits}g}")
+    return 0.0 if result == 0 else result  # no "-0.0" in the JSON
+
+
+def seed_warning(n_seeds: int) -> str | None:
+    """The caution a report shows when too few seeds were fitted, else ``None``."""
+    if n_seeds >= MIN_SEEDS_FOR_TRAINING_NOISE:
+        return None
+    return (
+        f"with {n_seeds} seed{'s' if n_seeds != 1 else ''} the interval ignores training "
+        f"randomness (it resamples test units only); fit at least "
+        f"{MIN_SEEDS_FOR_TRAINING_NOISE} seeds"
+    )
+
+
+def _checked_inputs(
+    unit_nll: Mapping[str, np.ndarray], reference_order: str, n_tokens: np.ndarray
+) -> tuple[list[str], np.ndarray]:
+    """(orders with the reference first, stacked (n_orders, n_seeds, n_units) float64)."""
+    if reference_order not in unit_nll:
+        raise DataError(
+            f"reference order {reference_order!r} has no losses (orders: {sorted(unit_nll)}); "
+            "add it to study.orders or set the reference order to one that was fitted"
+        )
+    orders = [reference_order, *(o for o in unit_nll if o != reference_order)]
+    shapes = {o: np.shape(unit_nll[o]) for o in orders}
+    reference_shape = shapes[reference_order]
+    if len(reference_shape) != 2 or 0 in reference_shape:
+        raise DataError(
+            f"order {reference_order!r}: losses must be a non-empty (n_seeds, n_units) array, "
+            f"got shape {reference_shape}"
+        )
+    for order, shape in shapes.items():
+        if shape != reference_shape:
+            raise DataError(
+                f"order {order!r}: losses have shape {shape} but {reference_order!r} has "
+                f"{reference_shape}; every order must be scored on the same test units and seeds"
+            )
+    if np.shape(n_tokens) != (reference_shape[1],):
+        raise DataError(
+            f"n_tokens has shape {np.shape(n_tokens)}; expected one count per test unit "
+            f"({reference_shape[1]})"
+        )
+    stacked = np.stack([np.asarray(unit_nll[o], dtype=np.float64) for o in orders])
+    if not np.all(np.isfinite(stacked)):
+        bad = orders[int(np.argwhere(~np.isfinite(stacked))[0][0])]
+        raise DataError(
+            f"order {bad!r}: some unit losses are infinite or NaN; the model gave a zero "
+            "probability, use a family that smooths every outcome"
+        )
+    return orders, stacked
+
+
+def _optional_per_unit(name: str, values: np.ndarray | None, n_units: int) -> np.ndarray | None:
+    if values is None:
+        return None
+    values = np.asarray(values)
+    if values.shape != (n_units,):
+        raise DataError(
+            f"{name} has shape {values.shape}; expected one value per test unit ({n_units})"
+        )
+    return values
+
+
+def summarize_model(
+    unit_nll: Mapping[str, np.ndarray],
+    *,
+    reference_order: str,
+    n_tokens: np.ndarray,
+    n_bytes: np.ndarray | None = None,
+    doc_ids: np.ndarray | None = None,
+    floors: np.ndarray | None = None,
+    level: float = 0.95,
+    n_boot: int = 2000,
+    seed: int = 0,
+    n_flips: int = 2000,
+) -> dict[str, dict[str, Any]]:
+    """Bits per token and paired gaps to the reference order for one model on one source.
+
+    Parameters
+    ----------
+    unit_nll : mapping order -> (n_seeds, n_units) float
+        Loss in nats of every test unit (end marker included) for each seed; the same units
+        and the same seed list in every order.
+    reference_order : str
+        The order gaps are measured against (its leaf has gap 0).
+    n_tokens : (n_units,) int
+        Real tokens per unit (the end marker is not counted).
+    n_bytes : (n_units,) int, optional
+        Natural UTF-8 bytes per unit; adds ``bits_per_byte``.
+    doc_ids : (n_units,) int, optional
+        Document of each unit; the bootstrap and the sign flips then work on whole documents.
+    floors : (n_units,) float, optional
+        Exact NLL in nats of each unit (calibration sources); adds ``floor_bits_per_token``
+        and ``excess_bits_per_token``.
+    level : float
+        Confidence level of the interval, in (0, 1).
+    n_boot, n_flips : int
+        Bootstrap replicates and Monte Carlo sign patterns.
+    seed : int
+        Seed of every random draw: the same inputs and seed give the same numbers.
+
+    Returns
+    -------
+    dict
+        ``{order: leaf}``; a leaf has ``bits_per_token``, ``gap_pct``, ``gap_pct_low``,
+        ``gap_pct_high``, ``p_value``, ``seeds``, ``seed_spread_pct`` (``None`` with one
+        seed), ``units``, ``tokens`` and, when known, ``bits_per_byte``,
+        ``floor_bits_per_token``, ``excess_bits_per_token``.
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(1)
+    >>> forward = rng.gamma(5.0, 2.0, size=(3, 40))
+    >>> leaves = summarize_model({"forward": forward, "reverse": forward * 1.1},
+    ...                          reference_order="forward", n_tokens=np.full(40, 5), n_boot=200)
+    >>> leaves["reverse"]["gap_pct"], leaves["forward"]["gap_pct"]
+    (10.0, 0.0)
+    """
+    level = check_float(_OWNER, "level", level, 0.0, 1.0, low_open=True, high_open=True)
+    n_boot = check_int(_OWNER, "n_boot", n_boot, 10)
+    n_flips = check_int(_OWNER, "n_flips", n_flips, 10)
+    seed = check_int(_OWNER, "seed", seed, 0)
+    orders, nll = _checked_inputs(unit_nll, reference_order, np.asarray(n_tokens))
+    n_orders, n_seeds, n_units = nll.shape
+    n_bytes = _optional_per_unit("n_bytes", n_bytes, n_units)
+    doc_ids = _optional_per_unit("doc_ids", doc_ids, n_units)
+    floors = _optional_per_unit("floors", floors, n_units)
+    total_tokens = int(np.sum(n_tokens))
+
+    if doc_ids is None:
+        group_index, n_groups = np.arange(n_units), n_units
+    else:
+        _, group_index = np.unique(doc_ids, return_inverse=True)
+        n_groups = int(group_index.max()) + 1
+    per_group = group_sums(nll, group_index.ravel(), n_groups)  # (n_orders, n_seeds, n_groups)
+    rng = np.random.default_rng(seed)
+
+    totals = nll.sum(axis=2).mean(axis=1)  # (n_orders,) nats, seed-averaged
+    gaps = 100.0 * (totals / totals[0] - 1.0)
+    per_seed_gaps = 100.0 * (nll.sum(axis=2) / nll[0].sum(axis=1) - 1.0)  # (n_orders, n_seeds)
+    replicates = bootstrap_totals(
+        per_group,
+        n_boot=n_boot,
+        rng=rng,
+        resample_seeds=n_seeds >= MIN_SEEDS_FOR_TRAINING_NOISE,
+    )  # (n_boot, n_orders)
+    boot_gaps = 100.0 * (replicates / replicates[:, :1] - 1.0)
+    tail = (1.0 - level) / 2.0
+    lows, highs = np.quantile(boot_gaps, [tail, 1.0 - tail], axis=0)
+    differences = per_group[1:].mean(axis=1) - per_group[0].mean(axis=0)  # (n_orders-1, n_groups)
+    p_values = np.ones(n_orders)
+    if n_orders > 1:
+        p_values[1:], _ = sign_flip_pvalue(differences.T, n_flips=n_flips, rng=rng)
+
+    leaves: dict[str, dict[str, Any]] = {}
+    for index, order in enumerate(orders):
+        bits_per_token = totals[index] / _LN2 / max(total_tokens, 1)
+        leaf: dict[str, Any] = {
+            "bits_per_token": rounded(bits_per_token),
+            "gap_pct": rounded(gaps[index]),
+            "gap_pct_low": rounded(lows[index]),
+            "gap_pct_high": rounded(highs[index]),
+            "p_value": rounded(p_values[index]),
+            "seeds": n_seeds,
+            "seed_spread_pct": (
+                rounded(np.std(per_seed_gaps[index], ddof=1)) if n_seeds > 1 else None
+            ),
+            "units": n_units,
+            "tokens": total_tokens,
+        }
+        if n_bytes is not None:
+            leaf["bits_per_byte"] = rounded(totals[index] / _LN2 / max(int(n_bytes.sum()), 1))
+        if floors is not None:
+            floor_bits = float(np.sum(floors)) / _LN2 / max(total_tokens, 1)
+            leaf["floor_bits_per_token"] = rounded(floor_bits)
+            leaf["excess_bits_per_token"] = rounded(bits_per_token - floor_bits)
+        leaves[order] = leaf
+    return {order: leaves[order] for order in unit_nll}
+
+
+def adjust_holm(
+    table: Mapping[str, Mapping[str, Mapping[str, dict[str, Any]]]],
+    *,
+    reference_order: str | Mapping[str, str] = "forward",
+    alpha: float = 0.05,
+) -> dict[str, dict[str, dict[str, dict[str, Any]]]]:
+    """Add ``p_value_holm`` and ``significant`` to every non-reference leaf of the table.
+
+    All non-reference gaps in ``{source: {model: {order: leaf}}}`` form one family of tests
+    (Holm 1979). ``reference_order`` is one name, or a mapping source -> name. The table is
+    changed in place and returned. A gap is ``significant`` when its adjusted p-value is
+    below ``alpha``.
+    """
+    alpha = check_float("stats 'adjust_holm'", "alpha", alpha, 0.0, 1.0, low_open=True)
+    leaves: list[dict[str, Any]] = []
+    for source, models in table.items():
+        reference = reference_order if isinstance(reference_order, str) else reference_order[source]
+        for model, orders in models.items():
+            if reference not in orders:
+                raise DataError(
+                    f"table {source}.{model}: reference order {reference!r} is missing "
+                    f"(orders: {sorted(orders)}); pass reference_order to adjust_holm"
+                )
+            leaves.extend(leaf for order, leaf in orders.items() if order != reference)
+    adjusted = holm(np.array([leaf["p_value"] for leaf in leaves], dtype=np.float64))
+    for leaf, p_holm in zip(leaves, adjusted, strict=True):
+        leaf["p_value_holm"] = rounded(p_holm)
+        leaf["significant"] = bool(p_holm < alpha)
+    return table  # type: ignore[return-value]
+
+
+def _check_same_units(natural_losses: Mapping[str, Ragged]) -> tuple[list[str], np.ndarray]:
+    orders = list(natural_losses)
+    if not orders:
+        raise DataError("no orders to profile; natural_losses is empty")
+    lengths = natural_losses[orders[0]].lengths
+    for order in orders[1:]:
+        if not np.array_equal(natural_losses[order].lengths, lengths):
+            raise DataError(
+                f"order {order!r}: per-position losses do not match {orders[0]!r} unit by "
+                "unit; map every order's losses back to the natural order of the same units"
+            )
+    return orders, lengths
+
+
+def position_profile(
+    natural_losses: Mapping[str, Ragged], *, reference_order: str, n_buckets: int = 50
+) -> dict[str, Any]:
+    """Mean loss per natural-order position (or position bucket), and its gap to the reference.
+
+    ``natural_losses[order]`` holds, per test unit, the loss in nats at each natural-order
+    position with the end marker last. When every unit has the same length ``L <= n_buckets``
+    positions are exact (``x`` = 0 .. L-1); otherwise position ``j`` of a unit with ``L`` tokens
+    falls in bucket ``floor(j * n_buckets / L)`` and ``x`` is the bucket's middle as a fraction
+    of the unit. The end marker is reported apart (``end_bits``).
+
+    Returns
+    -------
+    dict
+        ``{"reference_order", "position": "absolute" | "relative", "x": [...], "tokens": [...],
+        "bits": {order: [...]}, "diff_bits": {order: [...]}, "end_bits": {order: float}}``,
+        bits are mean bits per token; empty buckets hold ``None``.
+    """
+    n_buckets = check_int("stats 'position_profile'", "n_buckets", n_buckets, 1)
+    orders, lengths = _check_same_units(natural_losses)
+    if reference_order not in natural_losses:
+        raise DataError(f"reference order {reference_order!r} has no position losses")
+    token_lengths = lengths - 1  # the last value of each row is the end marker
+    any_losses = natural_losses[orders[0]]
+    positions = any_losses.positions()  # (n_values,)
+    length_of_value = np.repeat(token_lengths, lengths)
+    is_token = positions < length_of_value
+    fixed = len(token_lengths) > 0 and np.all(token_lengths == token_lengths[0])
+    if fixed and token_lengths[0] <= n_buckets:
+        mode, n_bins = "absolute", int(token_lengths[0])
+        bucket = positions[is_token]
+        x = [float(j) for j in range(n_bins)]
+    else:
+        mode, n_bins = "relative", n_buckets
+        bucket = (positions[is_token] * n_buckets) // length_of_value[is_token]
+        x = [rounded((j + 0.5) / n_buckets) for j in range(n_bins)]
+    counts = np.bincount(bucket, minlength=n_bins)
+
+    def mean_bits(losses: Ragged) -> np.ndarray:
+        summed = np.bincount(bucket, weights=losses.values[is_token], minlength=n_bins)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return summed / counts / _LN2
+
+    means = {order: mean_bits(natural_losses[order]) for order in orders}
+    end_values = {o: natural_losses[o].values[~is_token] for o in orders}
+
+    def listed(values: np.ndarray) -> list[float | None]:
+        return [rounded(v) if np.isfinite(v) else None for v in values]
+
+    return {
+        "reference_order": reference_order,
+        "position": mode,
+        "x": x,
+        "tokens": counts.astype(int).tolist(),
+        "bits": {o: listed(means[o]) for o in orders},
+        "diff_bits": {o: listed(means[o] - means[reference_order]) for o in orders},
+        "end_bits": {
+            o: rounded(end_values[o].mean() / _LN2) if len(end_values[o]) else None for o in orders
+        },
+    }
+
+
+def span_breakdown(
+    natural_losses: Mapping[str, Ragged], spans: Mapping[str, tuple[int, int]]
+) -> dict[str, dict[str, dict[str, Any]]]:
+    """Loss per named natural-order span, as bits per token and perplexity, for every order.
+
+    ``spans[name] = (start, end)`` selects token positions ``start <= j < end`` of each unit
+    (clipped to the unit; the end marker is never in a span). Perplexity is ``2 ** bits``.
+
+    Returns
+    -------
+    dict
+        ``{order: {span: {"bits_per_token", "perplexity", "bits_per_unit", "tokens"}}}``.
+
+    Examples
+    --------
+    >>> losses = Ragged.from_list([[math.log(2), math.log(4), 0.0]])  # 2 tokens + end marker
+    >>> span_breakdown({"forward": losses}, {"x": (0, 1), "y": (1, 2)})["forward"]["y"]
+    {'bits_per_token': 2.0, 'perplexity': 4.0, 'bits_per_unit': 2.0, 'tokens': 1}
+    """
+    orders, lengths = _check_same_units(natural_losses)
+    positions = natural_losses[orders[0]].positions()
+    token_length = np.repeat(lengths - 1, lengths)
+    n_units = len(lengths)
+    result: dict[str, dict[str, dict[str, Any]]] = {order: {} for order in orders}
+    for name, (start, end) in spans.items():
+        if not 0 <= start <= end:
+            raise DataError(f"span {name!r}: ({start}, {end}) is not a range 0 <= start <= end")
+        inside = (positions >= start) & (positions < end) & (positions < token_length)
+        n_inside = int(inside.sum())
+        for order in orders:
+            bits = float(natural_losses[order].values[inside].sum()) / _LN2
+            per_token = bits / n_inside if n_inside else float("nan")
+            result[order][name] = {
+                "bits_per_token": rounded(per_token) if n_inside else None,
+                "perplexity": rounded(2.0**per_token) if n_inside else None,
+                "bits_per_unit": rounded(bits / max(n_units, 1)),
+                "tokens": n_inside,
+            }
+    return result

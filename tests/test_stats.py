@@ -1,0 +1,351 @@
+"""Paired gaps, intervals, sign-flip p-values, Holm, position profiles and span losses."""
+
+from __future__ import annotations
+
+import functools
+import math
+
+import numpy as np
+import pytest
+from scipy import stats as scipy_stats
+from statsmodels.stats.multitest import multipletests
+
+from retrograde import Ragged
+from retrograde._bootstrap import bootstrap_totals, holm, sign_flip_pvalue
+from retrograde.errors import ConfigError, DataError
+from retrograde.stats import (
+    adjust_holm,
+    position_profile,
+    seed_warning,
+    span_breakdown,
+    summarize_model,
+)
+
+LN2 = math.log(2.0)
+# Leaves are rounded to 6 significant digits, so comparisons allow a relative 1e-5.
+approx = functools.partial(pytest.approx, rel=1e-5)
+
+
+def simulate(rng, *, n_units, n_seeds, shift, seed_sd=0.01, unit_sd=2.0):
+    """A noise model of two fitted orders: true unit NLL times a per-seed training effect
+    plus per-unit scoring noise; ``shift`` is the true relative gap of ``reverse``."""
+    truth = rng.gamma(4.0, 10.0, size=n_units)  # nats per unit
+    losses = {}
+    for order, factor in (("forward", 1.0), ("reverse", 1.0 + shift)):
+        training = rng.normal(0.0, seed_sd, size=(n_seeds, 1))
+        noise = rng.normal(0.0, unit_sd, size=(n_seeds, n_units))
+        losses[order] = truth * factor * (1.0 + training) + noise
+    return losses
+
+
+# ----------------------------------------------------------------- point estimates
+
+
+def test_point_gap_and_bits_follow_the_seed_averaged_totals():
+    forward = np.array([[10.0, 20.0, 30.0], [12.0, 18.0, 30.0]])
+    reverse = np.array([[11.0, 22.0, 33.0], [13.0, 20.0, 30.0]])
+    leaves = summarize_model(
+        {"forward": forward, "reverse": reverse},
+        reference_order="forward",
+        n_tokens=np.array([4, 5, 6]),
+        n_bytes=np.array([8, 10, 12]),
+        n_boot=100,
+    )
+    total_forward, total_reverse = 60.0, 64.5  # sum over units of the mean over seeds
+    assert leaves["reverse"]["gap_pct"] == approx(100 * (total_reverse / total_forward - 1))
+    assert leaves["forward"]["bits_per_token"] == approx(total_forward / LN2 / 15)
+    assert leaves["reverse"]["bits_per_byte"] == approx(total_reverse / LN2 / 30)
+    per_seed_gap = [100 * (66 / 60 - 1), 100 * (63 / 60 - 1)]
+    assert leaves["reverse"]["seed_spread_pct"] == approx(np.std(per_seed_gap, ddof=1))
+    assert leaves["forward"] | {"bits_per_token": 0} == {
+        "bits_per_token": 0,
+        "bits_per_byte": leaves["forward"]["bits_per_byte"],
+        "gap_pct": 0.0,
+        "gap_pct_low": 0.0,
+        "gap_pct_high": 0.0,
+        "p_value": 1.0,
+        "seeds": 2,
+        "seed_spread_pct": 0.0,
+        "units": 3,
+        "tokens": 15,
+    }
+
+
+def test_floor_and_excess_are_reported_for_calibration_sources():
+    forward = np.full((1, 4), 8.0 * LN2)  # 8 bits per unit of 2 tokens: 4 bits per token
+    floors = np.full(4, 6.0 * LN2)  # exact: 3 bits per token
+    leaves = summarize_model(
+        {"forward": forward}, reference_order="forward", n_tokens=np.full(4, 2), floors=floors
+    )
+    assert leaves["forward"]["floor_bits_per_token"] == approx(3.0)
+    assert leaves["forward"]["excess_bits_per_token"] == approx(1.0)
+
+
+def test_leaves_keep_the_callers_order_of_orders():
+    losses = {"reverse": np.ones((1, 5)) * 2, "forward": np.ones((1, 5)), "stride": np.ones((1, 5))}
+    leaves = summarize_model(losses, reference_order="forward", n_tokens=np.ones(5), n_boot=10)
+    assert list(leaves) == ["reverse", "forward", "stride"]
+
+
+# ------------------------------------------------------- outside references
+
+
+def test_single_level_interval_agrees_with_scipy_percentile_bootstrap():
+    # Reference: scipy.stats.bootstrap(method="percentile", paired=True) on the same ratio.
+    rng = np.random.default_rng(7)
+    forward = rng.gamma(3.0, 5.0, size=300)
+    reverse = forward * 1.04 + rng.normal(0.0, 3.0, size=300)
+
+    def gap(x, y, axis=-1):
+        return 100 * (np.sum(y, axis=axis) / np.sum(x, axis=axis) - 1)
+
+    reference = scipy_stats.bootstrap(
+        (forward, reverse),
+        gap,
+        paired=True,
+        method="percentile",
+        n_resamples=4000,
+        random_state=np.random.default_rng(1),
+    ).confidence_interval
+    leaf = summarize_model(
+        {"forward": forward[None], "reverse": reverse[None]},
+        reference_order="forward",
+        n_tokens=np.ones(300),
+        n_boot=4000,
+        seed=3,
+    )["reverse"]
+    width = reference.high - reference.low
+    # Monte Carlo error of a 2.5% quantile from 4000 resamples is a few % of the width.
+    assert leaf["gap_pct_low"] == approx(reference.low, abs=0.1 * width)
+    assert leaf["gap_pct_high"] == approx(reference.high, abs=0.1 * width)
+
+
+def test_sign_flip_p_value_equals_scipy_paired_permutation_test():
+    # Reference: scipy.stats.permutation_test(permutation_type="samples"), exact for 12 pairs.
+    rng = np.random.default_rng(3)
+    forward = rng.normal(20.0, 2.0, size=12)
+    reverse = forward + rng.normal(0.6, 1.5, size=12)
+    reference = scipy_stats.permutation_test(
+        (reverse, forward),
+        lambda x, y, axis=-1: np.sum(x - y, axis=axis),
+        permutation_type="samples",
+        alternative="two-sided",
+        n_resamples=np.inf,
+    )
+    leaf = summarize_model(
+        {"forward": forward[None], "reverse": reverse[None]},
+        reference_order="forward",
+        n_tokens=np.ones(12),
+        n_boot=50,
+    )["reverse"]
+    assert leaf["p_value"] == approx(reference.pvalue, rel=1e-5)
+
+
+def test_monte_carlo_sign_flip_p_value_is_close_to_scipy_and_never_zero():
+    rng = np.random.default_rng(4)
+    differences = rng.normal(0.15, 1.0, size=(60, 1))
+    reference = scipy_stats.permutation_test(
+        (differences[:, 0],),
+        lambda d, axis=-1: np.sum(d, axis=axis),
+        permutation_type="samples",
+        n_resamples=20000,
+        random_state=np.random.default_rng(0),
+    )
+    p_value, exact = sign_flip_pvalue(differences, n_flips=20000, rng=np.random.default_rng(9))
+    assert not exact
+    assert p_value[0] == approx(reference.pvalue, abs=0.02)  # MC error ~ 0.003
+    huge, _ = sign_flip_pvalue(np.full((40, 1), 5.0), n_flips=100, rng=np.random.default_rng(0))
+    assert huge[0] == approx(1 / 101)  # add-one correction (common practice, no source)
+
+
+def test_holm_matches_statsmodels_multipletests():
+    p_values = np.array([0.01, 0.04, 0.03, 0.005, 0.5, 0.02])
+    _, expected, _, _ = multipletests(p_values, method="holm")
+    np.testing.assert_allclose(holm(p_values), expected)
+
+
+def test_adjust_holm_tests_every_non_reference_cell_of_the_table_as_one_family():
+    def leaf(p):
+        return {"p_value": p, "gap_pct": 1.0}
+
+    table = {
+        "demo": {
+            "ngram": {"forward": leaf(1.0), "reverse": leaf(0.01)},
+            "mlp": {"forward": leaf(1.0), "reverse": leaf(0.04)},
+        },
+        "markov": {"ngram": {"forward": leaf(1.0), "reverse": leaf(0.03)}},
+    }
+    adjust_holm(table, reference_order="forward")
+    _, expected, _, _ = multipletests([0.01, 0.04, 0.03], method="holm")  # statsmodels
+    got = [
+        table["demo"]["ngram"]["reverse"],
+        table["demo"]["mlp"]["reverse"],
+        table["markov"]["ngram"]["reverse"],
+    ]
+    assert [g["p_value_holm"] for g in got] == approx(list(expected))
+    assert [g["significant"] for g in got] == [True, False, False]
+    assert "p_value_holm" not in table["demo"]["ngram"]["forward"]
+
+
+def test_adjust_holm_without_the_reference_order_is_a_data_error():
+    with pytest.raises(DataError, match="reference order 'forward' is missing"):
+        adjust_holm({"demo": {"ngram": {"reverse": {"p_value": 0.1}}}})
+
+
+# ------------------------------------------------------------- calibration
+
+
+def coverage(*, shift, n_seeds, repetitions=200, seed_sd=0.01):
+    rng = np.random.default_rng(2024)
+    covered = 0
+    for repetition in range(repetitions):
+        leaf = summarize_model(
+            simulate(rng, n_units=200, n_seeds=n_seeds, shift=shift, seed_sd=seed_sd),
+            reference_order="forward",
+            n_tokens=np.full(200, 10),
+            n_boot=400,
+            n_flips=10,
+            seed=repetition,
+        )["reverse"]
+        covered += leaf["gap_pct_low"] <= 0.0 <= leaf["gap_pct_high"]
+    return covered / repetitions
+
+
+def test_interval_covers_zero_at_about_its_level_on_a_symmetric_source():
+    # 95% interval: coverage within 90-99% over 200 repetitions (binomial sd ~ 1.5%).
+    assert 0.90 <= coverage(shift=0.0, n_seeds=5) <= 0.99
+
+
+def test_interval_excludes_zero_most_of_the_time_on_a_shifted_source():
+    assert coverage(shift=0.03, n_seeds=5, repetitions=50) <= 0.2
+
+
+# ------------------------------------------------------ resampling behaviour
+
+
+def test_same_seed_gives_identical_leaves_and_another_seed_another_interval():
+    losses = simulate(np.random.default_rng(0), n_units=100, n_seeds=3, shift=0.01)
+    first = summarize_model(losses, reference_order="forward", n_tokens=np.ones(100), seed=5)
+    again = summarize_model(losses, reference_order="forward", n_tokens=np.ones(100), seed=5)
+    other = summarize_model(losses, reference_order="forward", n_tokens=np.ones(100), seed=6)
+    assert first == again
+    assert first["reverse"]["gap_pct_low"] != other["reverse"]["gap_pct_low"]
+
+
+def test_an_orders_interval_does_not_depend_on_which_other_orders_are_present():
+    losses = simulate(np.random.default_rng(1), n_units=80, n_seeds=3, shift=0.02)
+    alone = summarize_model(losses, reference_order="forward", n_tokens=np.ones(80))
+    more = summarize_model(
+        {**losses, "stride": losses["reverse"] * 1.5},
+        reference_order="forward",
+        n_tokens=np.ones(80),
+    )
+    assert alone["reverse"] == more["reverse"]
+
+
+def test_grouping_units_by_document_widens_the_interval_when_documents_share_difficulty():
+    rng = np.random.default_rng(2)
+    doc_ids = np.repeat(np.arange(20), 10)  # 20 documents of 10 units
+    doc_effect = np.repeat(rng.normal(0.0, 8.0, size=20), 10)  # a hard document is hard twice
+    forward = rng.gamma(4.0, 10.0, size=200) + 40.0
+    reverse = forward + doc_effect + rng.normal(0.0, 1.0, size=200)
+    losses = {"forward": forward[None], "reverse": reverse[None]}
+    by_unit = summarize_model(losses, reference_order="forward", n_tokens=np.ones(200))
+    by_doc = summarize_model(
+        losses, reference_order="forward", n_tokens=np.ones(200), doc_ids=doc_ids
+    )
+
+    def width(leaf):
+        return leaf["gap_pct_high"] - leaf["gap_pct_low"]
+
+    assert width(by_doc["reverse"]) > 2 * width(by_unit["reverse"])
+
+
+def test_seed_resampling_starts_at_three_seeds():
+    per_group = np.array([[[1.0, 2.0, 3.0], [2.0, 3.0, 4.0]]])  # (1 variant, 2 seeds, 3 units)
+    totals = bootstrap_totals(
+        per_group, n_boot=50, rng=np.random.default_rng(0), resample_seeds=False
+    )
+    # Seeds keep weight 1: each replicate is the seed-average of a unit resample.
+    assert np.all(np.isclose(totals * 2 % 1, 0) | np.isclose(totals * 2 % 1, 1))
+    assert seed_warning(2) is not None and "ignores training randomness" in seed_warning(2)
+    assert seed_warning(1).startswith("with 1 seed ")
+    assert seed_warning(3) is None
+
+
+# ----------------------------------------------------------------- errors
+
+
+def test_orders_scored_on_different_units_are_refused():
+    with pytest.raises(DataError, match="order 'reverse': losses have shape"):
+        summarize_model(
+            {"forward": np.ones((2, 5)), "reverse": np.ones((2, 4))},
+            reference_order="forward",
+            n_tokens=np.ones(5),
+        )
+
+
+def test_infinite_losses_are_refused_with_a_hint():
+    with pytest.raises(DataError, match="zero probability"):
+        summarize_model(
+            {"forward": np.ones((1, 3)), "reverse": np.array([[1.0, np.inf, 1.0]])},
+            reference_order="forward",
+            n_tokens=np.ones(3),
+        )
+
+
+def test_a_bad_level_names_the_parameter_and_what_is_allowed():
+    with pytest.raises(ConfigError) as caught:
+        summarize_model(
+            {"forward": np.ones((1, 3))}, reference_order="forward", n_tokens=np.ones(3), level=95
+        )
+    assert str(caught.value) == (
+        "stats 'summarize_model': parameter level=95 is invalid; allowed: a number > 0.0 and < 1.0"
+    )
+
+
+# ------------------------------------------------ position profile and spans
+
+
+def test_position_profile_gives_exact_positions_for_fixed_length_units_in_bits():
+    forward = Ragged.from_list([[1.0, 2.0, 3.0, 0.5], [3.0, 2.0, 1.0, 0.5]])  # 3 tokens + end
+    reverse = Ragged.from_list([[2.0, 2.0, 2.0, 1.5], [4.0, 2.0, 2.0, 0.5]])
+    profile = position_profile({"forward": forward, "reverse": reverse}, reference_order="forward")
+    assert profile["position"] == "absolute" and profile["x"] == [0.0, 1.0, 2.0]
+    assert profile["tokens"] == [2, 2, 2]
+    assert profile["bits"]["forward"] == approx([2 / LN2, 2 / LN2, 2 / LN2])
+    assert profile["diff_bits"]["reverse"] == approx([1 / LN2, 0.0, 0.0])
+    assert profile["diff_bits"]["forward"] == [0.0, 0.0, 0.0]
+    assert profile["end_bits"]["reverse"] == approx(1.0 / LN2)
+
+
+def test_position_profile_buckets_positions_relative_to_unit_length():
+    long = Ragged.from_list([np.r_[np.zeros(50), np.ones(50), 0.0], np.r_[np.zeros(10), 0.0]])
+    profile = position_profile({"forward": long}, reference_order="forward", n_buckets=2)
+    assert profile["position"] == "relative" and profile["x"] == [0.25, 0.75]
+    assert profile["tokens"] == [55, 55]
+    assert profile["bits"]["forward"] == approx([0.0, 50 / 55 / LN2])
+
+
+def test_span_breakdown_reports_bits_and_perplexity_per_span():
+    # Two units of 4 tokens; span x = positions 0-1, y = positions 2-3.
+    forward = Ragged.from_list([[LN2, LN2, 2 * LN2, 4 * LN2, 0.0]] * 2)
+    reverse = Ragged.from_list([[2 * LN2, 2 * LN2, LN2, LN2, 0.0]] * 2)
+    spans = span_breakdown({"forward": forward, "reverse": reverse}, {"x": (0, 2), "y": (2, 4)})
+    assert spans["forward"]["x"] == {
+        "bits_per_token": 1.0,
+        "perplexity": 2.0,
+        "bits_per_unit": 2.0,
+        "tokens": 4,
+    }
+    assert spans["forward"]["y"]["bits_per_token"] == approx(3.0)
+    assert spans["forward"]["y"]["perplexity"] == approx(8.0)
+    assert spans["reverse"]["x"]["bits_per_token"] == approx(2.0)
+
+
+def test_profiles_of_orders_with_different_units_are_refused():
+    with pytest.raises(DataError, match="do not match"):
+        position_profile(
+            {"forward": Ragged.from_list([[1.0, 1.0]]), "reverse": Ragged.from_list([[1.0]])},
+            reference_order="forward",
+        )
