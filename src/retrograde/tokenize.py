@@ -171,6 +171,8 @@ class ByteTokenizer(Tokenizer):
         return data.astype(np.int32) + 1
 
     def encode_pieces(self, pieces: Sequence[Any]) -> np.ndarray:
+        if isinstance(pieces, (bytes, bytearray)):
+            return np.frombuffer(pieces, dtype=np.uint8).astype(np.int32) + 1
         # Pieces are byte values 0..255 (as ``pieces`` gives them); anything else is unknown.
         ids = np.asarray(pieces, dtype=np.int64).reshape(-1) + 1
         ids[(ids < 1) | (ids > 256)] = UNKNOWN_ID
@@ -261,6 +263,8 @@ class CharTokenizer(Tokenizer):
         return np.where(found, where + 1, UNKNOWN_ID).astype(np.int32)
 
     def encode_pieces(self, pieces: Sequence[Any]) -> np.ndarray:
+        if isinstance(pieces, str):  # a string is its own sequence of one-character pieces
+            return self.encode(pieces)
         if all(isinstance(p, str) and len(p) == 1 for p in pieces):
             return self.encode("".join(pieces))  # vectorized over code points
         return np.array([self.token_id(p) for p in pieces], dtype=np.int32)
