@@ -1,0 +1,132 @@
+"""GF(2) linear algebra and the ``linear_gf2`` calibration source."""
+
+import math
+
+import numpy as np
+import pytest
+import sympy
+
+from retrograde import SequenceSet
+from retrograde.errors import ConfigError, DataError
+from retrograde.sources import _gf2, make
+
+
+def test_inverse_times_matrix_is_the_identity_mod_2():
+    source = make("linear_gf2", n_bits=48, nonzeros=3, matrix_seed=11)
+    identity = np.eye(48, dtype=np.int64)
+    # Plain integer products reduced mod 2, independent of _gf2.matmul.
+    product = (source.matrix_.astype(np.int64) @ source.inverse_.astype(np.int64)) % 2
+    assert np.array_equal(product, identity)
+    product = (source.inverse_.astype(np.int64) @ source.matrix_.astype(np.int64)) % 2
+    assert np.array_equal(product, identity)
+
+
+@pytest.mark.parametrize("matrix_seed", [0, 1, 2])
+def test_inverse_agrees_with_sympy_inv_mod_2(matrix_seed):
+    source = make("linear_gf2", n_bits=9, nonzeros=2, matrix_seed=matrix_seed)
+    reference = sympy.Matrix(source.matrix_.astype(int).tolist()).inv_mod(2)
+    assert source.inverse_.astype(int).tolist() == reference.tolist()
+
+
+def test_inverse_refuses_a_matrix_whose_rows_all_have_even_weight():
+    # Every row has an even number of ones, so A @ (1,..,1) = 0 mod 2 and A is singular.
+    rng = np.random.default_rng(0)
+    matrix = rng.integers(0, 2, size=(8, 8))
+    matrix[:, -1] = matrix[:, :-1].sum(axis=1) % 2
+    assert sympy.Matrix(matrix.tolist()).det() % 2 == 0  # sympy agrees it is singular mod 2
+    with pytest.raises(ValueError, match="singular"):
+        _gf2.inverse(matrix)
+
+
+def test_zero_nonzeros_gives_a_permutation_matrix():
+    matrix = make("linear_gf2", n_bits=20, nonzeros=0, matrix_seed=5).matrix_
+    assert matrix.sum() == 20
+    assert np.array_equal(matrix.sum(axis=0), np.ones(20))
+    assert np.array_equal(matrix.sum(axis=1), np.ones(20))
+
+
+@pytest.mark.parametrize("nonzeros", [1, 2, 4, 7])
+def test_nonzeros_sets_the_ones_per_row_of_each_triangular_factor(nonzeros):
+    n = 24
+    source = make("linear_gf2", n_bits=n, nonzeros=nonzeros, matrix_seed=3)
+    lower, upper = source.factors_["lower"], source.factors_["upper"]
+    rows = np.arange(n)
+    # As documented: 1 on the diagonal plus min(nonzeros, room) ones per row.
+    assert np.array_equal(np.tril(lower, -1).sum(axis=1), np.minimum(nonzeros, rows))
+    assert np.array_equal(np.triu(upper, 1).sum(axis=1), np.minimum(nonzeros, n - 1 - rows))
+    assert np.array_equal(np.diag(lower), np.ones(n)) and np.array_equal(np.diag(upper), np.ones(n))
+    assert not np.triu(lower, 1).any() and not np.tril(upper, -1).any()
+    nnz = int(source.matrix_.sum())
+    assert n <= nnz <= min(n * n, n * (1 + nonzeros) ** 2)
+    metadata = source.metadata()
+    assert metadata["nonzeros_matrix"] == nnz
+    assert metadata["nonzeros_inverse"] == int(source.inverse_.sum())
+    assert metadata["nonzeros_lower_factor"] == n + int(np.minimum(nonzeros, rows).sum())
+
+
+def test_more_nonzeros_make_a_denser_matrix():
+    counts = [
+        int(make("linear_gf2", n_bits=64, nonzeros=m, matrix_seed=0).matrix_.sum())
+        for m in (0, 1, 3, 8)
+    ]
+    assert counts == sorted(counts) and counts[0] == 64 and counts[-1] > 4 * 64
+
+
+def test_every_generated_unit_is_x_followed_by_a_times_x_mod_2():
+    source = make("linear_gf2", n_bits=16, nonzeros=2, matrix_seed=1)
+    units = source.generate(300, seed=4)
+    matrix = units.tokens.reshape(300, 32).astype(np.int64)
+    x, y = matrix[:, :16], matrix[:, 16:]
+    assert np.array_equal(y, (x @ source.matrix_.T.astype(np.int64)) % 2)
+    # x is uniform: each bit is 1 about half the time (binomial, 4800 draws, 5 sigma).
+    assert abs(x.mean() - 0.5) < 5 * math.sqrt(0.25 / x.size)
+    assert units.vocab_size == 2 and units.lengths.tolist() == [32] * 300
+
+
+def test_floor_is_n_ln_2_and_a_tampered_unit_is_refused():
+    source = make("linear_gf2", n_bits=10, nonzeros=1, matrix_seed=0)
+    units = source.generate(4, seed=0)
+    assert source.nll(units) == pytest.approx(np.full(4, 10 * math.log(2)))
+    tokens = units.tokens.copy()
+    tokens[2 * 20 + 15] ^= 1  # flip one y bit of unit 2
+    with pytest.raises(DataError, match="unit 2 has probability 0"):
+        source.nll(units.with_tokens(tokens))
+
+
+def test_the_matrix_depends_on_matrix_seed_only():
+    source = make("linear_gf2", n_bits=12, nonzeros=2, matrix_seed=8)
+    same = make("linear_gf2", n_bits=12, nonzeros=2, matrix_seed=8)
+    assert np.array_equal(source.matrix_, same.matrix_)
+    other = make("linear_gf2", n_bits=12, nonzeros=2, matrix_seed=9)
+    assert not np.array_equal(source.matrix_, other.matrix_)
+    assert not np.array_equal(source.generate(5, seed=0).tokens, source.generate(5, seed=1).tokens)
+
+
+def test_spans_name_x_and_y_and_refuse_another_length():
+    source = make("linear_gf2", n_bits=6, nonzeros=1)
+    assert source.spans(12) == {"x": (0, 6), "y": (6, 12)}
+    with pytest.raises(DataError, match="units have 12 tokens, not 10"):
+        source.spans(10)
+
+
+@pytest.mark.parametrize(
+    ("params", "text"),
+    [
+        ({"n_bits": 0}, "parameter n_bits=0 is invalid; allowed: an integer >= 1 and <= 1024"),
+        (
+            {"n_bits": 4, "nonzeros": 4},
+            "parameter nonzeros=4 is invalid; allowed: an integer >= 0 and <= 3",
+        ),
+        ({"matrix_seed": -1}, "parameter matrix_seed=-1 is invalid"),
+    ],
+)
+def test_invalid_parameters_are_refused(params, text):
+    with pytest.raises(ConfigError, match="source 'linear_gf2'") as info:
+        make("linear_gf2", **params)
+    assert text in str(info.value)
+
+
+def test_nll_refuses_a_unit_of_the_wrong_length():
+    source = make("linear_gf2", n_bits=3, nonzeros=0)
+    with pytest.raises(DataError, match="unit 0 has 5 tokens, expected 6"):
+        source.nll(SequenceSet.from_list([[0, 1, 0, 1, 1]], vocab_size=2))
