@@ -17,7 +17,10 @@ from .errors import RetrogradeError
 __all__ = ["main"]
 
 #: command name -> (module, one-line help)
-COMMANDS: dict[str, tuple[str, str]] = {}
+COMMANDS: dict[str, tuple[str, str]] = {
+    "init": ("retrograde.commands.init", "install the config and stage file into a git + DVC repo"),
+    "run": ("retrograde.commands.run", "compose the config, reproduce the pipeline, print the table"),
+}
 
 
 class _Parser(argparse.ArgumentParser):

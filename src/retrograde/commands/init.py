@@ -1,0 +1,53 @@
+"""``retrograde init [--dir HOST] [--source PATH ...] [--force]``.
+
+Installs ``conf/retrograde/`` (config groups) and ``pipelines/retrograde/dvc.yaml`` (the
+stage file) into an existing git + DVC repository, adds ignore rules to
+``pipelines/retrograde/.gitignore``, and prints the next command. Idempotent; never
+overwrites a changed file without ``--force``; never touches the host's root ``dvc.yaml``
+or ``params.yaml``.
+"""
+
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+
+from ..hostrepo import CONF_DIR, PIPELINE_DIR, find_host
+from ..scaffold import SOURCE_CONFIG, install, planned_files, resolve_sources
+
+__all__ = ["configure", "run"]
+
+
+def configure(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument(
+        "--dir", default=".", metavar="HOST", help="the host repository (default: here)"
+    )
+    parser.add_argument(
+        "--source",
+        action="extend",
+        nargs="+",
+        default=[],
+        metavar="PATH",
+        help="corpus file(s) inside the repository, existing or written by a host stage; "
+        "they become the files of the default 'corpus' source",
+    )
+    parser.add_argument(
+        "--force", action="store_true", help="overwrite installed files that were changed"
+    )
+
+
+def run(args: argparse.Namespace) -> int:
+    host = find_host(args.dir)
+    sources = resolve_sources(host, args.source, cwd=Path.cwd())
+    result = install(host, planned_files(sources=sources), force=args.force)
+    if result.written:
+        print(f"retrograde init: wrote {len(result.written)} file(s) in {host.root}:")
+        for path in result.written:
+            print(f"  {path}")
+    else:
+        print(f"retrograde init: {host.root} already has every file (nothing written)")
+    if not sources:
+        print(f"check the corpus files in {SOURCE_CONFIG} (or rerun init with --source PATH)")
+    print("next:")
+    print(f"  cd {host.root} && git add {CONF_DIR} {PIPELINE_DIR} && retrograde run")
+    return 0

@@ -1,0 +1,306 @@
+"""``retrograde init``: install the config groups and the stage file into a host repository.
+
+The package ships default config groups (``retrograde/conf/``) and the stage template
+(``retrograde/templates/dvc.yaml``). :func:`planned_files` maps them to their places in the
+host (``conf/retrograde/...`` and ``pipelines/retrograde/dvc.yaml``) as bytes, a pure
+function of the package data and the ``--source`` paths; :func:`install` then writes them.
+
+``install`` is all-or-nothing and never damages the host (DESIGN.md, invariant 7):
+
+- it writes only below ``conf/retrograde/`` and ``pipelines/retrograde/``;
+- an existing file with identical content is left alone, so running ``init`` twice is a
+  no-op; an existing file with other content stops everything, before anything is written,
+  unless ``force`` is given;
+- ignore rules are *added* to ``pipelines/retrograde/.gitignore`` (DVC appends its own
+  entries to the same file, so it is merged line by line, never compared whole).
+
+The region of the stage file between ``# >>>`` and ``# <<<`` marker lines belongs to
+``retrograde run`` (it writes one ``units`` stage per source there), so a stage file that
+differs from the template only inside that region counts as unchanged.
+"""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, field
+from importlib import resources
+from importlib.resources.abc import Traversable
+from pathlib import Path, PurePosixPath
+from typing import Any
+
+import yaml
+
+from ._io import atomic_write_bytes
+from .errors import DataError, HostRepoError
+from .hostrepo import CONF_DIR, DVC_FILE, PIPELINE_DIR, HostRepo
+
+__all__ = [
+    "GITIGNORE",
+    "IGNORE_RULES",
+    "SOURCE_CONFIG",
+    "InstallResult",
+    "host_stage_outputs",
+    "install",
+    "planned_files",
+    "resolve_sources",
+    "source_config",
+]
+
+#: The ignore file init merges its rules into, relative to the host root.
+GITIGNORE = PIPELINE_DIR / ".gitignore"
+#: Lines init makes sure are in :data:`GITIGNORE`: per-stage logs of ``run --jobs`` and
+#: leftovers of interrupted atomic writes (``.name.XXXX.tmp``, ``.name.old``).
+IGNORE_RULES = ("/logs/", ".*.tmp", ".*.old")
+
+#: The packaged source config that ``--source`` paths are written into (the default source).
+SOURCE_CONFIG = CONF_DIR / "source" / "corpus.yaml"
+
+_MANAGED_BLOCK = re.compile(rb"^[ \t]*# >>>[^\n]*\n.*?^[ \t]*# <<<[^\n]*$", re.M | re.S)
+
+
+@dataclass
+class InstallResult:
+    """What :func:`install` did, as host-relative paths."""
+
+    written: list[PurePosixPath] = field(default_factory=list)
+    unchanged: list[PurePosixPath] = field(default_factory=list)
+
+
+def _package_tree(node: Traversable, prefix: PurePosixPath) -> dict[PurePosixPath, bytes]:
+    files: dict[PurePosixPath, bytes] = {}
+    for child in sorted(node.iterdir(), key=lambda c: c.name):
+        if child.name.startswith((".", "__")):
+            continue  # editor files, __pycache__
+        if child.is_dir():
+            files.update(_package_tree(child, prefix / child.name))
+        elif child.name.endswith(".yaml"):
+            files[prefix / child.name] = child.read_bytes()
+    return files
+
+
+def planned_files(*, sources: Sequence[str] = ()) -> dict[PurePosixPath, bytes]:
+    """Every file ``init`` installs, host-relative path -> bytes (ignore rules excluded).
+
+    Parameters
+    ----------
+    sources : sequence of str
+        Host-relative POSIX paths of the corpus files (already checked by
+        :func:`resolve_sources`); when given they replace the files of the default
+        ``corpus`` source config.
+
+    Examples
+    --------
+    >>> files = planned_files()
+    >>> str(DVC_FILE) in {str(p) for p in files}, str(SOURCE_CONFIG) in {str(p) for p in files}
+    (True, True)
+    """
+    package = resources.files("retrograde")
+    files = _package_tree(package / "conf", CONF_DIR)
+    files[DVC_FILE] = (package / "templates" / "dvc.yaml").read_bytes()
+    if sources:
+        files[SOURCE_CONFIG] = source_config(files[SOURCE_CONFIG], sources)
+    return files
+
+
+def source_config(template: bytes, paths: Sequence[str]) -> bytes:
+    """The ``corpus`` source config with its files (and DVC deps) set to ``paths``.
+
+    The leading comment block is kept verbatim (its ``# @package`` line tells Hydra where
+    the group goes); the rest is re-emitted from the parsed YAML in its original key order.
+
+    Examples
+    --------
+    >>> template = b"# @package study.sources.corpus\\nname: text\\nparams:\\n  files: [a]\\ndeps: [a]\\n"
+    >>> print(source_config(template, ["data/x.txt"]).decode(), end="")
+    # @package study.sources.corpus
+    # Files set by `retrograde init --source`.
+    name: text
+    params:
+      files:
+      - data/x.txt
+    deps:
+    - data/x.txt
+    """
+    text = template.decode("utf-8")
+    lines = text.splitlines(keepends=True)
+    header = "".join(line for line in _leading_comments(lines))
+    body: dict[str, Any] = yaml.safe_load(text) or {}
+    body.setdefault("params", {})["files"] = list(paths)
+    body["deps"] = list(paths)
+    note = "# Files set by `retrograde init --source`.\n"
+    dumped = yaml.safe_dump(body, sort_keys=False, default_flow_style=False, allow_unicode=True)
+    return (header + note + dumped).encode("utf-8")
+
+
+def _leading_comments(lines: Iterable[str]) -> Iterable[str]:
+    for line in lines:
+        if not line.startswith("#"):
+            return
+        yield line
+
+
+def host_stage_outputs(host: HostRepo) -> list[PurePosixPath]:
+    """Host-relative outputs declared by the host's own stage files (not retrograde's).
+
+    Reads every ``dvc.yaml`` git knows about (tracked or untracked, not ignored), outside
+    ``pipelines/retrograde/``. Templated outputs (``${...}``) are skipped: they cannot be
+    matched to a path without DVC's interpolation.
+    """
+    from .hostrepo import run_git
+
+    listed = run_git(
+        host.root, ["ls-files", "--cached", "--others", "--exclude-standard", "--", "*dvc.yaml"]
+    ).stdout.splitlines()
+    outputs: list[PurePosixPath] = []
+    for name in sorted(set(listed)):
+        stage_file = PurePosixPath(name)
+        if stage_file.name != "dvc.yaml" or _is_below(stage_file, PIPELINE_DIR):
+            continue
+        try:
+            data = yaml.safe_load((host.root / stage_file).read_text(encoding="utf-8")) or {}
+        except (OSError, yaml.YAMLError):
+            continue  # DVC itself reports a broken host stage file; it is not ours to judge
+        for stage in (data.get("stages") or {}).values():
+            if not isinstance(stage, dict):
+                continue
+            wdir = stage_file.parent / str(stage.get("wdir", "."))
+            for out in [*(stage.get("outs") or []), *(stage.get("metrics") or [])]:
+                path = next(iter(out)) if isinstance(out, dict) else out
+                if isinstance(path, str) and "${" not in path:
+                    outputs.append(_normalize(wdir / path))
+    return outputs
+
+
+def resolve_sources(host: HostRepo, paths: Sequence[str], *, cwd: Path) -> list[str]:
+    """Check ``--source`` paths and return them host-relative, POSIX, in the given order.
+
+    A path must lie inside the host repository and either exist or be (inside) an output
+    of one of the host's own DVC stages, so a corpus that the host's pipeline produces later
+    is accepted and DVC connects the two pipelines.
+
+    Raises
+    ------
+    DataError
+        One line naming the first bad path and what to do.
+    """
+    root = host.root.resolve()
+    resolved: list[str] = []
+    outputs: list[PurePosixPath] | None = None
+    for given in paths:
+        absolute = (cwd / given).resolve()
+        if not absolute.is_relative_to(root):
+            raise DataError(
+                f"source {given!r} is outside the host repository {root}; copy or track "
+                "the corpus inside the repository and pass that path"
+            )
+        relative = PurePosixPath(absolute.relative_to(root).as_posix())
+        if absolute.is_dir():
+            raise DataError(
+                f"source {given!r} is a folder; pass the corpus files (a shell glob such as "
+                f"{given.rstrip('/')}/*.txt expands to them)"
+            )
+        if not absolute.exists():
+            outputs = host_stage_outputs(host) if outputs is None else outputs
+            if not any(relative == out or _is_below(relative, out) for out in outputs):
+                raise DataError(
+                    f"source {given!r} does not exist in {root} and no stage in the host's "
+                    "dvc.yaml files writes it; check the path, or add the stage that "
+                    "produces it first"
+                )
+        resolved.append(relative.as_posix())
+    return list(dict.fromkeys(resolved))
+
+
+def install(
+    host: HostRepo, files: dict[PurePosixPath, bytes], *, force: bool = False
+) -> InstallResult:
+    """Write ``files`` into the host, plus the ignore rules; all-or-nothing.
+
+    Raises
+    ------
+    HostRepoError
+        A planned path exists with other content (and ``force`` is false), is a folder, or
+        leads outside ``conf/retrograde/`` or ``pipelines/retrograde/`` (for example through a
+        symbolic link). Nothing has been written when this is raised.
+    """
+    root = host.root.resolve()
+    result = InstallResult()
+    to_write: dict[PurePosixPath, bytes] = {}
+    for relative, content in sorted(files.items()):
+        target = _checked_target(root, relative)
+        if target.is_dir():
+            raise HostRepoError(f"{relative} is a folder where init installs a file; move it away")
+        if target.exists():
+            if _same(relative, target.read_bytes(), content):
+                result.unchanged.append(relative)
+                continue
+            if not force:
+                raise HostRepoError(
+                    f"{relative} already exists in {root} with other content; nothing was "
+                    "written; rerun with --force to overwrite it (and every other changed file)"
+                )
+        to_write[relative] = content
+    ignore_target = _checked_target(root, GITIGNORE)
+    existing = ignore_target.read_bytes() if ignore_target.is_file() else None
+    merged = _merge_ignore(existing)
+    if merged != existing:
+        to_write[GITIGNORE] = merged
+    else:
+        result.unchanged.append(GITIGNORE)
+    for relative, content in to_write.items():
+        atomic_write_bytes(root / relative, content)
+        result.written.append(relative)
+    return result
+
+
+def _merge_ignore(existing: bytes | None) -> bytes:
+    """``existing`` with every rule of :data:`IGNORE_RULES` it lacks appended."""
+    text = "" if existing is None else existing.decode("utf-8")
+    have = {line.strip() for line in text.splitlines()}
+    missing = [rule for rule in IGNORE_RULES if rule not in have]
+    if not missing:
+        return text.encode("utf-8")
+    if text and not text.endswith("\n"):
+        text += "\n"
+    block = "# retrograde: logs of `run --jobs` and leftovers of interrupted writes\n"
+    return (text + block + "".join(f"{rule}\n" for rule in missing)).encode("utf-8")
+
+
+def _same(relative: PurePosixPath, existing: bytes, planned: bytes) -> bool:
+    if relative == DVC_FILE:
+        # `retrograde run` owns the marked region; compare everything else.
+        existing = _MANAGED_BLOCK.sub(b"# >>>\n# <<<", existing)
+        planned = _MANAGED_BLOCK.sub(b"# >>>\n# <<<", planned)
+    return existing == planned
+
+
+def _checked_target(root: Path, relative: PurePosixPath) -> Path:
+    """``root / relative``, refused unless it really lies in retrograde's two folders.
+
+    ``root`` is resolved, so resolving the target exposes any symbolic link that leads
+    elsewhere (inside or outside the repository).
+    """
+    target = (root / relative).resolve()
+    if not any(target.is_relative_to(root / folder) for folder in (CONF_DIR, PIPELINE_DIR)):
+        raise HostRepoError(
+            f"{relative} would be written outside {CONF_DIR}/ and {PIPELINE_DIR}/ "
+            f"(it resolves to {target}); remove the symbolic link that leads there"
+        )
+    return target
+
+
+def _is_below(path: PurePosixPath, folder: PurePosixPath) -> bool:
+    return path != folder and path.is_relative_to(folder)
+
+
+def _normalize(path: PurePosixPath) -> PurePosixPath:
+    """Collapse ``.`` and ``..`` without touching the file system."""
+    parts: list[str] = []
+    for part in path.parts:
+        if part == "..":
+            if parts:
+                parts.pop()
+        elif part != ".":
+            parts.append(part)
+    return PurePosixPath(*parts) if parts else PurePosixPath(".")

@@ -1,0 +1,218 @@
+"""`retrograde init`: installs conf/ and the stage file into a real git + DVC host, safely."""
+
+from __future__ import annotations
+
+import subprocess
+from importlib import resources
+from pathlib import Path
+
+import pytest
+import yaml
+
+from _host_fixtures import new_host, sh, snapshot
+from retrograde.cli import main
+from retrograde.hostrepo import find_host
+from retrograde.scaffold import IGNORE_RULES, install, planned_files, source_config
+
+pytestmark = pytest.mark.dvc
+
+HOST_STAGES = "stages:\n  prepare:\n    cmd: python prepare.py\n    outs:\n      - data/prepared\n"
+
+
+def _init(capsys, *argv: str) -> tuple[int, str, str]:
+    status = main(["init", *argv])
+    out, err = capsys.readouterr()
+    return status, out, err
+
+
+def _changed(before: dict[str, bytes], after: dict[str, bytes]) -> set[str]:
+    return {p for p in before.keys() | after.keys() if before.get(p) != after.get(p)}
+
+
+@pytest.fixture
+def host(tmp_path, monkeypatch):
+    """A committed git + DVC host with its own root dvc.yaml and params.yaml."""
+    folder = new_host(tmp_path / "host")
+    (folder / "dvc.yaml").write_text(HOST_STAGES)
+    (folder / "params.yaml").write_text("prepare: {lowercase: true}\n")
+    (folder / "data").mkdir()
+    (folder / "data" / "corpus.txt").write_text("one line\nanother line\n")
+    sh(["git", "add", "-A"], folder)
+    sh(["git", "commit", "-q", "-m", "host pipeline"], folder)
+    monkeypatch.chdir(folder)
+    return folder
+
+
+def test_init_writes_only_conf_and_pipeline_folders_and_prints_the_next_command(host, capsys):
+    before = snapshot(host)
+    status, out, err = _init(capsys)
+    assert (status, err) == (0, "")
+    changed = _changed(before, snapshot(host))
+    assert changed and all(
+        p.startswith(("conf/retrograde/", "pipelines/retrograde/")) for p in changed
+    )
+    assert "dvc.yaml" not in changed and "params.yaml" not in changed
+    # The packaged config groups arrive byte for byte.
+    package_conf = resources.files("retrograde") / "conf"
+    assert (host / "conf/retrograde/config.yaml").read_bytes() == (
+        package_conf / "config.yaml"
+    ).read_bytes()
+    template = resources.files("retrograde") / "templates" / "dvc.yaml"
+    assert (host / "pipelines/retrograde/dvc.yaml").read_bytes() == template.read_bytes()
+    assert f"cd {host.resolve()} && git add conf/retrograde pipelines/retrograde" in out
+    assert out.rstrip().endswith("retrograde run")
+
+
+def test_installed_files_are_what_planned_files_lists(host, capsys):
+    _init(capsys)
+    for relative, content in planned_files().items():
+        assert (host / relative).read_bytes() == content
+
+
+def test_git_itself_ignores_the_parallel_logs_but_not_the_stage_file(host, capsys):
+    _init(capsys)
+    ignored = sh(
+        ["git", "check-ignore", "--no-index", "pipelines/retrograde/logs/fit@a.log"], host
+    ).strip()
+    assert ignored == "pipelines/retrograde/logs/fit@a.log"
+    result = subprocess.run(
+        ["git", "check-ignore", "-q", "pipelines/retrograde/dvc.yaml"], cwd=host, check=False
+    )
+    assert result.returncode == 1  # git check-ignore's documented status for "not ignored"
+
+
+def test_init_twice_writes_nothing_the_second_time(host, capsys):
+    _init(capsys)
+    before = snapshot(host)
+    status, out, _ = _init(capsys)
+    assert status == 0
+    assert "already has every file (nothing written)" in out
+    assert snapshot(host) == before
+
+
+def test_a_changed_file_stops_init_before_anything_is_written(host, capsys):
+    _init(capsys)
+    study = host / "conf/retrograde/study/default.yaml"
+    study.write_text(study.read_text() + "# my edit\n")
+    (host / "conf/retrograde/config.yaml").unlink()  # would be re-created if init went on
+    before = snapshot(host)
+    status, out, err = _init(capsys)
+    assert status == 2 and out == ""
+    assert err.count("\n") == 1
+    assert err.startswith("retrograde: error: conf/retrograde/study/default.yaml already exists")
+    assert "rerun with --force" in err
+    assert snapshot(host) == before
+
+
+def test_force_overwrites_changed_files_with_the_packaged_ones(host, capsys):
+    _init(capsys)
+    study = host / "conf/retrograde/study/default.yaml"
+    study.write_text("# mine\n")
+    status, out, _ = _init(capsys, "--force")
+    assert status == 0 and "conf/retrograde/study/default.yaml" in out
+    assert study.read_bytes() == planned_files()[Path("conf/retrograde/study/default.yaml")]
+
+
+def test_the_units_block_written_by_run_does_not_count_as_a_change(host, capsys):
+    _init(capsys)
+    stage_file = host / "pipelines/retrograde/dvc.yaml"
+    text = stage_file.read_text()
+    start = text.index("  # >>>")
+    end = text.index("\n", start) + 1
+    units = "  units:\n    matrix: {source: [corpus]}\n    cmd: python -m retrograde.stages.units\n"
+    stage_file.write_text(text[:end] + units + text[end:])
+    before = snapshot(host)
+    assert _init(capsys)[0] == 0
+    assert snapshot(host) == before
+
+
+def test_ignore_rules_merge_with_lines_dvc_appended(host, capsys):
+    _init(capsys)
+    ignore = host / "pipelines/retrograde/.gitignore"
+    ignore.write_text(ignore.read_text() + "/metrics-cache\n")  # as DVC appends its outputs
+    assert _init(capsys)[0] == 0
+    lines = ignore.read_text().splitlines()
+    assert lines.count("/metrics-cache") == 1
+    assert all(lines.count(rule) == 1 for rule in IGNORE_RULES)
+
+
+def test_outside_a_git_repository_init_says_to_run_git_init_and_writes_nothing(tmp_path, capsys):
+    plain = tmp_path / "plain"
+    plain.mkdir()
+    status, out, err = _init(capsys, "--dir", str(plain))
+    assert status == 2 and out == "" and err.count("\n") == 1
+    assert f"run `git init {plain.resolve()}` first" in err
+    assert list(plain.iterdir()) == []
+
+
+def test_without_dvc_init_says_to_run_dvc_init_and_writes_nothing(tmp_path, capsys):
+    folder = new_host(tmp_path / "nodvc", with_dvc=False)
+    before = snapshot(folder)
+    status, _, err = _init(capsys, "--dir", str(folder))
+    assert status == 2 and err.count("\n") == 1
+    assert "dvc init" in err and "DVC is not initialised" in err
+    assert snapshot(folder) == before
+
+
+def test_source_paths_become_the_corpus_files_and_dvc_dependencies(host, capsys):
+    status, _, _ = _init(capsys, "--source", "data/corpus.txt", "data/prepared/extra.txt")
+    assert status == 0
+    corpus = yaml.safe_load((host / "conf/retrograde/source/corpus.yaml").read_text())
+    assert corpus["params"]["files"] == ["data/corpus.txt", "data/prepared/extra.txt"]
+    assert corpus["deps"] == ["data/corpus.txt", "data/prepared/extra.txt"]
+    header = (host / "conf/retrograde/source/corpus.yaml").read_text().splitlines()[0]
+    assert header == "# @package study.sources.corpus"
+
+
+def test_source_paths_are_taken_relative_to_the_current_folder(host, capsys, monkeypatch):
+    monkeypatch.chdir(host / "data")
+    assert _init(capsys, "--dir", str(host), "--source", "corpus.txt")[0] == 0
+    corpus = yaml.safe_load((host / "conf/retrograde/source/corpus.yaml").read_text())
+    assert corpus["params"]["files"] == ["data/corpus.txt"]
+
+
+def test_a_missing_source_that_no_host_stage_writes_is_refused_in_one_line(host, capsys):
+    before = snapshot(host)
+    status, _, err = _init(capsys, "--source", "data/typo.txt")
+    assert status == 2 and err.count("\n") == 1
+    assert "source 'data/typo.txt' does not exist" in err and "no stage" in err
+    assert snapshot(host) == before
+
+
+def test_a_source_outside_the_repository_is_refused_in_one_line(host, tmp_path, capsys):
+    outside = tmp_path / "elsewhere.txt"
+    outside.write_text("x\n")
+    before = snapshot(host)
+    status, _, err = _init(capsys, "--source", str(outside))
+    assert status == 2 and "is outside the host repository" in err
+    assert snapshot(host) == before
+
+
+def test_a_symbolic_link_leading_out_of_the_two_folders_is_refused(host, tmp_path, capsys):
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    (host / "conf").mkdir()
+    (host / "conf" / "retrograde").symlink_to(elsewhere)
+    status, _, err = _init(capsys)
+    assert status == 2 and "would be written outside conf/retrograde/" in err
+    assert list(elsewhere.iterdir()) == []
+
+
+def test_install_reports_written_and_unchanged_paths(host):
+    files = planned_files()
+    first = install(find_host(host), files)
+    second = install(find_host(host), files)
+    assert len(first.written) == len(files) + 1  # + the ignore file
+    assert second.written == [] and len(second.unchanged) == len(files) + 1
+
+
+def test_source_config_keeps_the_package_header_and_other_keys():
+    template = (resources.files("retrograde") / "conf" / "source" / "corpus.yaml").read_bytes()
+    rewritten = source_config(template, ["a.txt"])
+    original = yaml.safe_load(template)
+    updated = yaml.safe_load(rewritten)
+    assert updated["params"]["files"] == ["a.txt"] and updated["deps"] == ["a.txt"]
+    for key in original:
+        if key not in ("params", "deps"):
+            assert updated[key] == original[key]
+    assert rewritten.startswith(b"# @package study.sources.corpus\n")
