@@ -1,0 +1,228 @@
+"""Vectorized n-gram counting and interpolated modified Kneser–Ney tables.
+
+Everything here is a pure function on arrays; :mod:`retrograde.families.ngram` wraps it as a
+family. Notation (``V`` = vocabulary size, ``N`` = n-gram order):
+
+- An *event* is one prediction: every token of a unit, then the end marker. A unit of
+  length ``L`` gives ``L + 1`` events.
+- Context symbols are token ids ``0..V-1`` plus the begin marker ``V`` (padding before the
+  unit starts). Outcomes are token ids plus the end marker ``V``. Both alphabets have
+  ``V + 1`` symbols, so ``n_symbols == V + 1``.
+- A context of length ``j`` is the ``j`` symbols before the event. Contexts get integer
+  ids level by level, never as wide keys: the context of length ``j`` is the pair
+  (id of its length ``j-1`` suffix, the symbol ``j`` back), keyed as
+  ``suffix_id * n_symbols + symbol`` and ranked among the distinct keys. Keys therefore
+  stay below ``n_contexts * n_symbols`` whatever ``N`` is (no 64-bit overflow at ``N = 10``).
+- A ``k``-gram type is (id of its length ``k-1`` context, outcome), keyed
+  ``context_id * n_symbols + outcome``; each level keeps its distinct keys sorted, so
+  look-ups are ``np.searchsorted``.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+__all__ = [
+    "FALLBACK_DISCOUNT",
+    "KneserNeyTables",
+    "count_tables",
+    "distinct_counts",
+    "interpolated_probs",
+    "lookup",
+    "modified_kn_discounts",
+    "rank_pairs",
+]
+
+#: Single discount used when a level has no singletons (``n1 == 0``), so eq. 26 is
+#: undefined. 0.5 is the usual middle value (common practice, no source).
+FALLBACK_DISCOUNT = 0.5
+
+# Dense rank tables (one int32 slot per possible key) are faster than sorting when the key
+# space is small, as it is for characters or bytes; above this many keys we sort instead.
+_DENSE_KEYS = 1 << 25
+
+
+def _index_dtype(n: int) -> type[np.signedinteger[Any]]:
+    return np.int32 if n < (1 << 31) else np.int64
+
+
+def rank_pairs(high: np.ndarray, low: np.ndarray, n_low: int) -> tuple[np.ndarray, np.ndarray]:
+    """Ids of the pairs ``(high, low)`` among their distinct values, in key order.
+
+    Returns ``(ids, keys)``: ``keys`` are the sorted distinct ``high * n_low + low`` (int64)
+    and ``ids[e]`` is the index of pair ``e``'s key in ``keys`` (int32 when it fits).
+    """
+    n_high = int(high.max()) + 1 if len(high) else 1
+    if n_high * n_low >= 1 << 62:
+        raise OverflowError(f"n-gram key space {n_high} x {n_low} does not fit in 63 bits")
+    keys = high.astype(np.int64) * n_low + low
+    space = n_high * n_low
+    if space <= _DENSE_KEYS:
+        present = np.zeros(space, dtype=bool)
+        present[keys] = True
+        distinct = np.flatnonzero(present)
+        del present
+        rank = np.empty(space, dtype=_index_dtype(len(distinct)))
+        rank[distinct] = np.arange(len(distinct))
+        return rank[keys], distinct
+    order = np.argsort(keys)
+    sorted_keys = keys[order]
+    del keys
+    is_new = np.empty(len(sorted_keys), dtype=bool)
+    is_new[:1] = True
+    np.not_equal(sorted_keys[1:], sorted_keys[:-1], out=is_new[1:])
+    ids = np.empty(len(order), dtype=_index_dtype(len(order)))
+    ids[order] = np.cumsum(is_new, dtype=ids.dtype) - 1
+    return ids, sorted_keys[is_new]
+
+
+def distinct_counts(keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Sorted distinct values of ``keys`` and how often each occurs (sorts ``keys`` in place)."""
+    keys.sort()
+    starts = np.flatnonzero(np.concatenate([[True], keys[1:] != keys[:-1]]))
+    return keys[starts], np.diff(np.append(starts, len(keys))).astype(np.int64)
+
+
+def lookup(sorted_keys: np.ndarray, keys: np.ndarray) -> np.ndarray:
+    """Index of each key in ``sorted_keys``, or ``-1`` where it is absent.
+
+    A dense table (one slot per possible key) replaces the binary search when the key space
+    is small next to the number of queries: random binary searches miss the cache.
+    """
+    if len(sorted_keys) == 0:
+        return np.full(len(keys), -1, dtype=np.int64)
+    space = int(sorted_keys[-1]) + 1
+    if space <= min(_DENSE_KEYS, max(1 << 16, 4 * len(keys))):
+        table = np.full(space + 1, -1, dtype=_index_dtype(len(sorted_keys)))
+        table[sorted_keys] = np.arange(len(sorted_keys))
+        return table[np.minimum(keys, space)]  # keys >= space are absent (slot ``space``)
+    where = np.minimum(np.searchsorted(sorted_keys, keys), len(sorted_keys) - 1)
+    return np.where(sorted_keys[where] == keys, where, -1)
+
+
+def modified_kn_discounts(counts: np.ndarray) -> np.ndarray:
+    """(3,) discounts ``D1, D2, D3+`` from counts-of-counts (Chen & Goodman 1998, eq. 26).
+
+    ``Y = n1 / (n1 + 2 n2)``, ``D1 = 1 - 2 Y n2 / n1``, ``D2 = 2 - 3 Y n3 / n2``,
+    ``D3+ = 3 - 4 Y n4 / n3``, where ``n_r`` counts the n-gram types seen exactly ``r``
+    times. **Fallback**: when a formula's counts-of-counts are zero or it falls outside
+    ``(0, r]`` (small vocabularies such as bits or characters have no rare low-order
+    types), that discount becomes the single absolute discount ``Y`` (Ney, Essen & Kneser
+    1994), and ``Y`` itself becomes :data:`FALLBACK_DISCOUNT` when ``n1 == 0``. Every
+    discount thus lies in ``(0, r]``, so every seen context keeps mass for lower orders.
+
+    Examples
+    --------
+    >>> modified_kn_discounts(np.array([1, 1, 1, 1, 2, 2, 3, 4])).round(4).tolist()
+    [0.5, 1.25, 1.0]
+    """
+    n1, n2, n3, n4 = np.bincount(np.minimum(counts, 5), minlength=6)[1:5].astype(np.float64)
+    y = n1 / (n1 + 2 * n2) if n1 > 0 else FALLBACK_DISCOUNT
+    formulas = [
+        (1.0, 1 - 2 * y * n2 / n1 if n1 > 0 else np.nan),
+        (2.0, 2 - 3 * y * n3 / n2 if n2 > 0 else np.nan),
+        (3.0, 3 - 4 * y * n4 / n3 if n3 > 0 else np.nan),
+    ]
+    return np.array([d if 0 < d <= r else y for r, d in formulas], dtype=np.float64)
+
+
+@dataclass
+class KneserNeyTables:
+    """Everything a fitted model needs to score; level ``k`` (1..N) predicts from ``k-1`` symbols.
+
+    ``context_keys[j]`` (j = 1..N-1) are the sorted keys of the length-``j`` contexts (index 0
+    is an empty placeholder: the empty context has id 0). ``type_keys[k]`` / ``type_counts[k]``
+    (k = 1..N, index 0 unused) are the ``k``-gram types and their counts: raw counts at
+    ``k = N``, continuation counts (distinct left extensions) below. ``discounts`` is
+    ``(N + 1, 3)``, row ``k`` for level ``k``.
+    """
+
+    order: int
+    n_symbols: int
+    context_keys: list[np.ndarray]
+    type_keys: list[np.ndarray]
+    type_counts: list[np.ndarray]
+    discounts: np.ndarray
+
+    def __post_init__(self) -> None:
+        # Derived per level: alpha for each type, (total, gamma) for each context.
+        self.alphas: list[np.ndarray] = [np.zeros(0)]
+        self.gammas: list[np.ndarray] = [np.zeros(0)]
+        for k in range(1, self.order + 1):
+            counts = self.type_counts[k].astype(np.float64)
+            context = self.type_keys[k] // self.n_symbols
+            n_contexts = 1 if k == 1 else len(self.context_keys[k - 1])
+            totals = np.bincount(context, weights=counts, minlength=n_contexts)
+            per_type = self.discounts[k][np.minimum(self.type_counts[k], 3) - 1]
+            discounted = np.bincount(context, weights=per_type, minlength=n_contexts)
+            self.alphas.append((counts - per_type) / totals[context])
+            self.gammas.append(discounted / totals)
+
+
+def count_tables(
+    symbol_at_lag: Callable[[int], np.ndarray],
+    outcomes: np.ndarray,
+    *,
+    order: int,
+    n_symbols: int,
+    fixed_discount: float | None = None,
+) -> KneserNeyTables:
+    """Count every level and derive modified-KN discounts.
+
+    ``symbol_at_lag(j)`` returns the ``(n_events,)`` context symbol ``j`` positions back
+    (the begin marker before the unit starts); ``outcomes`` is ``(n_events,)``.
+    """
+    context_keys: list[np.ndarray] = [np.zeros(0, dtype=np.int64)]
+    context_ids = np.zeros(len(outcomes), dtype=np.int64)  # the empty context
+    for lag in range(1, order):
+        context_ids, keys = rank_pairs(context_ids, symbol_at_lag(lag), n_symbols)
+        context_keys.append(keys)
+    top_keys = context_ids.astype(np.int64) * n_symbols + outcomes
+    del context_ids
+    type_keys = [np.zeros(0, dtype=np.int64)] * (order + 1)
+    type_counts = [np.zeros(0, dtype=np.int64)] * (order + 1)
+    type_keys[order], type_counts[order] = distinct_counts(top_keys)
+    del top_keys
+    for k in range(order - 1, 0, -1):
+        # Continuation count of a k-gram: how many distinct (k+1)-gram types end with it.
+        longer = type_keys[k + 1]
+        longer_context = longer // n_symbols
+        shorter_context = context_keys[k][longer_context] // n_symbols
+        suffix_keys = shorter_context * n_symbols + longer % n_symbols
+        type_keys[k], type_counts[k] = distinct_counts(suffix_keys)
+    discounts = np.zeros((order + 1, 3))
+    for k in range(1, order + 1):
+        if fixed_discount is None:
+            discounts[k] = modified_kn_discounts(type_counts[k])
+        else:
+            discounts[k] = fixed_discount
+    return KneserNeyTables(order, n_symbols, context_keys, type_keys, type_counts, discounts)
+
+
+def interpolated_probs(
+    tables: KneserNeyTables, symbol_at_lag: Callable[[int], np.ndarray], outcomes: np.ndarray
+) -> np.ndarray:
+    """(n_events,) interpolated modified-KN probability of each outcome.
+
+    ``p_0 = 1 / n_symbols`` (uniform over tokens and the end marker); for ``k = 1..N``,
+    ``p_k = max(c - D(c), 0) / c(h) + gamma(h) p_{k-1}`` when the length ``k-1`` context
+    ``h`` was seen in training, else ``p_k = p_{k-1}`` (Chen & Goodman 1998, eqs. 17 and 19).
+    """
+    n_symbols = tables.n_symbols
+    probs = np.full(len(outcomes), 1.0 / n_symbols)
+    context_ids = np.zeros(len(outcomes), dtype=np.int64)
+    for k in range(1, tables.order + 1):
+        if k > 1:
+            # Extend the context by one symbol; once unseen (-1), it stays unseen.
+            keys = np.maximum(context_ids, 0) * n_symbols + symbol_at_lag(k - 1)
+            context_ids = np.where(context_ids >= 0, lookup(tables.context_keys[k - 1], keys), -1)
+        seen = context_ids >= 0
+        seen_ids = context_ids[seen]
+        where = lookup(tables.type_keys[k], seen_ids * n_symbols + outcomes[seen])
+        alpha = np.where(where >= 0, tables.alphas[k][np.maximum(where, 0)], 0.0)
+        probs[seen] = alpha + tables.gammas[k][seen_ids] * probs[seen]
+    return probs

@@ -1,0 +1,180 @@
+"""The ``ngram`` family: interpolated modified Kneser–Ney (Chen & Goodman 1998).
+
+Each unit is padded on the left with ``order - 1`` begin markers (context only, never
+predicted) and ends with the end marker (predicted, never context), so the model's
+probabilities over (unit, length) sum to one. The lowest level interpolates with a uniform
+distribution over the ``vocab_size + 1`` outcomes, so no outcome ever has probability 0.
+Counting and scoring are vectorized (see :mod:`retrograde.families._ngram_counts`).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Sequence
+from typing import Any, ClassVar
+
+import numpy as np
+
+from .._validation import check_float, check_int
+from ..errors import DataError
+from ..sequences import Ragged, SequenceSet
+from . import registry
+from ._base import Family
+from ._ngram_counts import KneserNeyTables, count_tables, interpolated_probs
+
+__all__ = ["NGram"]
+
+
+def _events(units: SequenceSet) -> tuple[Callable[[int], np.ndarray], np.ndarray, np.ndarray]:
+    """Events of ``units``: ``(symbol_at_lag, outcomes, event_offsets)``.
+
+    Unit ``i`` owns events ``event_offsets[i]:event_offsets[i+1]`` (its tokens, then the end
+    marker). ``symbol_at_lag(j)`` gives each event's symbol ``j`` back, the begin marker
+    (= ``vocab_size``) before the unit starts.
+    """
+    begin = end = int(units.vocab_size if units.vocab_size is not None else 0)
+    lengths = units.lengths
+    n_units = len(units)
+    event_offsets = units.offsets + np.arange(n_units + 1, dtype=np.int64)
+    n_events = int(event_offsets[-1])
+    # int32 halves the memory of these (n_events,) arrays at 25 M tokens.
+    index_dtype = np.int32 if n_events < (1 << 31) else np.int64
+    unit_of_event: np.ndarray = np.repeat(np.arange(n_units, dtype=index_dtype), lengths + 1)
+    # Flat token index of each event's own position (== next unit's start for end markers).
+    token_index = np.arange(n_events, dtype=index_dtype) - unit_of_event
+    # Position inside the unit, capped: only "is it at least lag (<= 9)?" is ever asked.
+    position = np.minimum(token_index - units.offsets[:-1][unit_of_event], 127).astype(np.int8)
+    del unit_of_event
+    tokens = np.asarray(units.tokens)
+    outcomes = np.full(n_events, end, dtype=np.int32)
+    is_token = np.ones(n_events, dtype=bool)
+    is_token[event_offsets[1:] - 1] = False
+    outcomes[is_token] = tokens[token_index[is_token]]
+    del is_token
+
+    def symbol_at_lag(lag: int) -> np.ndarray:
+        symbols = tokens[np.maximum(token_index - lag, 0)].astype(np.int32)
+        symbols[position < lag] = begin
+        return symbols
+
+    return symbol_at_lag, outcomes, event_offsets
+
+
+@registry.register("ngram")
+class NGram(Family):
+    """Interpolated modified Kneser–Ney n-gram model.
+
+    Parameters
+    ----------
+    order : int, default 5
+        n-gram order ``N`` in 1..10 (the model sees the previous ``N - 1`` tokens).
+    discount : float or None, default None
+        ``None`` estimates three discounts per level from counts-of-counts (Chen & Goodman
+        1998, eq. 26, with the fallback documented in
+        :func:`~retrograde.families._ngram_counts.modified_kn_discounts`); a number in
+        ``(0, 1]`` uses that one discount everywhere (plain interpolated Kneser–Ney).
+
+    Examples
+    --------
+    >>> from retrograde import SequenceSet
+    >>> train = SequenceSet.from_list([[0, 1, 2], [0, 1, 1, 2]] * 20, vocab_size=3)
+    >>> model = NGram(order=2).fit(train)
+    >>> model.next_token_probs([np.array([0])]).sum().round(12)
+    np.float64(1.0)
+    """
+
+    name: ClassVar[str] = "ngram"
+    #: small, fast parameters for the conformance test
+    _test_params: ClassVar[dict[str, Any]] = {"order": 3}
+
+    order: int
+    discount: float | None
+    tables_: KneserNeyTables
+
+    def __init__(self, *, order: int = 5, discount: float | None = None) -> None:
+        super().__init__(order=order, discount=discount)
+
+    def _validate_params(self) -> None:
+        owner = f"family {self.name!r}"
+        check_int(owner, "order", self.order, 1, 10)
+        if self.discount is not None:
+            check_float(owner, "discount", self.discount, 0.0, 1.0, low_open=True)
+
+    # ------------------------------------------------------------------- learning
+    def fit(self, train: SequenceSet, valid: SequenceSet | None = None, seed: int = 0) -> NGram:
+        """Count ``train`` and estimate discounts; ``seed`` is unused (counting is exact)."""
+        self._validate_params()
+        if len(train.tokens) == 0 and len(train) == 0:
+            raise DataError(f"family {self.name!r}: the training split has no units")
+        self.vocab_size_ = train.effective_vocab_size()
+        train = _with_vocab(train, self.vocab_size_)
+        symbol_at_lag, outcomes, _ = _events(train)
+        self.tables_ = count_tables(
+            symbol_at_lag,
+            outcomes,
+            order=self.order,
+            n_symbols=self.vocab_size_ + 1,
+            fixed_discount=self.discount,
+        )
+        self.learning_curve_ = []
+        if valid is not None and len(valid):
+            # Not iterative: one point, so reports can still show validation loss.
+            nats = -float(self.logprobs(valid).values.sum())
+            bits = nats / math.log(2) / max(len(valid.tokens), 1)
+            self.learning_curve_ = [{"epoch": 1, "valid_bits_per_token": bits}]
+        return self
+
+    # -------------------------------------------------------------------- scoring
+    def logprobs(self, units: SequenceSet) -> Ragged:
+        """Row ``i``: ``len(units[i]) + 1`` natural-log probabilities, end marker last."""
+        self._check_fitted()
+        self._check_units(units)
+        symbol_at_lag, outcomes, event_offsets = _events(_with_vocab(units, self.vocab_size_))
+        probs = interpolated_probs(self.tables_, symbol_at_lag, outcomes)
+        return Ragged(np.log(probs), event_offsets)
+
+    def next_token_probs(self, contexts: Sequence[np.ndarray]) -> np.ndarray:
+        """(n_contexts, vocab_size + 1) full distribution after each context (from unit start)."""
+        self._check_fitted()
+        n_outcomes = self.vocab_size_ + 1
+        begin = self.vocab_size_
+        history = self.order - 1
+        # (n_contexts, history) last symbols, most recent first; begin marker before the start.
+        lagged = np.full((len(contexts), max(history, 1)), begin, dtype=np.int64)
+        for row, context in enumerate(contexts):
+            recent = np.asarray(context, dtype=np.int64)[::-1][:history]
+            lagged[row, : len(recent)] = recent
+        # Score every (context, outcome) pair at once: n_contexts * n_outcomes events.
+        repeated = np.repeat(lagged, n_outcomes, axis=0)
+        outcomes = np.tile(np.arange(n_outcomes, dtype=np.int64), len(contexts))
+        probs = interpolated_probs(self.tables_, lambda lag: repeated[:, lag - 1], outcomes)
+        return probs.reshape(len(contexts), n_outcomes)
+
+    # ---------------------------------------------------------------- persistence
+    def _get_state(self) -> dict[str, np.ndarray]:
+        tables: KneserNeyTables = self.tables_
+        state = {"discounts": tables.discounts}
+        for j in range(1, self.order):
+            state[f"context_keys_{j}"] = tables.context_keys[j]
+        for k in range(1, self.order + 1):
+            state[f"type_keys_{k}"] = tables.type_keys[k]
+            state[f"type_counts_{k}"] = tables.type_counts[k]
+        return state
+
+    def _set_state(self, state: dict[str, np.ndarray]) -> None:
+        empty = np.zeros(0, dtype=np.int64)
+        self.tables_ = KneserNeyTables(
+            order=self.order,
+            n_symbols=self.vocab_size_ + 1,
+            context_keys=[empty] + [state[f"context_keys_{j}"] for j in range(1, self.order)],
+            type_keys=[empty] + [state[f"type_keys_{k}"] for k in range(1, self.order + 1)],
+            type_counts=[empty] + [state[f"type_counts_{k}"] for k in range(1, self.order + 1)],
+            discounts=state["discounts"],
+        )
+
+
+def _with_vocab(units: SequenceSet, vocab_size: int) -> SequenceSet:
+    """The same units with ``vocab_size`` set (it fixes the begin and end marker ids)."""
+    if units.vocab_size == vocab_size:
+        return units
+    return SequenceSet(units.tokens, units.offsets, vocab_size=vocab_size)
