@@ -18,6 +18,7 @@ __all__ = ["main"]
 
 #: command name -> (module, one-line help)
 COMMANDS: dict[str, tuple[str, str]] = {
+    "check": ("retrograde.commands.check", "cut, split and tokenize a file; round-trip orders"),
     "init": ("retrograde.commands.init", "install the config and stage file into a git + DVC repo"),
     "run": ("retrograde.commands.run", "compose the config, reproduce the pipeline, print the table"),
 }
