@@ -9,6 +9,7 @@ sources also get ``deps``: the files they read, relative to the host root, which
 from __future__ import annotations
 
 import contextlib
+import inspect
 import os
 from collections.abc import Iterator
 from pathlib import Path
@@ -38,6 +39,24 @@ def working_directory(folder: Path) -> Iterator[None]:
 def _prefixed(where: str, exc: RetrogradeError) -> RetrogradeError:
     """The same error class with the config key path in front of its message."""
     return type(exc)(f"{where}: {exc}")
+
+
+def check_param_names(where: str, kind: str, factory: Any, params: dict[str, Any]) -> None:
+    """Refuse a parameter the plug-in's ``__init__`` does not take, with a did-you-mean."""
+    try:
+        signature = inspect.signature(factory)
+    except (TypeError, ValueError):  # a builtin or C callable: let the call decide
+        return
+    accepted = signature.parameters.values()
+    if any(p.kind is inspect.Parameter.VAR_KEYWORD for p in accepted):
+        return
+    names = [p.name for p in accepted if p.kind is not inspect.Parameter.VAR_POSITIONAL]
+    for key in params:
+        if key not in names:
+            raise ConfigError(
+                f"{where}: {kind} has no parameter {key!r}{did_you_mean(key, names)}; "
+                f"allowed: {', '.join(names) or 'no parameters'}"
+            )
 
 
 def check_plugins(config: dict[str, Any], root: Path) -> dict[str, Any]:
@@ -79,6 +98,10 @@ def _check_orders(orders_config: dict[str, Any]) -> None:
 
     for name, entry in orders_config.items():
         try:
+            factory = orders.registry.get(entry["name"])
+            check_param_names(
+                f"study.orders.{name}", f"order {entry['name']!r}", factory, entry["params"]
+            )
             orders.make(entry["name"], **entry["params"])
         except RetrogradeError as exc:
             raise _prefixed(f"study.orders.{name}", exc) from exc
@@ -89,6 +112,10 @@ def _check_models(models_config: dict[str, Any]) -> None:
 
     for name, entry in models_config.items():
         try:
+            factory = families.registry.get(entry["family"])
+            check_param_names(
+                f"study.models.{name}", f"family {entry['family']!r}", factory, entry["params"]
+            )
             model = families.make(entry["family"], **entry["params"])
             model._validate_params()  # families check their params in fit; do it now
         except RetrogradeError as exc:
@@ -125,6 +152,7 @@ def _check_source(name: str, source: dict[str, Any], root: Path) -> dict[str, An
         factory = sources.registry.get(source["name"])
     except RetrogradeError as exc:
         raise _prefixed(where, exc) from exc
+    check_param_names(where, f"source {source['name']!r}", factory, source["params"])
     out = dict(source)
     if getattr(factory, "is_calibration", False):
         check_int(f"{where}.calibration", "n_units", source["calibration"]["n_units"], 3)
@@ -175,6 +203,9 @@ def _check_tokenizer(where: str, tokenizer: dict[str, Any]) -> None:
     from . import tokenize
 
     try:
+        factory = tokenize.registry.get(tokenizer["name"])
+        kind = f"tokenizer {tokenizer['name']!r}"
+        check_param_names(f"{where}.tokenizer", kind, factory, tokenizer["params"])
         tokenize.make(tokenizer["name"], **tokenizer["params"])
     except RetrogradeError as exc:
         raise _prefixed(f"{where}.tokenizer", exc) from exc

@@ -165,17 +165,18 @@ def compose_raw(conf_dir: str | os.PathLike[str], overrides: Sequence[str] = ())
         raise ConfigError(
             f"{conf_dir / 'config.yaml'} not found; run `retrograde init` to write the defaults"
         )
+    failure: Exception | None = None
     with initialize_config_dir(config_dir=str(conf_dir), version_base="1.3"):
         try:
             cfg = hydra_compose(config_name="config", overrides=list(overrides))
-        except MissingConfigException as exc:
-            raise _missing_option_error(conf_dir, exc) from exc
-        except (HydraException, OmegaConfBaseException) as exc:
-            raise _override_error(conf_dir, overrides, exc) from exc
-        try:
             container = OmegaConf.to_container(cfg, resolve=True)
-        except OmegaConfBaseException as exc:
-            raise ConfigError(f"{conf_dir}: {_first_line(exc)}") from exc
+        except (HydraException, OmegaConfBaseException) as exc:
+            failure = exc
+    # Explained outside the `with`: the explanation may compose again (Hydra is global).
+    if isinstance(failure, MissingConfigException):
+        raise _missing_option_error(conf_dir, failure) from failure
+    if failure is not None:
+        raise _override_error(conf_dir, overrides, failure) from failure
     assert isinstance(container, dict)
     container.pop("hydra", None)
     return container  # type: ignore[return-value]

@@ -1,0 +1,267 @@
+"""Config: Hydra composition of the packaged groups, schema checks, sweeps, one-line errors."""
+
+from __future__ import annotations
+
+import itertools
+import shutil
+from importlib import resources
+from pathlib import Path
+
+import pytest
+import yaml
+from omegaconf import OmegaConf
+
+from retrograde.config import (
+    RetrogradeConfig,
+    check_schema,
+    compose,
+    expand_sweeps,
+    normalize,
+    register_configs,
+)
+from retrograde.errors import ConfigError, DataError, RetrogradeError
+from retrograde.stages import grid_cells
+
+CORPUS = "first line of text\nsecond line of text\nthird one\n" * 20
+
+
+@pytest.fixture
+def host(tmp_path: Path) -> Path:
+    """A folder laid out like a host after `retrograde init`: packaged conf + a corpus."""
+    root = tmp_path / "host"
+    conf = resources.files("retrograde") / "conf"
+    with resources.as_file(conf) as conf_path:
+        shutil.copytree(conf_path, root / "conf" / "retrograde")
+    (root / "data").mkdir()
+    (root / "data" / "corpus.txt").write_text(CORPUS)
+    return root
+
+
+def _one_line_error(host: Path, overrides: list[str], kind: type[RetrogradeError] = ConfigError):
+    with pytest.raises(kind) as info:
+        compose(host, overrides)
+    message = str(info.value)
+    assert "\n" not in message
+    return message
+
+
+# ------------------------------------------------------------------------------ the shape
+def test_default_config_composes_into_the_documented_shape(host):
+    params = compose(host)
+    study = params["study"]
+    assert list(params) == ["study", "stats"]
+    corpus = study["sources"]["corpus"]
+    assert corpus["kind"] == "file" and corpus["deps"] == ["data/corpus.txt"]
+    assert corpus["tokenizer"] == {"name": "chars", "params": {}}
+    assert corpus["units"]["mode"] == "line"
+    assert study["orders"] == {
+        "forward": {"name": "forward", "params": {}},
+        "reverse": {"name": "reverse", "params": {}},
+    }
+    assert study["models"] == {"ngram": {"family": "ngram", "params": {"order": 3}}}
+    assert study["seeds"] == [0, 1, 2] and study["reference_order"] == "forward"
+    assert params["stats"] == {"level": 0.95, "n_boot": 2000, "seed": 0, "position_buckets": 50}
+
+
+def test_composed_params_read_back_identically_with_pyyaml_and_omegaconf(host):
+    # DVC reads params.yaml with its own YAML parser: the dict must survive plain YAML.
+    params = compose(host, ["study.seeds=[4,5]"])
+    text = yaml.safe_dump(params, sort_keys=False)
+    assert yaml.safe_load(text) == params
+    assert OmegaConf.to_container(OmegaConf.create(text)) == params
+
+
+def test_overrides_use_hydra_grammar_and_compose_is_deterministic(host):
+    overrides = ["study.seeds=[7,8]", "+study.orders.blocks={name: block_reverse}"]
+    first, second = compose(host, overrides), compose(host, overrides)
+    assert first == second
+    assert first["study"]["seeds"] == [7, 8]
+    assert first["study"]["orders"]["blocks"] == {"name": "block_reverse", "params": {}}
+
+
+def test_several_sources_including_a_calibration_source(host):
+    params = compose(host, ["source=[corpus,markov]"])
+    markov = params["study"]["sources"]["markov"]
+    assert markov["kind"] == "calibration" and markov["deps"] == []
+    assert markov["tokenizer"] is None and markov["calibration"] == {"n_units": 1000, "seed": 0}
+    assert list(params["study"]["sources"]) == ["corpus", "markov"]
+
+
+def test_grid_has_one_cell_per_source_model_order_seed(host):
+    params = compose(host, ["source=[corpus,markov]", "study.seeds=[0,1]"])
+    study = params["study"]
+    expected = list(
+        itertools.product(study["sources"], study["models"], study["orders"], study["seeds"])
+    )
+    assert grid_cells(params) == expected and len(expected) == 2 * 1 * 2 * 2
+
+
+# ------------------------------------------------------------------------------- sweeps
+def test_sweep_expands_into_named_models_with_only_the_swept_value_changed(host):
+    params = compose(
+        host, ["+study.sweeps.context={model: ngram, parameter: order, values: [1, 2, 4]}"]
+    )
+    models = params["study"]["models"]
+    assert sorted(models) == ["ngram", "ngram_order1", "ngram_order2", "ngram_order4"]
+    assert models["ngram_order4"] == {"family": "ngram", "params": {"order": 4}}
+    assert params["study"]["sweeps"]["context"]["models"] == {
+        "ngram_order1": 1,
+        "ngram_order2": 2,
+        "ngram_order4": 4,
+    }
+
+
+def test_sweep_value_names_stay_safe_for_dvc_stage_names():
+    study = {
+        "models": {"mlp": {"family": "mlp", "params": {}}},
+        "sweeps": {"lr": {"model": "mlp", "parameter": "rate", "values": [0.5, "a-b"]}},
+    }
+    assert sorted(expand_sweeps(study)["models"]) == ["mlp", "mlp_rate0p5", "mlp_ratea_b"]
+
+
+def test_sweep_over_an_unknown_model_names_the_sweep_and_the_models(host):
+    message = _one_line_error(
+        host, ["+study.sweeps.width={model: ngarm, parameter: order, values: [1]}"]
+    )
+    assert "study.sweeps.width.model='ngarm'" in message and "did you mean 'ngram'" in message
+
+
+# --------------------------------------------------------------------- _target_ entries
+def test_target_entries_become_name_and_params():
+    raw = {
+        "study": {
+            "orders": {"mine": {"_target_": "pkg.Mine", "size": 3}},
+            "models": {"net": {"_target_": "pkg.Net", "params": {"a": 1}, "b": 2}},
+            "sources": {"s": {"_target_": "pkg.Src", "files": ["x"], "deps": ["x"]}},
+        }
+    }
+    study = normalize(raw)["study"]
+    assert study["orders"]["mine"] == {"name": "pkg.Mine", "params": {"size": 3}}
+    assert study["models"]["net"] == {"family": "pkg.Net", "params": {"a": 1, "b": 2}}
+    assert study["sources"]["s"] == {"deps": ["x"], "name": "pkg.Src", "params": {"files": ["x"]}}
+
+
+def test_an_order_given_by_target_is_built_and_checked_at_compose_time(host):
+    params = compose(
+        host, ["+study.orders.blocks={_target_: retrograde.orders.BlockReverse, size: 2}"]
+    )
+    assert params["study"]["orders"]["blocks"] == {
+        "name": "retrograde.orders.BlockReverse",
+        "params": {"size": 2},
+    }
+    message = _one_line_error(
+        host, ["+study.orders.blocks={_target_: retrograde.orders.BlockReverse, size: 0}"]
+    )
+    assert message.startswith("study.orders.blocks: ") and "size=0" in message
+
+
+# ---------------------------------------------------------------------- one-line errors
+def test_unknown_override_key_fails_with_did_you_mean_and_the_keys_allowed(host):
+    message = _one_line_error(host, ["study.sedes=[1]"])
+    assert "'study.sedes'" in message and "did you mean 'seeds'" in message
+    assert "orders" in message and "reference_order" in message
+
+
+def test_unknown_key_added_in_a_config_file_names_its_key_path(host):
+    path = host / "conf/retrograde/source/corpus.yaml"
+    path.write_text(path.read_text() + "tokeniser: {name: words}\n")
+    message = _one_line_error(host, [])
+    assert "'study.sources.corpus.tokeniser'" in message
+    assert "did you mean 'tokenizer'" in message and "allowed keys" in message
+
+
+def test_unknown_config_group_option_lists_what_exists(host):
+    message = _one_line_error(host, ["source=[corpsu]"])
+    assert "unknown source config 'corpsu'" in message and "did you mean 'corpus'" in message
+
+
+@pytest.mark.parametrize(
+    ("override", "expected"),
+    [
+        ("study.orders.reverse.name=revrese", "unknown order 'revrese' (did you mean 'reverse'?)"),
+        ("study.models.ngram.family=ngarm", "unknown family 'ngarm' (did you mean 'ngram'?)"),
+        ("study.sources.corpus.name=txt", "unknown source 'txt'"),
+        ("study.sources.corpus.tokenizer.name=word", "unknown tokenizer"),
+    ],
+)
+def test_unknown_plugin_names_fail_with_did_you_mean(host, override, expected):
+    assert expected in _one_line_error(host, [override])
+
+
+@pytest.mark.parametrize(
+    ("override", "expected"),
+    [
+        ("study.models.ngram.params.order=0", "parameter order=0 is invalid"),
+        ("+study.models.ngram.params.ordr=2", "no parameter 'ordr' (did you mean 'order'?)"),
+        ("study.models.ngram.params.ordr=2", "'study.models.ngram.params.ordr'"),
+        ("+study.orders.reverse.params.size=2", "order 'reverse' has no parameter 'size'"),
+        ("study.seeds=[1,1]", "seeds=[1, 1] is invalid"),
+        ("study.seeds=[]", "seeds=[] is invalid"),
+        ("study.seeds=[-1]", "seeds=-1 is invalid"),
+        ("study.reference_order=forwad", "did you mean 'forward'"),
+        ("stats.level=1.5", "parameter level=1.5 is invalid"),
+        ("stats.n_boot=many", "'stats.n_boot'"),
+        ("study.sources.corpus.split.fractions=[0.5,0.1,0.1]", "summing to 1"),
+        ("study.sources.corpus.units.mode=paragraph", "mode='paragraph' is invalid"),
+        ("study.sources.corpus.units.mode=window", "window=None is invalid"),
+        ("+study.orders.bad-name={name: reverse}", "the name 'bad-name' is invalid"),
+        ("~study.models.ngram", "study.models is empty"),
+    ],
+)
+def test_bad_values_fail_before_any_work_naming_key_value_and_what_is_allowed(
+    host, override, expected
+):
+    assert expected in _one_line_error(host, [override])
+
+
+def test_source_file_outside_the_host_repository_is_refused(host):
+    (host.parent / "outside.txt").write_text(CORPUS)
+    message = _one_line_error(
+        host,
+        [
+            "study.sources.corpus.params.files=[../outside.txt]",
+            "study.sources.corpus.deps=[../outside.txt]",
+        ],
+    )
+    assert "'../outside.txt' lies outside the host repository" in message
+
+
+def test_missing_corpus_is_fine_when_deps_name_it_but_not_otherwise(host):
+    # A host stage may write the corpus later: declared deps are enough to compose.
+    (host / "data" / "corpus.txt").unlink()
+    params = compose(host)
+    assert params["study"]["sources"]["corpus"]["deps"] == ["data/corpus.txt"]
+    message = _one_line_error(host, ["study.sources.corpus.deps=null"], DataError)
+    assert "list them under study.sources.corpus.deps" in message
+
+
+def test_files_read_but_not_listed_as_deps_are_refused(host):
+    (host / "data" / "more.txt").write_text(CORPUS)
+    message = _one_line_error(host, ["study.sources.corpus.params.files=[data/*.txt]"])
+    assert "reads 'data/more.txt'" in message and "deps does not list it" in message
+    params = compose(
+        host, ["study.sources.corpus.params.files=[data/*.txt]", "~study.sources.corpus.deps"]
+    )
+    assert params["study"]["sources"]["corpus"]["deps"] == ["data/corpus.txt", "data/more.txt"]
+
+
+def test_missing_config_folder_says_to_run_init(tmp_path):
+    with pytest.raises(ConfigError, match="run `retrograde init`"):
+        compose(tmp_path)
+
+
+# ------------------------------------------------------------------------------ schemas
+def test_schema_fills_defaults_for_keys_a_config_leaves_out():
+    checked = check_schema({"study": {"orders": {"r": {"name": "reverse"}}}})
+    assert checked["study"]["orders"]["r"] == {"name": "reverse", "params": {}}
+    assert checked["stats"]["n_boot"] == 2000
+
+
+def test_register_configs_stores_the_schema_in_hydra_config_store():
+    from hydra.core.config_store import ConfigStore
+
+    register_configs()
+    repo = ConfigStore.instance().repo
+    assert "retrograde_schema.yaml" in repo and "study_schema.yaml" in repo["study"]
+    node = repo["retrograde_schema.yaml"].node
+    assert OmegaConf.get_type(node) is RetrogradeConfig
