@@ -33,7 +33,19 @@ from ...errors import RetrogradeError
 from .. import registry
 from .._base import FileSource
 
-__all__ = ["DemoSource", "HEADER", "corpus_text", "entries", "main", "write_corpus"]
+__all__ = [
+    "HEADER",
+    "DemoSource",
+    "corpus_text",
+    "entries",
+    "main",
+    "sized_entries",
+    "write_corpus",
+]
+
+#: the header alone is ~150 bytes; below this the corpus would hold no entry
+MIN_SIZE = 1_000
+MAX_SIZE = 500_000_000
 
 HEADER = (
     "INVENTED DEMO DATA — not real records.\n"
@@ -164,26 +176,28 @@ def entries(seed: int) -> Iterator[str]:
         yield _entry(rng, ticket, day)
 
 
-def corpus_text(*, size_bytes: int, seed: int) -> str:
-    """The header paragraph and whole entries until at least ``size_bytes`` UTF-8 bytes."""
-    pieces = [HEADER.format(seed=seed)]
-    total = len(pieces[0].encode("utf-8")) + 2
+def sized_entries(*, size_bytes: int, seed: int) -> Iterator[str]:
+    """The entries :func:`corpus_text` holds: added whole until the corpus (header, entries
+    and blank-line separators) has at least ``size_bytes`` UTF-8 bytes."""
+    total = len(HEADER.format(seed=seed).encode("utf-8")) + 2
     for entry in entries(seed):
         if total >= size_bytes:
-            break
-        pieces.append(entry)
-        total += len(entry) + 2  # entries are ASCII; 2 for the blank-line separator
+            return
+        yield entry
+        total += len(entry.encode("utf-8")) + 2  # 2 for the blank-line separator
+
+
+def corpus_text(*, size_bytes: int, seed: int) -> str:
+    """The header paragraph, then whole entries, one paragraph each; ends with a newline."""
+    pieces = [HEADER.format(seed=seed), *sized_entries(size_bytes=size_bytes, seed=seed)]
     return "\n\n".join(pieces) + "\n"
 
 
 def write_corpus(path: str | Path, *, size_bytes: int = 2_000_000, seed: int = 0) -> None:
     """Write the invented corpus to ``path`` atomically (UTF-8, LF line endings)."""
-    check_int("source 'demo'", "size_bytes", size_bytes, 1, MAX_SIZE)
+    check_int("source 'demo'", "size_bytes", size_bytes, MIN_SIZE, MAX_SIZE)
     check_int("source 'demo'", "seed", seed, 0)
     atomic_write_text(path, corpus_text(size_bytes=size_bytes, seed=seed))
-
-
-MAX_SIZE = 500_000_000
 
 
 @registry.register("demo")
@@ -192,7 +206,7 @@ class DemoSource(FileSource):
 
     Parameters
     ----------
-    size_bytes : int, 1 <= size_bytes <= 500_000_000
+    size_bytes : int, 1000 <= size_bytes <= 500_000_000
         Approximate corpus size (whole entries are added until it is reached).
     seed : int >= 0
         Fixes the corpus.
@@ -212,7 +226,7 @@ class DemoSource(FileSource):
         self._validate_params()
 
     def _validate_params(self) -> None:
-        check_int(self._owner, "size_bytes", self.size_bytes, 1, MAX_SIZE)
+        check_int(self._owner, "size_bytes", self.size_bytes, MIN_SIZE, MAX_SIZE)
         check_int(self._owner, "seed", self.seed, 0)
 
     def paths(self) -> list[Path]:
@@ -220,12 +234,10 @@ class DemoSource(FileSource):
         return []
 
     def documents(self) -> Iterator[Document]:
-        total = 0
-        for doc_id, entry in enumerate(entries(self.seed)):
-            if doc_id and total >= self.size_bytes:
-                return
+        """One document per entry: the same entries :func:`write_corpus` writes."""
+        sized = sized_entries(size_bytes=self.size_bytes, seed=self.seed)
+        for doc_id, entry in enumerate(sized):
             n_bytes = len(entry.encode("utf-8"))
-            total += n_bytes + 2
             yield Document(doc_id, f"invented-demo:entry {doc_id}", text=entry, n_bytes=n_bytes)
 
 
