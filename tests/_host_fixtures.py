@@ -7,7 +7,9 @@ test process is built once and each test gets a copy of it.
 from __future__ import annotations
 
 import atexit
+import contextlib
 import functools
+import io
 import shutil
 import subprocess
 import sys
@@ -67,3 +69,18 @@ def snapshot(folder: Path) -> dict[str, bytes]:
         for path in sorted(folder.rglob("*"))
         if path.is_file() and not path.relative_to(folder).as_posix().startswith(skip)
     }
+
+
+def new_pipeline_host(dest: Path, *, corpus_bytes: int = 6000) -> Path:
+    """A host with a small invented corpus at data/corpus.txt and `retrograde init` done,
+    all committed (the state a team is in right after adopting retrograde)."""
+    from retrograde.cli import main
+    from retrograde.sources.demo import write_corpus
+
+    host = new_host(dest)
+    write_corpus(host / "data" / "corpus.txt", size_bytes=corpus_bytes, seed=0)
+    with contextlib.redirect_stdout(io.StringIO()):  # keep init's report out of the test's
+        assert main(["init", "--dir", str(host)]) == 0
+    sh(["git", "add", "-A"], host)
+    sh(["git", "commit", "-q", "-m", "adopt retrograde"], host)
+    return host

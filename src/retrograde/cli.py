@@ -20,6 +20,7 @@ __all__ = ["main"]
 COMMANDS: dict[str, tuple[str, str]] = {
     "check": ("retrograde.commands.check", "cut, split and tokenize a file; round-trip orders"),
     "init": ("retrograde.commands.init", "install the config and stage file into a git + DVC repo"),
+    "plan": ("retrograde.commands.plan", "print (or run) the fit stages of one CI shard"),
     "run": ("retrograde.commands.run", "compose the config, reproduce the pipeline, print the table"),
 }
 
