@@ -10,7 +10,7 @@ Counting and scoring are vectorized (see :mod:`retrograde.families._ngram_counts
 from __future__ import annotations
 
 import math
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from typing import Any, ClassVar
 
 import numpy as np
@@ -20,44 +20,10 @@ from ..errors import DataError
 from ..sequences import Ragged, SequenceSet
 from . import registry
 from ._base import Family
+from ._events import unit_events
 from ._ngram_counts import KneserNeyTables, count_tables, interpolated_probs
 
 __all__ = ["NGram"]
-
-
-def _events(units: SequenceSet) -> tuple[Callable[[int], np.ndarray], np.ndarray, np.ndarray]:
-    """Events of ``units``: ``(symbol_at_lag, outcomes, event_offsets)``.
-
-    Unit ``i`` owns events ``event_offsets[i]:event_offsets[i+1]`` (its tokens, then the end
-    marker). ``symbol_at_lag(j)`` gives each event's symbol ``j`` back, the begin marker
-    (= ``vocab_size``) before the unit starts.
-    """
-    begin = end = int(units.vocab_size if units.vocab_size is not None else 0)
-    lengths = units.lengths
-    n_units = len(units)
-    event_offsets = units.offsets + np.arange(n_units + 1, dtype=np.int64)
-    n_events = int(event_offsets[-1])
-    # int32 halves the memory of these (n_events,) arrays at 25 M tokens.
-    index_dtype = np.int32 if n_events < (1 << 31) else np.int64
-    unit_of_event: np.ndarray = np.repeat(np.arange(n_units, dtype=index_dtype), lengths + 1)
-    # Flat token index of each event's own position (== next unit's start for end markers).
-    token_index = np.arange(n_events, dtype=index_dtype) - unit_of_event
-    # Position inside the unit, capped: only "is it at least lag (<= 9)?" is ever asked.
-    position = np.minimum(token_index - units.offsets[:-1][unit_of_event], 127).astype(np.int8)
-    del unit_of_event
-    tokens = np.asarray(units.tokens)
-    outcomes = np.full(n_events, end, dtype=np.int32)
-    is_token = np.ones(n_events, dtype=bool)
-    is_token[event_offsets[1:] - 1] = False
-    outcomes[is_token] = tokens[token_index[is_token]]
-    del is_token
-
-    def symbol_at_lag(lag: int) -> np.ndarray:
-        symbols = tokens[np.maximum(token_index - lag, 0)].astype(np.int32)
-        symbols[position < lag] = begin
-        return symbols
-
-    return symbol_at_lag, outcomes, event_offsets
 
 
 @registry.register("ngram")
@@ -108,7 +74,7 @@ class NGram(Family):
             raise DataError(f"family {self.name!r}: the training split has no units")
         self.vocab_size_ = train.effective_vocab_size()
         train = _with_vocab(train, self.vocab_size_)
-        symbol_at_lag, outcomes, _ = _events(train)
+        symbol_at_lag, outcomes, _ = unit_events(train)
         self.tables_ = count_tables(
             symbol_at_lag,
             outcomes,
@@ -129,7 +95,7 @@ class NGram(Family):
         """Row ``i``: ``len(units[i]) + 1`` natural-log probabilities, end marker last."""
         self._check_fitted()
         self._check_units(units)
-        symbol_at_lag, outcomes, event_offsets = _events(_with_vocab(units, self.vocab_size_))
+        symbol_at_lag, outcomes, event_offsets = unit_events(_with_vocab(units, self.vocab_size_))
         probs = interpolated_probs(self.tables_, symbol_at_lag, outcomes)
         return Ragged(np.log(probs), event_offsets)
 

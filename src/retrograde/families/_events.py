@@ -1,0 +1,52 @@
+"""Events of a set of units: one prediction per token plus one for the end marker.
+
+Shared by the families that predict from a fixed number of earlier symbols (``ngram``,
+``mlp``). With ``V = units.vocab_size``, context symbols are token ids plus the begin
+marker ``V`` (padding before a unit starts, never predicted) and outcomes are token ids
+plus the end marker ``V`` (predicted after the last token, never context).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+
+import numpy as np
+
+from ..sequences import SequenceSet
+
+__all__ = ["unit_events"]
+
+
+def unit_events(units: SequenceSet) -> tuple[Callable[[int], np.ndarray], np.ndarray, np.ndarray]:
+    """Events of ``units``: ``(symbol_at_lag, outcomes, event_offsets)``.
+
+    Unit ``i`` owns events ``event_offsets[i]:event_offsets[i+1]`` (its tokens, then the end
+    marker). ``symbol_at_lag(j)`` gives each event's symbol ``j`` back, the begin marker
+    (= ``vocab_size``) before the unit starts.
+    """
+    begin = end = int(units.vocab_size if units.vocab_size is not None else 0)
+    lengths = units.lengths
+    n_units = len(units)
+    event_offsets = units.offsets + np.arange(n_units + 1, dtype=np.int64)
+    n_events = int(event_offsets[-1])
+    # int32 halves the memory of these (n_events,) arrays at 25 M tokens.
+    index_dtype = np.int32 if n_events < (1 << 31) else np.int64
+    unit_of_event: np.ndarray = np.repeat(np.arange(n_units, dtype=index_dtype), lengths + 1)
+    # Flat token index of each event's own position (== next unit's start for end markers).
+    token_index = np.arange(n_events, dtype=index_dtype) - unit_of_event
+    # Position inside the unit, capped: only "is it at least lag?" is asked, lag <= 127.
+    position = np.minimum(token_index - units.offsets[:-1][unit_of_event], 127).astype(np.int8)
+    del unit_of_event
+    tokens = np.asarray(units.tokens)
+    outcomes = np.full(n_events, end, dtype=np.int32)
+    is_token = np.ones(n_events, dtype=bool)
+    is_token[event_offsets[1:] - 1] = False
+    outcomes[is_token] = tokens[token_index[is_token]]
+    del is_token
+
+    def symbol_at_lag(lag: int) -> np.ndarray:
+        symbols = tokens[np.maximum(token_index - lag, 0)].astype(np.int32)
+        symbols[position < lag] = begin
+        return symbols
+
+    return symbol_at_lag, outcomes, event_offsets
