@@ -71,10 +71,13 @@ def collect(wdir: Path, params: dict[str, Any]) -> dict[str, Any]:
             natural: dict[str, Ragged] = {}
             curves[source][model] = {}
             for order in study["orders"]:
-                positions = np.load(
-                    wdir / str(order_dir(source, order)) / "positions_test.npy",
-                    allow_pickle=False,
-                )
+                positions_path = wdir / str(order_dir(source, order)) / "positions_test.npy"
+                if not positions_path.is_file():
+                    raise DataError(
+                        f"order {order!r} of source {source!r} was never written "
+                        f"({positions_path.name} missing); run `retrograde run`"
+                    )
+                positions = np.load(positions_path, allow_pickle=False)
                 per_seed_nll, per_seed_losses, per_seed_curves = [], [], []
                 for seed in seeds:
                     values, curve = _read_cell(wdir, source, model, order, seed)
@@ -112,11 +115,12 @@ def collect(wdir: Path, params: dict[str, Any]) -> dict[str, Any]:
         "curves": curves,
         "sweeps": _sweeps(study),
         "provenance": {
-            "retrograde_version": __version__,
+            "package_version": __version__,
             "test_units_sha256": data_hashes,
             "params": params,
         },
         "warnings": [warning] if warning else [],
+        "level": stats_config["level"],
     }
 
 

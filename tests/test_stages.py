@@ -1,0 +1,283 @@
+"""Stage entry points run in-process on a laid-out pipeline folder (no DVC here)."""
+
+from __future__ import annotations
+
+import json
+import math
+import shutil
+from importlib import resources
+from pathlib import Path
+
+import numpy as np
+import pytest
+import yaml
+
+from retrograde import families, sources
+from retrograde.config import compose
+from retrograde.errors import FitError, HostRepoError
+from retrograde.families._base import Family
+from retrograde.orders import Order
+from retrograde.sequences import Ragged, SequenceSet
+from retrograde.stages import UNITS_BEGIN, UNITS_END, render_dvc_yaml
+from retrograde.stages import fit as fit_stage
+from retrograde.stages import reorder as reorder_stage
+from retrograde.stages import table as table_stage
+from retrograde.stages import units as units_stage
+
+LINES = ["the cat sat on the mat", "a dog ran far", "birds sing at dawn", "rain falls softly"]
+CORPUS = "\n".join(f"{line} {i % 7}" for i in range(120) for line in LINES[i % 4 : i % 4 + 1])
+
+
+class BrokenOrder(Order):
+    """Not a bijection: every position reads the unit's first token."""
+
+    def positions_set(self, units: SequenceSet) -> np.ndarray:
+        return np.repeat(units.offsets[:-1], units.lengths)
+
+
+class CrashingFamily(Family):
+    name = "crashing"
+
+    def fit(self, train, valid=None, seed=0):
+        raise RuntimeError("out of memory in layer 3")
+
+    def logprobs(self, units):  # pragma: no cover - never reached
+        raise NotImplementedError
+
+    def next_token_probs(self, contexts):  # pragma: no cover - never reached
+        raise NotImplementedError
+
+
+def _host(root: Path, overrides: list[str]) -> Path:
+    """A host folder with the packaged conf and a corpus; returns the wdir with params.yaml."""
+    with resources.as_file(resources.files("retrograde") / "conf") as conf:
+        shutil.copytree(conf, root / "conf" / "retrograde")
+    (root / "data").mkdir()
+    (root / "data" / "corpus.txt").write_text(CORPUS + "\n")
+    wdir = root / "pipelines" / "retrograde"
+    wdir.mkdir(parents=True)
+    _write_params(wdir, compose(root, overrides))
+    return wdir
+
+
+def _write_params(wdir: Path, params: dict) -> None:
+    (wdir / "params.yaml").write_text(yaml.safe_dump(params, sort_keys=False))
+
+
+def _params(wdir: Path) -> dict:
+    return yaml.safe_load((wdir / "params.yaml").read_text())
+
+
+GRID = ["study=smoke", "study.models.ngram.params.order=2", "stats.n_boot=200"]
+
+
+@pytest.fixture(scope="module")
+def pipeline(tmp_path_factory) -> Path:
+    """Every stage of a 1 source x 1 model x 2 orders x 2 seeds grid, run once."""
+    wdir = _host(tmp_path_factory.mktemp("stages") / "host", GRID)
+    assert units_stage.main(["--params", str(wdir), "--source", "corpus"]) == 0
+    for order in ("forward", "reverse"):
+        assert (
+            reorder_stage.main(["--params", str(wdir), "--source", "corpus", "--order", order]) == 0
+        )
+        for seed in ("0", "1"):
+            argv = ["--source", "corpus", "--model", "ngram", "--order", order, "--seed", seed]
+            assert fit_stage.main(["--params", str(wdir), *argv]) == 0
+    assert table_stage.main(["--params", str(wdir)]) == 0
+    return wdir
+
+
+# --------------------------------------------------------------------------------- units
+def test_units_stage_cuts_one_unit_per_line_and_keeps_identical_lines_in_one_split(pipeline):
+    units = {
+        s: SequenceSet.load(pipeline / f"data/corpus/units/{s}") for s in ("train", "valid", "test")
+    }
+    # Reference: Python's own str.splitlines counts the lines (mode=line).
+    assert sum(len(u) for u in units.values()) == len(CORPUS.splitlines())
+    split_of_content: dict[bytes, set[str]] = {}
+    for name, split in units.items():
+        for unit in split:
+            split_of_content.setdefault(unit.tobytes(), set()).add(name)
+    assert all(len(names) == 1 for names in split_of_content.values())  # invariant 1
+    info = json.loads((pipeline / "data/corpus/units/info.json").read_text())
+    assert info["kind"] == "file" and info["n_units"]["train"] == len(units["train"])
+    assert (pipeline / "data/corpus/units/tokenizer.json").is_file()
+    assert info["vocab_size"] == units["train"].vocab_size
+
+
+def test_units_stage_for_a_calibration_source_writes_exact_floors(tmp_path):
+    wdir = _host(
+        tmp_path / "host", ["source=[markov]", "study.sources.markov.calibration.n_units=60"]
+    )
+    assert units_stage.main(["--params", str(wdir), "--source", "markov"]) == 0
+    folder = wdir / "data/markov/units"
+    test = SequenceSet.load(folder / "test")
+    params = _params(wdir)["study"]["sources"]["markov"]["params"]
+    source = sources.make("markov", **params)
+    np.testing.assert_allclose(np.load(folder / "floors.npy"), source.nll(test))
+    # Reference (chain rule, Cover & Thomas, Elements of Information Theory, eq. 2.61):
+    # the floor of a first-order chain unit is -log pi(x0) - sum_t log P(x_t | x_{t-1}),
+    # with pi the stationary distribution (left eigenvector of P for eigenvalue 1, scipy).
+    from scipy.linalg import eig
+
+    transition = source.transition_
+    values, vectors = eig(transition.T)
+    stationary = np.real(vectors[:, np.argmin(np.abs(values - 1))])
+    stationary /= stationary.sum()
+    unit = test[0].astype(int)
+    by_hand = -np.log(stationary[unit[0]]) - np.log(transition[unit[:-1], unit[1:]]).sum()
+    assert np.load(folder / "floors.npy")[0] == pytest.approx(by_hand, rel=1e-9)
+    info = json.loads((folder / "info.json").read_text())
+    assert info["kind"] == "calibration" and sum(info["n_units"].values()) == 60
+
+
+# ------------------------------------------------------------------------------- reorder
+def test_reorder_stage_reverses_every_unit_and_records_natural_positions(pipeline):
+    natural = SequenceSet.load(pipeline / "data/corpus/units/test")
+    folder = pipeline / "data/corpus/orders/reverse"
+    reversed_units = SequenceSet.load(folder / "test")
+    positions = np.load(folder / "positions_test.npy")
+    for i in range(len(natural)):
+        np.testing.assert_array_equal(reversed_units[i], np.flip(natural[i]))  # numpy reference
+    np.testing.assert_array_equal(reversed_units.tokens, natural.tokens[positions])
+
+
+def test_reorder_stage_refuses_an_order_that_is_not_a_bijection(pipeline, tmp_path, capsys):
+    wdir = tmp_path / "wdir"
+    shutil.copytree(pipeline / "data/corpus/units", wdir / "data/corpus/units")
+    params = _params(pipeline)
+    params["study"]["orders"]["broken"] = {"name": "test_stages.BrokenOrder", "params": {}}
+    _write_params(wdir, params)
+    status = reorder_stage.main(["--params", str(wdir), "--source", "corpus", "--order", "broken"])
+    err = capsys.readouterr().err
+    assert status == 2 and len(err.strip().splitlines()) == 1
+    assert "order 'broken' is not a bijection" in err
+    assert not (wdir / "data/corpus/orders/broken").exists()  # nothing half-written
+
+
+# ----------------------------------------------------------------------------------- fit
+def test_fit_stage_writes_model_scores_curve_and_log(pipeline):
+    cell = pipeline / "cells/corpus/ngram/reverse/seed1"
+    test = SequenceSet.load(pipeline / "data/corpus/orders/reverse/test")
+    values = np.load(cell / "test_logprobs.npy", allow_pickle=False)
+    assert values.dtype == np.float64 and values.shape == (len(test.tokens) + len(test),)
+    assert np.all(values <= 0)
+    # The saved model scores the same units to the same numbers.
+    reloaded = families.load(cell / "model").logprobs(test)
+    np.testing.assert_allclose(reloaded.values, values)
+    assert isinstance(json.loads((cell / "curve.json").read_text()), list)
+    assert "seed=1" in (cell / "fit.log").read_text()
+
+
+def test_fit_crash_names_the_cell_and_keeps_its_log(pipeline, tmp_path, capsys):
+    wdir = tmp_path / "wdir"
+    shutil.copytree(pipeline / "data", wdir / "data")
+    params = _params(pipeline)
+    params["study"]["models"]["boom"] = {"family": "test_stages.CrashingFamily", "params": {}}
+    _write_params(wdir, params)
+    argv = ["--source", "corpus", "--model", "boom", "--order", "reverse", "--seed", "0"]
+    status = fit_stage.main(["--params", str(wdir), *argv])
+    err = capsys.readouterr().err.strip()
+    assert status == 2 and len(err.splitlines()) == 1
+    log = "pipelines/retrograde/cells/corpus/boom/reverse/seed0/fit.log"
+    assert "cell corpus/boom/reverse/seed0 failed (RuntimeError: out of memory in layer 3)" in err
+    assert err.endswith(f"see {log}")
+    assert "Traceback" in (wdir / "cells/corpus/boom/reverse/seed0/fit.log").read_text()
+    assert not (wdir / "cells/corpus/boom/reverse/seed0/test_logprobs.npy").exists()
+    assert FitError.exit_status == status
+
+
+# --------------------------------------------------------------------------------- table
+def _unit_totals(wdir: Path, order: str, seeds=(0, 1)) -> np.ndarray:
+    """(n_seeds, n_units) nats per test unit, straight from the cell files."""
+    test = SequenceSet.load(wdir / "data/corpus/units/test")
+    offsets = np.concatenate([[0], np.cumsum(test.lengths + 1)])
+    rows = []
+    for seed in seeds:
+        values = np.load(wdir / f"cells/corpus/ngram/{order}/seed{seed}/test_logprobs.npy")
+        rows.append(-Ragged(values, offsets).sums())
+    return np.stack(rows)
+
+
+def test_table_matches_the_definitions_of_bits_per_token_and_gap(pipeline):
+    metrics = json.loads((pipeline / "metrics.json").read_text())
+    leaves = metrics["corpus"]["ngram"]
+    n_tokens = len(SequenceSet.load(pipeline / "data/corpus/units/test").tokens)
+    forward = _unit_totals(pipeline, "forward").mean(axis=0).sum()
+    reverse = _unit_totals(pipeline, "reverse").mean(axis=0).sum()
+    # DESIGN.md vocabulary: bits per token = total nats / ln 2 / real tokens (common practice,
+    # no source); gap = 100 * (NLL_order / NLL_reference - 1).
+    assert leaves["forward"]["bits_per_token"] == pytest.approx(
+        forward / math.log(2) / n_tokens, rel=1e-5
+    )
+    assert leaves["reverse"]["gap_pct"] == pytest.approx(
+        100 * (reverse / forward - 1), rel=1e-4, abs=1e-6
+    )
+    assert leaves["forward"]["gap_pct"] == 0
+    assert (
+        leaves["reverse"]["gap_pct_low"]
+        <= leaves["reverse"]["gap_pct"]
+        <= leaves["reverse"]["gap_pct_high"]
+    )
+    assert (pipeline / "report.md").is_file() and any((pipeline / "plots").iterdir())
+
+
+def test_table_is_byte_identical_when_rerun(pipeline):
+    before = (pipeline / "metrics.json").read_bytes()
+    assert table_stage.main(["--params", str(pipeline)]) == 0
+    assert (pipeline / "metrics.json").read_bytes() == before
+
+
+def test_table_reads_only_the_cells_the_grid_names(pipeline, tmp_path):
+    wdir = tmp_path / "wdir"
+    shutil.copytree(pipeline / "data", wdir / "data")
+    shutil.copytree(pipeline / "cells", wdir / "cells")
+    params = _params(pipeline)
+    # The reverse cells stay on disk (as after shrinking the grid) but the grid drops them.
+    del params["study"]["orders"]["reverse"]
+    _write_params(wdir, params)
+    assert table_stage.main(["--params", str(wdir)]) == 0
+    metrics = json.loads((wdir / "metrics.json").read_text())
+    assert list(metrics["corpus"]["ngram"]) == ["forward"]
+
+
+def test_table_names_a_missing_cell_and_how_to_fit_it(pipeline, tmp_path, capsys):
+    wdir = tmp_path / "wdir"
+    shutil.copytree(pipeline / "data", wdir / "data")
+    shutil.copytree(pipeline / "cells", wdir / "cells")
+    shutil.rmtree(wdir / "cells/corpus/ngram/reverse/seed1")
+    _write_params(wdir, _params(pipeline))
+    assert table_stage.main(["--params", str(wdir)]) == 2
+    err = capsys.readouterr().err
+    assert "cell corpus/ngram/reverse/seed1 has no results" in err and "retrograde run" in err
+
+
+# ------------------------------------------------------------------------- dvc.yaml
+TEMPLATE = (resources.files("retrograde") / "templates" / "dvc.yaml").read_text()
+
+
+def test_render_writes_one_units_stage_per_source_with_its_files_as_deps(tmp_path):
+    wdir = _host(tmp_path / "host", ["source=[corpus,markov]"])
+    text = render_dvc_yaml(TEMPLATE, _params(wdir))
+    stages = yaml.safe_load(text)["stages"]  # PyYAML is the reference parser here
+    assert stages["units_corpus"] == {
+        "cmd": "python -m retrograde.stages.units --source corpus",
+        "deps": ["../../data/corpus.txt"],
+        "params": ["study.sources.corpus"],
+        "outs": ["data/corpus/units"],
+    }
+    assert "deps" not in stages["units_markov"]
+    assert {"reorder", "fit", "table"} <= set(stages)
+    assert render_dvc_yaml(text, _params(wdir)) == text  # idempotent
+    assert UNITS_BEGIN in text and UNITS_END in text
+
+
+def test_render_quotes_dependency_paths_yaml_would_misread():
+    params = {"study": {"sources": {"c": {"deps": ["data/my corpus: v2.txt"]}}}}
+    stages = yaml.safe_load(render_dvc_yaml(TEMPLATE, params))["stages"]
+    assert stages["units_c"]["deps"] == ["../../data/my corpus: v2.txt"]
+
+
+def test_render_refuses_a_stage_file_without_markers():
+    with pytest.raises(HostRepoError, match="retrograde init --force"):
+        render_dvc_yaml("stages: {}\n", {"study": {"sources": {}}})
