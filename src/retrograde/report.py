@@ -97,7 +97,11 @@ def _p_text(value: Any) -> str:
     return "<0.001" if value < 0.001 else f"{value:.3f}"
 
 
-def _markdown_source(source: str, models: Mapping[str, Any], level: float) -> str:
+def _interval_title(level: float | None) -> str:
+    return "interval" if level is None else f"{level:.0%} interval"
+
+
+def _markdown_source(source: str, models: Mapping[str, Any], level: float | None) -> str:
     rows = table_rows({source: models})
     fields = set(_fields_present(rows))
     header = ["model", "order", "bits/token"]
@@ -107,7 +111,7 @@ def _markdown_source(source: str, models: Mapping[str, Any], level: float) -> st
         ("excess_bits_per_token", "excess bits/token"),
     ]
     header += [title for key, title in optional if key in fields]
-    header += [f"gap % [{level:.0%} interval]", "seed spread %", "p (Holm)", "significant"]
+    header += [f"gap % [{_interval_title(level)}]", "seed spread %", "p (Holm)", "significant"]
     lines = ["| " + " | ".join(header) + " |", "|" + "---|" * len(header)]
     for row in rows:
         reference = is_reference_leaf(row)
@@ -128,10 +132,11 @@ def _markdown_source(source: str, models: Mapping[str, Any], level: float) -> st
     return f"### Source `{source}`\n\n" + "\n".join(lines) + "\n"
 
 
-def format_table(table: Table, fmt: str = "markdown", *, level: float = 0.95) -> str:
+def format_table(table: Table, fmt: str = "markdown", *, level: float | None = None) -> str:
     """The gap table as ``markdown`` (one table per source), ``json`` or ``csv`` text.
 
-    ``json`` is byte-for-byte what :func:`write_all` puts in ``metrics.json``.
+    ``json`` is byte-for-byte what :func:`write_all` puts in ``metrics.json``. ``level`` (the
+    intervals' confidence level, not stored in the table) only labels the Markdown header.
 
     Examples
     --------
@@ -188,7 +193,7 @@ def render_report(
     provenance: Mapping[str, Any],
     warnings: Sequence[str],
     figures: Sequence[str],
-    level: float = 0.95,
+    level: float | None = None,
 ) -> str:
     """The text of ``report.md`` (pure: no file access)."""
     parts = ["# Order-ablation gap table", ""]
@@ -196,7 +201,8 @@ def render_report(
         parts += ["> **Warnings**", ">"] + [f"> - {w}" for w in warnings] + [""]
     parts += [
         "Each gap is `100 * (NLL(order) / NLL(reference) - 1)` on the same test units, with a "
-        f"{level:.0%} bootstrap interval over units and seeds and a paired sign-flip p-value "
+        f"{_interval_title(level)} from a bootstrap over units and seeds and a paired sign-flip "
+        "p-value "
         "(Holm-adjusted over every gap in this table). Positive gaps mean the order is harder "
         "to learn than the reference.",
         "",
@@ -231,7 +237,7 @@ def write_all(
     sweeps: Mapping[str, Mapping[str, Any]],
     provenance: Mapping[str, Any],
     warnings: Sequence[str],
-    level: float = 0.95,
+    level: float | None = None,
 ) -> None:
     """Write ``metrics.json``, ``report.md`` and ``plots/`` into ``out_dir``.
 
@@ -252,8 +258,8 @@ def write_all(
         JSON-able facts of the run (data hashes, config, package version).
     warnings : list of str
         Lines shown at the top of ``report.md``.
-    level : float
-        Confidence level of the intervals in ``table`` (for the column header).
+    level : float, optional
+        Confidence level of the intervals in ``table`` (``stats.level``); labels the report.
     """
     from . import plots  # matplotlib is imported only when a report is written
 

@@ -1,0 +1,36 @@
+"""``retrograde table [--dir HOST] [--path FILE] [--format markdown|json|csv]``.
+
+Prints the gap table of the last run (``pipelines/retrograde/metrics.json`` under ``--dir``)
+as a Markdown table per source, the exact JSON, or CSV with one row per cell.
+"""
+
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+
+from ..compare import METRICS_PATH, read_table_at
+from ..report import FORMATS, format_table
+
+__all__ = ["configure", "run"]
+
+
+def configure(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument(
+        "--dir", default=".", metavar="HOST", help="the host repository root (default: here)"
+    )
+    parser.add_argument(
+        "--path",
+        default=str(METRICS_PATH),
+        metavar="FILE",
+        help=f"metrics file relative to --dir (default: {METRICS_PATH})",
+    )
+    parser.add_argument(
+        "--format", default="markdown", choices=FORMATS, help="output format (default: markdown)"
+    )
+
+
+def run(args: argparse.Namespace) -> int:
+    table = read_table_at(Path(args.dir), None, args.path)
+    print(format_table(table, args.format), end="")
+    return 0

@@ -1,0 +1,151 @@
+"""`retrograde compare` and `retrograde table` on a real temporary git repository."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+
+import pytest
+
+from retrograde.cli import main
+from retrograde.compare import compare_tables, format_changes
+
+METRICS = "pipelines/retrograde/metrics.json"
+
+
+def leaf(gap: float, low: float, high: float) -> dict:
+    return {
+        "bits_per_token": 2.0,
+        "gap_pct": gap,
+        "gap_pct_low": low,
+        "gap_pct_high": high,
+        "p_value": 0.01,
+        "seeds": 3,
+    }
+
+
+def git(repo, *args):
+    subprocess.run(["git", *args], cwd=repo, check=True, capture_output=True, text=True)
+
+
+def commit_table(repo, table, message):
+    path = repo / METRICS
+    path.parent.mkdir(parents=True, exist_ok=True)
+    path.write_text(json.dumps(table, indent=2, sort_keys=True) + "\n")
+    git(repo, "add", METRICS)
+    git(repo, "commit", "-q", "-m", message)
+
+
+@pytest.fixture
+def repo(tmp_path):
+    """A git repository with two commits of metrics.json: `first` and `second` (HEAD)."""
+    git(tmp_path, "init", "-q")
+    git(tmp_path, "config", "user.name", "retrograde tests")
+    git(tmp_path, "config", "user.email", "tests@localhost")
+    commit_table(
+        tmp_path,
+        {
+            "demo": {
+                "mlp": {
+                    "forward": leaf(0.0, 0.0, 0.0),
+                    "reverse": leaf(2.0, 1.0, 3.0),
+                    "stride": leaf(1.0, 0.0, 2.0),
+                    "rotate": leaf(0.5, -0.5, 1.5),
+                }
+            }
+        },
+        "first",
+    )
+    git(tmp_path, "tag", "first")
+    commit_table(
+        tmp_path,
+        {
+            "demo": {
+                "mlp": {
+                    "forward": leaf(0.0, 0.0, 0.0),
+                    "reverse": leaf(6.0, 5.0, 7.0),  # intervals [1, 3] and [5, 7] do not overlap
+                    "stride": leaf(1.5, 0.5, 2.5),  # moved, intervals overlap
+                    "permutation": leaf(9.0, 8.0, 10.0),  # new cell; "rotate" is gone
+                }
+            }
+        },
+        "second",
+    )
+    return tmp_path
+
+
+def test_compare_prints_both_gaps_and_marks_a_change_beyond_the_intervals(repo, capsys):
+    assert main(["compare", "first", "HEAD", "--dir", str(repo)]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    by_cell = {line.split()[0]: line for line in lines[1:-1]}
+    assert "+2.00 [+1.00, +3.00]" in by_cell["demo.mlp.reverse"]
+    assert "+6.00 [+5.00, +7.00]" in by_cell["demo.mlp.reverse"]
+    assert by_cell["demo.mlp.reverse"].endswith("CHANGED")
+    assert by_cell["demo.mlp.stride"].endswith("within")
+    assert by_cell["demo.mlp.rotate"].endswith("removed")
+    assert by_cell["demo.mlp.permutation"].endswith("added")
+    assert "demo.mlp.forward" not in by_cell  # identical cells are left out without --all
+    assert lines[-1] == (
+        "5 cells: 1 changed beyond both intervals, 1 moved within them, 1 added, 1 removed, "
+        "1 identical"
+    )
+
+
+def test_fail_on_change_exits_1_only_when_a_gap_changed_beyond_its_intervals(repo, capsys):
+    assert main(["compare", "first", "HEAD", "--dir", str(repo), "--fail-on-change"]) == 1
+    assert main(["compare", "HEAD", "--dir", str(repo), "--fail-on-change"]) == 0
+    assert "0 changed beyond both intervals" in capsys.readouterr().out
+
+
+def test_compare_defaults_to_the_working_tree_for_the_second_table(repo, capsys):
+    table = json.loads((repo / METRICS).read_text())
+    table["demo"]["mlp"]["stride"] = leaf(20.0, 19.0, 21.0)
+    (repo / METRICS).write_text(json.dumps(table))
+    assert main(["compare", "HEAD", "--dir", str(repo), "--all"]) == 0
+    out = capsys.readouterr().out
+    assert "gap % workspace" in out.splitlines()[0]
+    assert any(
+        line.startswith("demo.mlp.stride") and line.endswith("CHANGED") for line in out.splitlines()
+    )
+    assert any(line.startswith("demo.mlp.forward") for line in out.splitlines())  # --all
+
+
+def test_a_bad_revision_is_one_line_and_exit_status_2(repo, capsys):
+    assert main(["compare", "no-such-branch", "--dir", str(repo)]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1
+    assert "revision 'no-such-branch' is not a commit" in err
+
+
+def test_a_revision_without_metrics_is_a_data_error(repo, capsys):
+    git(repo, "commit", "-q", "--allow-empty", "-m", "unrelated")
+    git(repo, "rm", "-q", METRICS)
+    git(repo, "commit", "-q", "-m", "drop metrics")
+    assert main(["compare", "first", "HEAD", "--dir", str(repo)]) == 2
+    err = capsys.readouterr().err
+    assert f"{METRICS} does not exist at revision 'HEAD'" in err and "retrograde run" in err
+
+
+def test_table_prints_the_current_metrics_in_each_format(repo, capsys):
+    assert main(["table", "--dir", str(repo), "--format", "csv"]) == 0
+    csv_lines = capsys.readouterr().out.splitlines()
+    assert csv_lines[0].startswith("source,model,order,bits_per_token")
+    assert "demo,mlp,reverse,2.0,6.0,5.0,7.0,0.01,3" in csv_lines
+    assert main(["table", "--dir", str(repo), "--format", "json"]) == 0
+    assert json.loads(capsys.readouterr().out) == json.loads((repo / METRICS).read_text())
+    assert main(["table", "--dir", str(repo)]) == 0
+    assert "| `mlp` | `reverse` | 2.0000 | +6.00 [+5.00, +7.00] |" in capsys.readouterr().out
+
+
+def test_table_without_metrics_says_to_run_first(tmp_path, capsys):
+    assert main(["table", "--dir", str(tmp_path)]) == 2
+    assert "run `retrograde run` first" in capsys.readouterr().err
+
+
+def test_touching_intervals_overlap_and_are_not_a_change():
+    old = {"s": {"m": {"o": leaf(1.0, 0.0, 2.0)}}}
+    new = {"s": {"m": {"o": leaf(3.0, 2.0, 4.0)}}}
+    (change,) = compare_tables(old, new)
+    assert change.status == "within"
+    text = format_changes([change], old_label="a", new_label="b")
+    assert text.splitlines()[-1].startswith("1 cells: 0 changed")
