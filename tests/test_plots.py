@@ -83,3 +83,10 @@ def test_sweep_figure_puts_the_swept_value_on_the_x_axis(run):
     assert {r["parameter"] for r in rows} == {"order"}
     line = ax.containers[1].lines[0]  # errorbar series of the second order, "reverse"
     assert list(line.get_xdata()) == [2, 3]
+
+
+def test_curves_without_validation_scores_draw_no_learning_curve_figure(tmp_path, run):
+    curves = {"demo": {"ngram_n2": {"forward": [[], [{"epoch": 0, "valid_bits_per_token": None}]]}}}
+    written = plots.write_plots(tmp_path, table=run["table"], profiles={}, curves=curves, sweeps={})
+    assert written == ["gaps.png"]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["gaps.csv", "gaps.png"]

@@ -130,7 +130,15 @@ def curve_rows(curves: Mapping[str, Any]) -> list[dict[str, Any]]:
         for model, orders in models.items()
         for order, per_seed in orders.items()
         for seed_index, curve in enumerate(per_seed)
-        for point in curve
+        for point in _scored(curve)
+    ]
+
+
+def _scored(curve: Sequence[Mapping[str, Any]]) -> list[Mapping[str, Any]]:
+    """The epochs of a learning curve that have a validation score (fits without a validation
+    split, or epochs that skipped it, have none)."""
+    return [
+        p for p in curve if p.get("epoch") is not None and p.get("valid_bits_per_token") is not None
     ]
 
 
@@ -141,7 +149,8 @@ def learning_curve_figure(curves: Mapping[str, Any]) -> Figure:
     for ax, (source, model, orders) in zip(axes, panels, strict=False):
         for index, (order, per_seed) in enumerate(orders.items()):
             style = _style(index)
-            for seed_index, curve in enumerate(per_seed):
+            for seed_index, all_epochs in enumerate(per_seed):
+                curve = _scored(all_epochs)
                 ax.plot(
                     [p["epoch"] for p in curve],
                     [p["valid_bits_per_token"] for p in curve],
@@ -297,9 +306,7 @@ def write_plots(
     ]
     (folder / "gaps.csv").write_text(_csv_text(gap_rows(table), fields))
     _save(gap_figure(table), folder, "gaps.png", written)
-    if any(
-        per_seed for models in curves.values() for o in models.values() for per_seed in o.values()
-    ):
+    if curve_rows(curves):  # families without a validation split have no curve to draw
         fields = ["source", "model", "order", "seed", "epoch", "valid_bits_per_token"]
         (folder / "learning_curves.csv").write_text(_csv_text(curve_rows(curves), fields))
         _save(learning_curve_figure(curves), folder, "learning_curves.png", written)
