@@ -1,0 +1,336 @@
+"""The ``command`` family: a team's own trainer, run as an argument list (never a shell).
+
+Protocol (what the trainer sees and must write):
+
+- ``command`` is a list of arguments with placeholders, substituted as plain text:
+  ``{train}``, ``{valid}``, ``{test}`` (folders in the :class:`~retrograde.SequenceSet`
+  format: ``tokens.npy``, ``offsets.npy``, ``meta.json`` with ``vocab_size``), ``{out}``
+  (an empty folder) and ``{seed}`` (an integer). The trainer trains on ``{train}`` (``{valid}``
+  for early stopping; it may have 0 units) and scores ``{test}``.
+- It writes ``{out}/logprobs.npy``: float64 ``(n_test_tokens + n_test_units,)``, for each
+  test unit in order its ``len + 1`` natural-log probabilities (one per token, then the end
+  marker, outcome ``vocab_size``), each ``<= 0`` and finite.
+- Optionally ``{out}/curve.json``: a list of ``{"epoch": int, "valid_bits_per_token": float}``.
+
+``fit`` runs ``command`` once with ``{test}`` = the validation units (so failures surface
+early and the learning curve exists). ``logprobs`` then needs the trainer again:
+
+- with ``score_command`` (placeholders ``{model}``, ``{test}``, ``{out}``, ``{seed}``), the
+  ``{out}`` folder of the fit run is kept as ``{model}`` (the trainer should save its
+  weights there) and only scoring runs; the folder is saved with the model;
+- without it, ``command`` runs again from scratch (train and valid units are kept, and
+  saved with the model), so a deterministic trainer gives the same scores.
+
+Relative paths in the arguments are resolved from the current working directory (the DVC
+stage folder in a pipeline). A non-zero exit, a timeout, or output of the wrong length,
+non-finite or positive values raise :class:`~retrograde.errors.FitError` with the tail of
+the trainer's stderr.
+"""
+
+from __future__ import annotations
+
+import json
+import re
+import shutil
+import subprocess
+import tempfile
+import weakref
+from collections.abc import Sequence
+from pathlib import Path
+from typing import Any, ClassVar
+
+import numpy as np
+
+from .._validation import check_float, invalid
+from ..errors import FitError
+from ..sequences import Ragged, SequenceSet
+from . import registry
+from ._base import Family
+
+__all__ = ["CommandFamily"]
+
+_PLACEHOLDER = re.compile(r"\{(\w+)\}")
+_FIT_KEYS = ("train", "valid", "test", "out", "seed")
+_SCORE_KEYS = ("model", "test", "out", "seed")
+_STDERR_TAIL = 800  # characters of stderr quoted in an error
+
+
+@registry.register("command")
+class CommandFamily(Family):
+    """Run an external trainer/scorer given as an argument list.
+
+    Parameters
+    ----------
+    command : list of str
+        Trains and scores: placeholders ``{train}``, ``{valid}``, ``{test}``, ``{out}``,
+        ``{seed}``.
+    score_command : list of str or None, default None
+        Scores with the model the fit run left in its ``{out}``: placeholders ``{model}``,
+        ``{test}``, ``{out}``, ``{seed}``.
+    timeout : float, default 3600
+        Seconds each run may take.
+    """
+
+    name: ClassVar[str] = "command"
+    #: The conformance test fills in the example trainer (tests/test_families_conformance.py).
+    _test_params: ClassVar[dict[str, Any]] = {}
+
+    command: list[str]
+    score_command: list[str] | None
+    timeout: float
+
+    def __init__(
+        self,
+        *,
+        command: Sequence[str],
+        score_command: Sequence[str] | None = None,
+        timeout: float = 3600.0,
+    ) -> None:
+        super().__init__(
+            command=_as_list(command),
+            score_command=None if score_command is None else _as_list(score_command),
+            timeout=timeout,
+        )
+
+    def _validate_params(self) -> None:
+        owner = f"family {self.name!r}"
+        _check_arguments(owner, "command", self.command, _FIT_KEYS)
+        if self.score_command is not None:
+            _check_arguments(owner, "score_command", self.score_command, _SCORE_KEYS)
+        check_float(owner, "timeout", self.timeout, 0.0, low_open=True)
+
+    # ------------------------------------------------------------------ learning
+    def fit(
+        self, train: SequenceSet, valid: SequenceSet | None = None, seed: int = 0
+    ) -> CommandFamily:
+        """Run ``command`` with ``{test}`` = the validation units; keep what scoring needs."""
+        self._validate_params()
+        self.vocab_size_ = train.effective_vocab_size()
+        self.seed_ = int(seed)
+        empty = SequenceSet.from_list([], vocab_size=self.vocab_size_)
+        self.train_ = _with_vocab(train, self.vocab_size_)
+        self.valid_ = _with_vocab(valid if valid is not None else empty, self.vocab_size_)
+        workdir = Path(tempfile.mkdtemp(prefix="retrograde-command-"))
+        weakref.finalize(self, shutil.rmtree, workdir, ignore_errors=True)
+        out = workdir / "out"
+        values = self._run_fit_command(self.valid_, workdir, out)
+        self.model_dir_ = out if self.score_command is not None else None
+        self.learning_curve_ = _read_curve(out / "curve.json")
+        if not self.learning_curve_ and len(self.valid_):
+            bits = -values.sum() / np.log(2) / max(len(self.valid_.tokens), 1)
+            self.learning_curve_ = [{"epoch": 1, "valid_bits_per_token": float(bits)}]
+        return self
+
+    def _run_fit_command(self, test: SequenceSet, workdir: Path, out: Path) -> np.ndarray:
+        for split, units in (("train", self.train_), ("valid", self.valid_), ("test", test)):
+            units.save(workdir / split)
+        out.mkdir()
+        places = {key: str(workdir / key) for key in ("train", "valid", "test", "out")}
+        places["seed"] = str(self.seed_)
+        return _run(self.command, places, out, test, self.timeout, "command")
+
+    # ------------------------------------------------------------------- scoring
+    def logprobs(self, units: SequenceSet) -> Ragged:
+        """Row ``i``: ``len(units[i]) + 1`` natural-log probabilities from the trainer."""
+        self._check_fitted()
+        self._check_units(units)
+        units = _with_vocab(units, self.vocab_size_)
+        with tempfile.TemporaryDirectory(prefix="retrograde-command-") as tmp:
+            workdir = Path(tmp)
+            if self.score_command is None or self.model_dir_ is None:
+                values = self._run_fit_command(units, workdir, workdir / "out")
+            else:
+                units.save(workdir / "test")
+                (workdir / "out").mkdir()
+                places = {
+                    "model": str(self.model_dir_),
+                    "test": str(workdir / "test"),
+                    "out": str(workdir / "out"),
+                    "seed": str(self.seed_),
+                }
+                values = _run(
+                    self.score_command,
+                    places,
+                    workdir / "out",
+                    units,
+                    self.timeout,
+                    "score_command",
+                )
+        return Ragged(values, units.offsets + np.arange(len(units) + 1))
+
+    def next_token_probs(self, contexts: Sequence[np.ndarray]) -> np.ndarray:
+        """(n_contexts, vocab_size + 1): every continuation scored as a one-step unit pair.
+
+        The trainer only reports observed log-probabilities, so each context is extended
+        by every outcome (``vocab_size + 1`` test units per context); this is for checks on
+        small vocabularies, not for bulk use.
+        """
+        self._check_fitted()
+        n_outcomes = self.vocab_size_ + 1
+        rows = []
+        for context in contexts:
+            context = np.asarray(context, dtype=np.int32)
+            rows += [np.append(context, token) for token in range(self.vocab_size_)]
+            rows.append(context)  # outcome vocab_size: the end marker right after the context
+        scores = self.logprobs(SequenceSet.from_list(rows, vocab_size=self.vocab_size_))
+        probs = np.empty((len(contexts), n_outcomes))
+        for index in range(len(contexts)):
+            for outcome in range(n_outcomes):
+                row = scores[index * n_outcomes + outcome]
+                # Position len(context) holds the outcome (a token, or the end marker).
+                probs[index, outcome] = np.exp(
+                    row[len(row) - 2 if outcome < self.vocab_size_ else -1]
+                )
+        return probs
+
+    # --------------------------------------------------------------- persistence
+    def _save_state(self, folder: Path) -> None:
+        state = {"seed": np.array(self.seed_)}
+        if self.model_dir_ is not None:
+            shutil.copytree(self.model_dir_, folder / "trainer")
+        else:
+            for split, units in (("train", self.train_), ("valid", self.valid_)):
+                state[f"{split}_tokens"] = units.tokens
+                state[f"{split}_offsets"] = units.offsets
+        np.savez(folder / "state.npz", **state)  # type: ignore[arg-type]
+
+    def _load_state(self, folder: Path) -> None:
+        with np.load(folder / "state.npz", allow_pickle=False) as data:
+            self.seed_ = int(data["seed"])
+            sets = {}
+            for split in ("train", "valid"):
+                if f"{split}_tokens" in data.files:
+                    sets[split] = SequenceSet(
+                        data[f"{split}_tokens"],
+                        data[f"{split}_offsets"],
+                        vocab_size=self.vocab_size_,
+                    )
+        self.train_, self.valid_ = sets.get("train"), sets.get("valid")  # type: ignore[assignment]
+        trainer = folder / "trainer"
+        self.model_dir_ = trainer.resolve() if trainer.is_dir() else None
+
+
+def _as_list(arguments: Any) -> Any:
+    """Lists (and tuples, OmegaConf ListConfig) become plain lists; anything else is kept
+    unchanged so validation can name it."""
+    if isinstance(arguments, str) or not isinstance(arguments, Sequence):
+        return arguments
+    return list(arguments)
+
+
+def _check_arguments(owner: str, key: str, arguments: Any, allowed: Sequence[str]) -> None:
+    names = ", ".join("{" + name + "}" for name in allowed)
+    if (
+        not isinstance(arguments, list)
+        or not arguments
+        or not all(isinstance(a, str) for a in arguments)
+    ):
+        raise invalid(owner, key, arguments, f"a non-empty list of strings using {names}")
+    for argument in arguments:
+        for name in _PLACEHOLDER.findall(argument):
+            if name not in allowed:
+                raise invalid(owner, key, arguments, f"placeholders {names} (found {{{name}}})")
+
+
+def _substitute(arguments: Sequence[str], places: dict[str, str]) -> list[str]:
+    def one(argument: str) -> str:
+        return _PLACEHOLDER.sub(lambda m: places.get(m.group(1), m.group(0)), argument)
+
+    return [one(a) for a in arguments]
+
+
+def _run(
+    arguments: Sequence[str],
+    places: dict[str, str],
+    out: Path,
+    test: SequenceSet,
+    timeout: float,
+    key: str,
+) -> np.ndarray:
+    """Run the trainer (no shell), then read and check ``out/logprobs.npy``."""
+    argv = _substitute(arguments, places)
+    shown = " ".join(arguments)
+    try:
+        done = subprocess.run(
+            argv, stdin=subprocess.DEVNULL, capture_output=True, timeout=timeout, check=False
+        )
+    except FileNotFoundError as exc:
+        raise FitError(
+            f"family 'command': {key} program {argv[0]!r} was not found; give an existing "
+            "program (an absolute path, or one on PATH)"
+        ) from exc
+    except subprocess.TimeoutExpired as exc:
+        raise FitError(
+            f"family 'command': {key} [{shown}] did not finish within {timeout:g} s; raise "
+            f"the family's timeout or speed up the trainer; stderr tail: {_tail(exc.stderr)}"
+        ) from exc
+    tail = _tail(done.stderr)
+    if done.returncode != 0:
+        raise FitError(
+            f"family 'command': {key} [{shown}] exited with status {done.returncode}; "
+            f"stderr tail: {tail}"
+        )
+    path = out / "logprobs.npy"
+    if not path.is_file():
+        raise FitError(
+            f"family 'command': {key} [{shown}] wrote no {{out}}/logprobs.npy; write float64 "
+            f"log-probabilities there; stderr tail: {tail}"
+        )
+    try:
+        values = np.load(path, allow_pickle=False)
+    except ValueError as exc:
+        raise FitError(f"family 'command': {path.name} is not a plain .npy array ({exc})") from exc
+    expected = len(test.tokens) + len(test)
+    if values.ndim != 1 or values.shape[0] != expected or values.dtype.kind not in "fi":
+        raise FitError(
+            f"family 'command': {key} wrote {path.name} with shape {values.shape} and dtype "
+            f"{values.dtype}; expected float64 ({expected},): len + 1 per test unit "
+            f"({len(test)} units, {len(test.tokens)} tokens); stderr tail: {tail}"
+        )
+    values = values.astype(np.float64)
+    bad = np.flatnonzero(~np.isfinite(values) | (values > 0))
+    if len(bad):
+        raise FitError(
+            f"family 'command': {key} wrote {len(bad)} log-probabilities that are not finite "
+            f"and <= 0 (first at flat index {bad[0]}: {float(values[bad[0]])!r}); every outcome needs "
+            f"a probability in (0, 1]; stderr tail: {tail}"
+        )
+    return values
+
+
+def _tail(stderr: bytes | str | None) -> str:
+    if not stderr:
+        return "(empty)"
+    text = stderr.decode("utf-8", "replace") if isinstance(stderr, bytes) else stderr
+    text = " | ".join(line for line in text.strip().splitlines() if line.strip())
+    return text[-_STDERR_TAIL:]
+
+
+def _read_curve(path: Path) -> list[dict[str, float]]:
+    if not path.is_file():
+        return []
+    try:
+        curve = json.loads(path.read_text())
+    except json.JSONDecodeError as exc:
+        raise FitError(f"family 'command': {path.name} is not valid JSON ({exc})") from exc
+    ok = isinstance(curve, list) and all(
+        isinstance(r, dict) and "epoch" in r and "valid_bits_per_token" in r for r in curve
+    )
+    if not ok:
+        raise FitError(
+            f"family 'command': {path.name} must be a list of "
+            '{"epoch": ..., "valid_bits_per_token": ...} records'
+        )
+    return [dict(r) for r in curve]
+
+
+def _with_vocab(units: SequenceSet, vocab_size: int) -> SequenceSet:
+    if units.vocab_size == vocab_size:
+        return units
+    return SequenceSet(
+        units.tokens,
+        units.offsets,
+        vocab_size=vocab_size,
+        doc_ids=units.doc_ids,
+        n_bytes=units.n_bytes,
+    )
