@@ -3,11 +3,14 @@
 import json
 import subprocess
 import sys
+import tempfile
 import textwrap
 from pathlib import Path
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from retrograde import SequenceSet
 from retrograde.errors import ConfigError, DataError
@@ -260,3 +263,27 @@ def test_tokens_refuses_non_integer_or_negative_arrays_and_other_files(tmp_path)
     (tmp_path / "t.txt").write_text("1 2 3")
     with pytest.raises(DataError, match="neither a .npy file nor a folder"):
         make("tokens", files=str(tmp_path / "t.txt"))
+
+
+_LINE_TEXT = st.text(
+    st.characters(blacklist_categories=("Cs",), blacklist_characters="\r\n"), max_size=20
+)
+
+
+@settings(max_examples=60, deadline=None)
+@given(lines=st.lists(_LINE_TEXT, max_size=12), ending=st.sampled_from(["\n", "\r\n"]))
+def test_line_split_yields_every_non_blank_line_with_its_utf8_size(lines, ending):
+    with tempfile.TemporaryDirectory() as folder:
+        path = Path(folder) / "x.txt"
+        path.write_bytes("".join(line + ending for line in lines).encode("utf-8"))
+        # A leading U+FEFF on line 1 is read as a byte-order mark and dropped.
+        if lines and lines[0].startswith("\ufeff"):
+            lines = [lines[0][1:], *lines[1:]]
+        kept = [line for line in lines if line.strip()]
+        if not kept:
+            with pytest.raises(DataError, match="no text in"):
+                list(make("text", files=str(path), split="line").documents())
+            return
+        documents = list(make("text", files=str(path), split="line").documents())
+        assert [d.text for d in documents] == kept
+        assert [d.n_bytes for d in documents] == [len(line.encode("utf-8")) for line in kept]

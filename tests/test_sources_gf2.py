@@ -5,6 +5,8 @@ import math
 import numpy as np
 import pytest
 import sympy
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from retrograde import SequenceSet
 from retrograde.errors import ConfigError, DataError
@@ -130,3 +132,20 @@ def test_nll_refuses_a_unit_of_the_wrong_length():
     source = make("linear_gf2", n_bits=3, nonzeros=0)
     with pytest.raises(DataError, match="unit 0 has 5 tokens, expected 6"):
         source.nll(SequenceSet.from_list([[0, 1, 0, 1, 1]], vocab_size=2))
+
+
+@settings(max_examples=40, deadline=None)
+@given(
+    n=st.integers(1, 40),
+    nonzeros_fraction=st.floats(0, 1),
+    seed=st.integers(0, 2**32 - 1),
+)
+def test_any_constructed_matrix_is_invertible_and_its_inverse_checks_out(
+    n, nonzeros_fraction, seed
+):
+    nonzeros = int(nonzeros_fraction * (n - 1))
+    matrix, _ = _gf2.random_invertible(n, nonzeros, np.random.default_rng(seed))
+    inverse = _gf2.inverse(matrix)
+    identity = np.eye(n, dtype=np.int64)
+    assert np.array_equal((matrix.astype(np.int64) @ inverse) % 2, identity)
+    assert np.array_equal((inverse.astype(np.int64) @ matrix) % 2, identity)
