@@ -29,6 +29,7 @@ True
 
 from __future__ import annotations
 
+import itertools
 import json
 import os
 import re
@@ -242,6 +243,7 @@ class CharTokenizer(Tokenizer):
 
     def _set_vocab(self, vocab: list[Any]) -> None:
         self.code_points_ = np.asarray(vocab, dtype=np.int64)  # sorted ascending
+        self.__dict__.pop("_lookup", None)  # rebuilt for the new vocabulary on next use
 
     def _get_vocab(self) -> list[Any] | None:
         return [int(c) for c in self.code_points_]
@@ -256,11 +258,14 @@ class CharTokenizer(Tokenizer):
         return self._encode_code_points(code_points.astype(np.int64))
 
     def _encode_code_points(self, code_points: np.ndarray) -> np.ndarray:
-        table = self._fitted()
-        where = np.searchsorted(table, code_points)
-        found = where < len(table)
-        found[found] = table[where[found]] == code_points[found]
-        return np.where(found, where + 1, UNKNOWN_ID).astype(np.int32)
+        # A dense lookup table (code point -> id; its last slot, unknown, catches every code
+        # point above the largest known one) turns encoding into one gather.
+        if not hasattr(self, "_lookup"):
+            table = self._fitted()
+            size = int(table.max()) + 2 if len(table) else 1
+            self._lookup = np.full(size, UNKNOWN_ID, dtype=np.int32)
+            self._lookup[table] = np.arange(1, len(table) + 1, dtype=np.int32)
+        return self._lookup[np.minimum(code_points, len(self._lookup) - 1)]
 
     def encode_pieces(self, pieces: Sequence[Any]) -> np.ndarray:
         if isinstance(pieces, str):  # a string is its own sequence of one-character pieces
@@ -332,8 +337,9 @@ class WordTokenizer(Tokenizer):
 
     def encode_pieces(self, pieces: Sequence[Any]) -> np.ndarray:
         self._fitted_vocab()
-        get = self.ids_.get
-        return np.fromiter((get(p, UNKNOWN_ID) for p in pieces), dtype=np.int32, count=len(pieces))
+        # map() with dict.get runs the per-piece lookup in C (no Python frame per token).
+        ids = map(self.ids_.get, pieces, itertools.repeat(UNKNOWN_ID))
+        return np.fromiter(ids, dtype=np.int32, count=len(pieces))
 
     def decode(self, ids: Iterable[int] | np.ndarray) -> str:
         table = [UNKNOWN_TEXT, *self._fitted_vocab()]

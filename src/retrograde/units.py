@@ -28,6 +28,7 @@ Unit modes
 from __future__ import annotations
 
 import hashlib
+import itertools
 from collections import Counter
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
@@ -174,6 +175,16 @@ def _content_key(pieces: Sequence[Any]) -> bytes:
     return _utf8("".join(pieces))
 
 
+def _concatenate(contents: list[Any]) -> Sequence[Any]:
+    """All units' pieces as one sequence of the same kind (str, bytes or list)."""
+    first = contents[0]
+    if isinstance(first, str):
+        return "".join(contents)
+    if isinstance(first, (bytes, bytearray)):
+        return b"".join(contents)
+    return list(itertools.chain.from_iterable(contents))
+
+
 def _window_bounds(n_tokens: int, window: int, remainder: str) -> list[tuple[int, int]]:
     stop = n_tokens if remainder == "keep" else n_tokens - n_tokens % window
     return [(a, min(a + window, n_tokens)) for a in range(0, stop, window)]
@@ -305,26 +316,27 @@ def prepare_units(
     duplicates = sum(n for n in counts.values() if n > 1)
     duplicated_contents = sum(1 for n in counts.values() if n > 1)
 
+    lengths = np.fromiter((len(c) for c in contents), np.int64, len(contents))
     if tokenizer is not None:
         tokenizer.fit(c for c, split in zip(contents, split_of_unit, strict=True) if split == 0)
-        encoded = [tokenizer.encode_pieces(c) for c in contents]
+        # Pieces encode independently (one id each), so one call on the concatenation
+        # replaces a call per unit: (n_tokens,) int32.
+        tokens = tokenizer.encode_pieces(_concatenate(contents))
         vocab_size = tokenizer.vocab_size
         n_bytes: np.ndarray | None = np.fromiter((len(k) for k in keys), np.int64, len(keys))
     else:
-        encoded = contents
-        vocab_size = max(int(c.max()) for c in contents) + 1
+        tokens = np.concatenate(contents)
+        vocab_size = int(tokens.max()) + 1
         n_bytes = None
 
-    doc_id_array = np.asarray(doc_ids, dtype=np.int64)
-    splits = {}
-    for index, name in enumerate(SPLITS):
-        chosen = np.flatnonzero(split_of_unit == index)
-        splits[name] = SequenceSet.from_list(
-            [encoded[i] for i in chosen],
-            vocab_size=vocab_size,
-            doc_ids=doc_id_array[chosen],
-            n_bytes=None if n_bytes is None else n_bytes[chosen],
-        )
+    corpus = SequenceSet(
+        tokens,
+        np.concatenate([[0], np.cumsum(lengths)]),
+        vocab_size=vocab_size,
+        doc_ids=np.asarray(doc_ids, dtype=np.int64),
+        n_bytes=n_bytes,
+    )
+    splits = {name: corpus.subset(split_of_unit == index) for index, name in enumerate(SPLITS)}
     return PreparedUnits(
         splits=splits,
         tokenizer=tokenizer,
