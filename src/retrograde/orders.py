@@ -25,6 +25,7 @@ Examples
 from __future__ import annotations
 
 import numbers
+from collections.abc import Sequence
 from typing import Any, ClassVar
 
 import numpy as np
@@ -272,7 +273,12 @@ def _check_separators(owner: str, separators: Any) -> tuple[int, ...]:
     allowed = "a non-empty list of token ids (integers >= 0)"
     if isinstance(separators, numbers.Integral) and not isinstance(separators, bool):
         separators = [separators]
-    if not isinstance(separators, (list, tuple)) or not separators:
+    # Any sequence (a list, a tuple, an OmegaConf ListConfig, an array), but not a string.
+    if isinstance(separators, np.ndarray):
+        separators = separators.tolist()
+    if isinstance(separators, (str, bytes)) or not isinstance(separators, Sequence):
+        raise invalid(owner, "separators", separators, allowed)
+    if len(separators) == 0:
         raise invalid(owner, "separators", separators, allowed)
     for value in separators:
         if not isinstance(value, numbers.Integral) or isinstance(value, bool) or value < 0:
