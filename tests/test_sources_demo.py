@@ -74,6 +74,12 @@ def test_entries_carry_causes_before_effects_and_agreeing_distant_parts():
                 line.split()[1].rstrip(":") == match["tag"] for line in (check, repair, test)
             )
             quantities += int(re.search(r" x(\d)\)", repair)[1])
+            if test.endswith("PASS."):
+                cycles, readings, peak = re.search(
+                    r" (\d) cycles, readings ([\d ]+), peak (\d+)\. PASS\.$", test
+                ).groups()
+                values = [int(v) for v in readings.split()]
+                assert len(values) == int(cycles) and max(values) == int(peak)
         assert quantities == int(match["parts"])
         assert work[-1].endswith("PASS.") and all(t.endswith("FAIL.") for t in work[2:-1:3])
         failures += len(work) > 3

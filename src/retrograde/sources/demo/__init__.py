@@ -9,7 +9,9 @@ for how easily a model learns it:
   the repair matched the true cause (a wrong first diagnosis fails and is redone);
 - distant parts agree: the ticket number, the equipment tag and the reporter's name
   reappear in later lines of the same entry;
-- a check digit at the end summarizes digits written earlier (ticket, day, part count).
+- summaries follow what they summarize: a TEST line's ``peak`` is the largest of the
+  readings just before it, and a check digit at the end is the digit sum of the ticket,
+  day and part count, mod 10.
 
 One entry is one paragraph (blank-line separated). :func:`write_corpus` writes the corpus
 as a UTF-8 text file whose first paragraph says it is invented; the ``demo`` source yields
@@ -156,7 +158,12 @@ def _entry(rng: random.Random, ticket: int, day: int) -> str:
         lines.append(f"CHECK {tag}: {cause}.")
         lines.append(f"REPAIR {tag}: {action} (part {part} x{quantity}).")
         if cause_index == true_cause:
-            lines.append(f"TEST {tag}: {test_words} {rng.randint(2, 6)} cycles. PASS.")
+            # the peak is a many-to-one summary of the readings written just before it
+            readings = [rng.randint(20, 79) for _ in range(rng.randint(2, 6))]
+            lines.append(
+                f"TEST {tag}: {test_words} {len(readings)} cycles, readings "
+                f"{' '.join(map(str, readings))}, peak {max(readings)}. PASS."
+            )
         else:
             lines.append(f"TEST {tag}: {symptom} again. FAIL.")
     lines.append(
