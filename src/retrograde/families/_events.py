@@ -37,7 +37,8 @@ def unit_events(units: SequenceSet) -> tuple[Callable[[int], np.ndarray], np.nda
     # Position inside the unit, capped: only "is it at least lag?" is asked, lag <= 127.
     position = np.minimum(token_index - units.offsets[:-1][unit_of_event], 127).astype(np.int8)
     del unit_of_event
-    tokens = np.asarray(units.tokens)
+    # One dummy token when there are none keeps the clipped look-ups below in range.
+    tokens = np.asarray(units.tokens) if len(units.tokens) else np.zeros(1, dtype=np.int32)
     outcomes = np.full(n_events, end, dtype=np.int32)
     is_token = np.ones(n_events, dtype=bool)
     is_token[event_offsets[1:] - 1] = False
