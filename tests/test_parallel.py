@@ -2,15 +2,18 @@
 
 from __future__ import annotations
 
+import contextlib
+import io
 import textwrap
 from pathlib import Path
 
 import pytest
 import yaml
 
-from _host_fixtures import DVC, new_host, sh
+from _host_fixtures import DVC, new_host, new_pipeline_host, sh
+from retrograde.cli import main
 from retrograde.errors import ConfigError, FitError
-from retrograde.parallel import log_path_for, run_stages_in_parallel
+from retrograde.parallel import LOG_DIR, log_path_for, run_stages_in_parallel
 
 pytestmark = pytest.mark.dvc
 
@@ -77,17 +80,20 @@ def test_two_jobs_run_every_stage_two_at_a_time_and_dvc_records_all(tmp_path):
 
 
 @pytest.mark.slow
-def test_one_job_never_overlaps_and_gives_the_same_lock_content_as_two(tmp_path):
-    serial = _host_with_stages(tmp_path / "serial")
-    parallel = _host_with_stages(tmp_path / "parallel")
-    run_stages_in_parallel(serial, CELLS, jobs=1)
-    run_stages_in_parallel(parallel, CELLS, jobs=2)
-    assert _max_overlap(serial / "trace") == 1
-
-    def lock(host: Path) -> dict:
-        return yaml.safe_load((host / "pipelines/retrograde/dvc.lock").read_text())
-
-    assert lock(serial) == lock(parallel)  # same hashes; only the entry order may differ
+def test_run_with_two_jobs_writes_byte_identical_metrics_to_one_job(tmp_path):
+    hosts = {jobs: new_pipeline_host(tmp_path / f"jobs{jobs}") for jobs in (1, 2)}
+    for jobs, host in hosts.items():
+        with contextlib.redirect_stdout(io.StringIO()), contextlib.redirect_stderr(io.StringIO()):
+            assert main(["run", "--dir", str(host), "--jobs", str(jobs), "study=smoke"]) == 0
+    metrics = {
+        jobs: (host / "pipelines/retrograde/metrics.json").read_bytes()
+        for jobs, host in hosts.items()
+    }
+    assert metrics[1] == metrics[2]
+    assert b'"reverse"' in metrics[1]  # the table really holds the smoke grid's cells
+    # The two-job run went through the parallel path: one log per fit stage.
+    logs = sorted(p.name for p in (hosts[2] / LOG_DIR).glob("fit@*.log"))
+    assert logs == [f"fit@corpus-ngram-{o}-{s}.log" for o in ("forward", "reverse") for s in (0, 1)]
 
 
 @pytest.mark.slow

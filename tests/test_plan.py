@@ -2,11 +2,14 @@
 
 from __future__ import annotations
 
+import re
+from pathlib import Path
+
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
-from _host_fixtures import DVC, new_host, new_pipeline_host, sh, snapshot
+from _host_fixtures import new_host, new_pipeline_host, snapshot
 from retrograde.cli import main
 from retrograde.commands.plan import parse_shard, shard_of
 from retrograde.errors import ConfigError
@@ -98,20 +101,15 @@ def test_a_bad_shard_on_the_command_line_is_one_line_exit_two(tmp_path, capsys):
 
 
 @pytest.mark.dvc
-@pytest.mark.slow
-def test_running_both_shards_fits_every_cell_once_and_matches_dvcs_own_stage_list(tmp_path, capsys):
+def test_the_preview_shown_in_docs_ci_md_is_what_plan_prints(tmp_path, capsys, monkeypatch):
+    page = (Path(__file__).resolve().parents[1] / "docs" / "ci.md").read_text()
+    block = re.search(
+        r"^```text\n\$ retrograde (?P<argv>.*?)\n(?P<shown>.*?)^```", page, re.M | re.S
+    )
+    assert block is not None
     host = new_pipeline_host(tmp_path / "host")
-    first = _plan(capsys, "--dir", str(host), "--shard", "1/2", "--run", "--jobs", "2", *SMOKE)
-    assert first[0] == 0
-    cells = host / "pipelines/retrograde/cells/corpus/ngram"
-    assert sorted(p.relative_to(cells).as_posix() for p in cells.glob("*/seed*")) == [
-        "forward/seed0",
-        "reverse/seed0",
-    ]
-    assert _plan(capsys, "--dir", str(host), "--shard", "2/2", "--run", *SMOKE)[0] == 0
-    second = _plan(capsys, "--dir", str(host), "--shard", "2/2", *SMOKE)[1]
-    # Outside reference: DVC's own expansion of the fit matrix from the written params.yaml.
-    listed = sh([*DVC, "stage", "list", "--name-only", TARGET.rstrip(":")], host).split()
-    assert [name for name in listed if ":fit@" in name] == sorted([*first[1], *second])
-    status = sh([*DVC, "status", f"{TARGET}fit"], host)
-    assert "up to date" in status
+    monkeypatch.chdir(host)
+    status = main(block["argv"].split())
+    out, err = capsys.readouterr()
+    assert status == 0
+    assert out + err == block["shown"]
