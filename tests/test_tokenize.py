@@ -168,3 +168,18 @@ def test_loading_a_missing_or_foreign_file_is_a_one_line_data_error(tmp_path):
     (tmp_path / "other.json").write_text('{"format": "something else"}')
     with pytest.raises(DataError, match="format"):
         tokenize.load(tmp_path / "other.json")
+
+
+# ------------------------------------------------- conformance (every registered tokenizer)
+@pytest.mark.parametrize("name", tokenize.names())
+@settings(max_examples=40, deadline=None)
+@given(train=st.text(max_size=200), other=st.text(max_size=200))
+def test_every_tokenizer_gives_one_id_per_piece_inside_its_vocabulary(name, train, other):
+    tokenizer = fitted(name, train)
+    for text in (train, other):
+        ids = tokenizer.encode(text)
+        assert ids.dtype == np.int32 and len(ids) == len(tokenizer.pieces(text))
+        assert ids.tolist() == tokenizer.encode_pieces(tokenizer.pieces(text)).tolist()
+        assert ((ids >= 0) & (ids < tokenizer.vocab_size)).all()
+        if tokenizer.lossless or not np.any(ids == tokenizer.unknown_id):
+            assert tokenizer.decode(ids) == text
