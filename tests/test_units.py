@@ -81,6 +81,13 @@ def test_fractions_outside_the_unit_interval_or_summing_past_one_are_refused(fra
         check_fractions(fractions)
 
 
+def test_fractions_accept_any_number_sequence_such_as_an_omegaconf_list():
+    from omegaconf import OmegaConf
+
+    assert check_fractions(OmegaConf.create([0.7, 0.2, 0.1])) == (0.7, 0.2, 0.1)
+    assert check_fractions(np.array([0.5, 0.25, 0.25])) == (0.5, 0.25, 0.25)
+
+
 # -------------------------------------------------------------------- unit modes
 def test_line_mode_skips_empty_lines_strips_carriage_returns_and_keeps_doc_ids():
     docs = [text_doc("a b\r\n\nc d\n", doc_id=7), text_doc("e f", doc_id=9, where="b.txt")]

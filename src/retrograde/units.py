@@ -58,7 +58,9 @@ def check_fractions(fractions: Sequence[Any]) -> tuple[float, float, float]:
     >>> check_fractions([0.8, 0.1])
     (0.8, 0.1, 0.1)
     """
-    values = list(fractions) if isinstance(fractions, (list, tuple)) else [fractions]
+    # Any sequence (a list, a tuple, an OmegaConf ListConfig, an array), but not a string.
+    is_sequence = isinstance(fractions, (Sequence, np.ndarray)) and not isinstance(fractions, str)
+    values = list(fractions) if is_sequence else [fractions]
     if len(values) not in (2, 3):
         raise invalid(_OWNER, "fractions", fractions, "two (train, valid) or three fractions")
     parts = [
