@@ -12,6 +12,13 @@ and ``within_segment_reverse(separators)``. Custom orders subclass :class:`Order
 named by a dotted path (``_target_``) or the entry-point group ``retrograde.orders``; every
 order, built-in or custom, goes through :func:`verify_bijection` before its data are used.
 
+The segment orders cut a unit into *runs*: each separator token is a run of its own and
+each maximal stretch of other tokens is one run. ``segment_reverse`` reverses the order of
+the runs, ``within_segment_reverse`` reverses inside each run. Separators stay separators
+and runs keep their lengths, so the output has the same runs and each segment order is its
+own inverse. Leading, trailing and repeated separators are kept as runs (the empty segments
+between them hold no tokens); a unit without separators is one segment.
+
 Examples
 --------
 >>> import numpy as np
