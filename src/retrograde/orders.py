@@ -77,7 +77,7 @@ class Order:
     place) and implement :meth:`positions_set` (vectorized) or :meth:`positions` (one unit;
     the set-level method then loops over units). The default inverse assumes the
     permutation depends only on the unit length; orders whose permutation depends on the
-    content override :meth:`inverse_positions_set`.
+    content override :meth:`inverse_positions_set` (vectorized) or :meth:`invert` (one unit).
     """
 
     #: registry name, set by each built-in subclass
@@ -126,6 +126,13 @@ class Order:
 
     def invert_set(self, reordered: SequenceSet) -> SequenceSet:
         """The natural-order units that :meth:`apply_set` turned into ``reordered``."""
+        cls = type(self)
+        if cls.invert is not Order.invert and (
+            cls.inverse_positions_set is Order.inverse_positions_set
+        ):
+            # A custom order that only knows how to invert one unit: trust its invert.
+            parts = [np.asarray(self.invert(unit)) for unit in reordered]
+            return reordered.with_tokens(np.concatenate(parts) if parts else reordered.tokens)
         return reordered.with_tokens(reordered.tokens[self.inverse_positions_set(reordered)])
 
     # ----------------------------------------------------------------- one unit
