@@ -143,6 +143,10 @@ def _check_units(where: str, units: dict[str, Any]) -> None:
         )
 
 
+def _check_remainder(where: str, units: dict[str, Any]) -> None:
+    check_choice(f"{where}.units", "remainder", units["remainder"], ("drop", "keep"))
+
+
 def _check_source(name: str, source: dict[str, Any], root: Path) -> dict[str, Any]:
     from . import sources
 
@@ -164,6 +168,7 @@ def _check_source(name: str, source: dict[str, Any], root: Path) -> dict[str, An
         out.update(kind="calibration", deps=[], tokenizer=None, units=None)
         return out
     _check_units(where, source["units"])
+    _check_remainder(where, source["units"])
     if source["tokenizer"] is not None:
         _check_tokenizer(where, source["tokenizer"])
     declared = source["deps"]

@@ -129,13 +129,13 @@ def _raise_failure(host: HostRepo, output: str, failed: list[str], log_path: Pat
     raise HostRepoError(f"{stage} failed in {host.root}: {last_error_line(output)}; see {log_path}")
 
 
-def _print_table(host: HostRepo) -> None:
+def _print_table(host: HostRepo, level: float) -> None:
     from .. import report
 
     metrics = host.pipeline_dir / "metrics.json"
     if metrics.is_file():
         table = json.loads(metrics.read_text(encoding="utf-8"))
-        print(report.format_table(table, "markdown"))
+        print(report.format_table(table, "markdown", level=level))
 
 
 def _params_text(params: dict[str, Any]) -> str:
@@ -181,5 +181,5 @@ def run(args: argparse.Namespace) -> int:
         f"from the run-cache, {len(events['unchanged'])} unchanged",
         file=sys.stderr,
     )
-    _print_table(host)
+    _print_table(host, params["stats"]["level"])
     return 0
