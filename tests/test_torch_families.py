@@ -1,0 +1,371 @@
+"""The PyTorch families ``gru``, ``lstm`` and ``transformer`` and their shared machinery.
+
+Window and schedule helpers need no torch; everything else skips only when torch is absent.
+"""
+
+from __future__ import annotations
+
+import itertools
+import math
+import subprocess
+import sys
+import zipfile
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+import retrograde.families as families
+from retrograde.errors import ConfigError, MissingDependencyError
+from retrograde.families import _torch_common
+from retrograde.families._torch_common import (
+    learning_rate,
+    make_stream,
+    make_windows,
+    prediction_windows,
+)
+from retrograde.families._torch_family import TRAINING_DEFAULTS
+from retrograde.sequences import SequenceSet
+
+TORCH_FAMILIES = ["gru", "lstm", "transformer"]
+
+try:
+    import torch
+except ImportError:  # pragma: no cover - CI installs the CPU wheel
+    torch = None
+
+needs_torch = pytest.mark.skipif(torch is None, reason="torch extra not installed")
+
+
+def _small(name: str, **overrides: object) -> families.Family:
+    params = dict(families.registry.get(name)._test_params)  # type: ignore[attr-defined]
+    params.update(progress=False, **overrides)
+    return families.make(name, **params)
+
+
+def _units(n_units: int, vocab_size: int, max_len: int, seed: int) -> SequenceSet:
+    rng = np.random.default_rng(seed)
+    rows = [rng.integers(0, vocab_size, rng.integers(0, max_len + 1)) for _ in range(n_units)]
+    return SequenceSet.from_list(rows, vocab_size=vocab_size)
+
+
+# ----------------------------------------------------------------------------- windows
+def _scoring_start(p: int, context: int, stride: int) -> int:
+    """s(p) as the docs/torch.md formula states it, written independently."""
+    return 0 if p < context else stride * math.ceil((p - context + 1) / stride)
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    lengths=st.lists(st.integers(1, 40), min_size=1, max_size=6),
+    context=st.integers(1, 12),
+    stride_fraction=st.floats(0.01, 1.0),
+)
+def test_scoring_windows_own_every_position_once_from_the_documented_start(
+    lengths, context, stride_fraction
+):
+    stride = max(1, min(context, round(stride_fraction * context)))
+    windows = make_windows(np.array(lengths), context=context, stride=stride)
+    owner_start = {}
+    for unit, start, length, owned_from in zip(
+        windows.unit, windows.start, windows.length, windows.owned_from, strict=True
+    ):
+        assert 1 <= length <= context
+        for p in range(start + owned_from, start + length):
+            assert (unit, p) not in owner_start
+            owner_start[unit, p] = start
+    expected = {
+        (u, p): _scoring_start(p, context, stride) for u, n in enumerate(lengths) for p in range(n)
+    }
+    assert owner_start == expected
+
+
+def test_training_windows_are_consecutive_non_overlapping_chunks_of_context():
+    windows = make_windows(np.array([10, 3]), context=4, stride=4)
+    assert windows.start.tolist() == [0, 4, 8, 0]
+    assert windows.length.tolist() == [4, 4, 2, 3]
+    assert windows.owned_from.tolist() == [0, 0, 0, 0]
+
+
+def test_prediction_window_for_a_prefix_matches_the_scoring_window_of_that_position():
+    context, stride = 5, 2
+    p = np.arange(30)
+    windows = prediction_windows(p, context=context, stride=stride)
+    assert windows.start.tolist() == [_scoring_start(int(q), context, stride) for q in p]
+    assert np.all(windows.start + windows.owned_from == p)  # owns exactly position p
+
+
+def test_stream_shifts_inputs_by_one_behind_a_begin_id_and_ends_targets_with_the_end_marker():
+    units = SequenceSet.from_list([[1, 0, 2]], vocab_size=3)
+    stream = make_stream(units, vocab_size=3)
+    assert stream.inputs.tolist() == [4, 1, 0, 2]  # BEGIN = vocab_size + 1
+    assert stream.targets.tolist() == [1, 0, 2, 3]  # END = vocab_size
+
+
+def test_learning_rate_warms_up_linearly_then_follows_torch_cosine_annealing():
+    pytest.importorskip("torch")
+    peak, min_ratio, warmup_steps, total_steps = 0.5, 0.1, 5, 25
+    warm = [
+        learning_rate(
+            s, total_steps=total_steps, peak=peak, warmup_steps=warmup_steps, min_ratio=min_ratio
+        )
+        for s in range(1, warmup_steps + 1)
+    ]
+    assert warm == pytest.approx([peak * s / warmup_steps for s in range(1, warmup_steps + 1)])
+    # Reference: torch's CosineAnnealingLR, i.e. SGDR without restarts (Loshchilov and
+    # Hutter 2017, eq. 5): eta_min + (eta_max - eta_min) * (1 + cos(pi * t / T)) / 2.
+    parameter = torch.nn.Parameter(torch.zeros(1))
+    optimizer = torch.optim.SGD([parameter], lr=peak)
+    scheduler = torch.optim.lr_scheduler.CosineAnnealingLR(
+        optimizer, T_max=total_steps - warmup_steps, eta_min=peak * min_ratio
+    )
+    reference = []
+    for _ in range(total_steps - warmup_steps):
+        optimizer.step()
+        scheduler.step()
+        reference.append(optimizer.param_groups[0]["lr"])
+    ours = [
+        learning_rate(
+            s, total_steps=total_steps, peak=peak, warmup_steps=warmup_steps, min_ratio=min_ratio
+        )
+        for s in range(warmup_steps + 1, total_steps + 1)
+    ]
+    assert ours == pytest.approx(reference, rel=1e-9)
+
+
+# ------------------------------------------------------------------------ the contract
+@needs_torch
+@pytest.mark.parametrize("name", TORCH_FAMILIES)
+def test_logprobs_equal_next_token_probs_at_observed_tokens_for_units_longer_than_context(name):
+    train = _units(40, vocab_size=4, max_len=20, seed=0)
+    model = _small(name, context=6, stride=2).fit(train, seed=3)
+    units = _units(5, vocab_size=4, max_len=20, seed=1)
+    scored = model.logprobs(units)
+    for i, unit in enumerate(units):
+        probs = model.next_token_probs([unit[:k] for k in range(len(unit) + 1)])
+        assert probs.shape == (len(unit) + 1, 5)
+        np.testing.assert_allclose(probs.sum(axis=1), 1.0, rtol=0, atol=1e-12)
+        observed = np.append(unit, 4)  # the end marker is outcome vocab_size
+        # float32 networks: batches of other shapes round the last bits differently.
+        np.testing.assert_allclose(
+            np.log(probs[np.arange(len(unit) + 1), observed]), scored[i], rtol=0, atol=1e-6
+        )
+
+
+@needs_torch
+@pytest.mark.parametrize("name", TORCH_FAMILIES)
+def test_unit_probabilities_with_their_lengths_sum_to_one_despite_sliding_windows(name):
+    # Law of total probability (common practice, no source): for every L, the units of
+    # length <= L (end marker scored) and the length-(L+1) prefixes partition all outcomes,
+    # so their probabilities add up to exactly 1. Context 3 < L makes windows slide.
+    train = _units(30, vocab_size=2, max_len=8, seed=0)
+    model = _small(name, context=3, stride=1).fit(train, seed=0)
+    longest = 5
+    complete = [
+        np.array(t) for n in range(longest + 1) for t in itertools.product([0, 1], repeat=n)
+    ]
+    ends = [np.array(t) for t in itertools.product([0, 1], repeat=longest + 1)]
+    units = SequenceSet.from_list(complete + ends, vocab_size=2)
+    rows = model.logprobs(units)
+    total = sum(math.exp(rows[i].sum()) for i in range(len(complete)))
+    total += sum(math.exp(rows[len(complete) + j][:-1].sum()) for j in range(len(ends)))
+    assert total == pytest.approx(1.0, abs=1e-6)  # float32 networks
+
+
+@needs_torch
+@pytest.mark.parametrize("name", TORCH_FAMILIES)
+def test_a_score_depends_only_on_earlier_tokens_inside_its_window(name):
+    context, stride = 4, 2
+    model = _small(name, context=context, stride=stride).fit(_units(30, 3, 12, 0), seed=0)
+    base = np.array([0, 1, 2, 0, 1, 2, 0, 1, 2, 0])
+    changed_late = base.copy()
+    changed_late[7] = 1  # position 7 is a target; inputs of positions >= 8 change
+    changed_early = base.copy()
+    changed_early[0] = 2  # only an input of positions <= 1 in stream terms, and target 0
+    rows = model.logprobs(SequenceSet.from_list([base, changed_late, changed_early], vocab_size=3))
+    np.testing.assert_array_equal(rows[0][:7], rows[1][:7])  # earlier positions untouched
+    # Position 9's window starts at s(9) = 6 > 1, so token 0 is outside what it sees.
+    assert _scoring_start(9, context, stride) == 6
+    np.testing.assert_array_equal(rows[0][9:], rows[2][9:])
+    assert not np.array_equal(rows[0][1:4], rows[2][1:4])  # but nearby positions do see it
+
+
+@needs_torch
+@pytest.mark.parametrize("name", TORCH_FAMILIES)
+def test_logprobs_match_a_scipy_log_softmax_of_the_raw_network_outputs(name):
+    from scipy.special import log_softmax
+
+    units = _units(6, vocab_size=5, max_len=7, seed=2)
+    model = _small(name, context=8).fit(_units(30, 5, 7, 0), seed=0)
+    rows = model.logprobs(units)
+    model.network_.eval()
+    for i, unit in enumerate(units):
+        inputs = torch.tensor([[6, *unit.tolist()]])  # BEGIN = vocab_size + 1
+        with torch.no_grad():
+            logits = model.network_(inputs)[0].double().numpy()  # (len + 1, vocab_size + 1)
+        expected = log_softmax(logits, axis=1)[np.arange(len(unit) + 1), [*unit.tolist(), 5]]
+        np.testing.assert_allclose(rows[i], expected, rtol=0, atol=1e-6)
+
+
+@needs_torch
+def test_sinusoidal_positions_follow_the_published_formula():
+    from retrograde.families._torch_nets import sinusoidal_table
+
+    # Vaswani et al. (2017) section 3.5: PE(pos, 2i) = sin(pos / 10000^(2i/d)),
+    # PE(pos, 2i+1) = cos(pos / 10000^(2i/d)).
+    width = 6
+    table = sinusoidal_table(5, width).numpy()
+    pos = np.arange(5)[:, None]
+    angle = pos / 10000 ** (np.arange(0, width, 2) / width)
+    np.testing.assert_allclose(table[:, 0::2], np.sin(angle), atol=1e-6)
+    np.testing.assert_allclose(table[:, 1::2], np.cos(angle), atol=1e-6)
+
+
+# ---------------------------------------------------------------------------- training
+@needs_torch
+@pytest.mark.parametrize("name", TORCH_FAMILIES)
+def test_two_fits_with_the_same_seed_and_threads_give_identical_scores(name):
+    train, test = _units(40, 4, 12, 0), _units(10, 4, 12, 1)
+    first = _small(name, dropout=0.1, threads=2).fit(train, test, seed=7).logprobs(test)
+    second = _small(name, dropout=0.1, threads=2).fit(train, test, seed=7).logprobs(test)
+    other_seed = _small(name, dropout=0.1, threads=2).fit(train, test, seed=8).logprobs(test)
+    np.testing.assert_array_equal(first.values, second.values)
+    assert not np.array_equal(first.values, other_seed.values)
+
+
+@needs_torch
+def test_a_fit_leaves_the_global_torch_rng_and_thread_count_unchanged():
+    threads_before = torch.get_num_threads()
+    torch.manual_seed(123)
+    expected = torch.rand(3)
+    torch.manual_seed(123)
+    _small("gru", threads=2, dropout=0.2).fit(_units(20, 3, 8, 0), seed=5)
+    np.testing.assert_array_equal(torch.rand(3).numpy(), expected.numpy())
+    assert torch.get_num_threads() == threads_before
+
+
+@needs_torch
+@pytest.mark.parametrize("name", TORCH_FAMILIES)
+def test_token_budget_trains_on_exactly_that_many_positions_in_every_order(name):
+    train = _units(30, 4, 10, 0)
+    reversed_train = SequenceSet.from_list([unit[::-1] for unit in train], vocab_size=4)
+    positions = len(train.tokens) + len(train)  # every token and every end marker is a target
+    budget = 2 * positions + 17  # two epochs and a partial third
+    forward = _small(name, token_budget=budget, epochs=1).fit(train, train, seed=0)
+    backward = _small(name, token_budget=budget, epochs=1).fit(
+        reversed_train, reversed_train, seed=0
+    )
+    for model in (forward, backward):
+        assert model.tokens_seen_ == budget
+        assert [r["tokens_seen"] for r in model.learning_curve_][-1] == budget
+        assert len(model.learning_curve_) == 3  # epochs ignored; the budget sets the length
+    assert [r["lr"] for r in forward.learning_curve_] == [r["lr"] for r in backward.learning_curve_]
+
+
+@needs_torch
+def test_early_stopping_restores_the_weights_of_the_best_validation_epoch():
+    train, valid = _units(40, 6, 10, 0), _units(15, 6, 10, 1)
+    model = _small("transformer", epochs=12, patience=2, lr=0.05).fit(train, valid, seed=0)
+    curve = [r["valid_bits_per_token"] for r in model.learning_curve_]
+    best = int(np.argmin(curve))
+    assert len(curve) == 12 or len(curve) - 1 - best == 2  # stopped after 2 stale epochs
+    assert model._bits_per_token(valid) == pytest.approx(min(curve), rel=1e-12)
+
+
+@needs_torch
+@pytest.mark.parametrize("name", TORCH_FAMILIES)
+def test_saved_model_is_a_state_dict_that_loads_with_weights_only_and_scores_identically(
+    name, tmp_path
+):
+    train, test = _units(30, 4, 10, 0), _units(8, 4, 10, 1)
+    model = _small(name).fit(train, test, seed=0)
+    model.save(tmp_path / "model")
+    assert sorted(p.name for p in (tmp_path / "model").iterdir()) == ["family.json", "weights.pt"]
+    assert zipfile.is_zipfile(tmp_path / "model" / "weights.pt")  # torch's zip format
+    state = torch.load(tmp_path / "model" / "weights.pt", weights_only=True)
+    assert all(isinstance(value, torch.Tensor) for value in state.values())
+    loaded = families.load(tmp_path / "model")
+    np.testing.assert_array_equal(loaded.logprobs(test).values, model.logprobs(test).values)
+    assert loaded.learning_curve_ == model.learning_curve_
+
+
+@needs_torch
+def test_bf16_autocast_trains_a_proper_model_whose_scores_differ_slightly_from_float32():
+    if not _torch_common.bf16_supported(torch):
+        pytest.skip("this CPU has no native bfloat16")
+    train, test = _units(40, 4, 12, 0), _units(10, 4, 12, 1)
+    plain = _small("transformer").fit(train, seed=0)
+    mixed = _small("transformer", bf16=True).fit(train, seed=0)
+    probs = mixed.next_token_probs([test[0][:k] for k in range(len(test[0]) + 1)])
+    np.testing.assert_allclose(probs.sum(axis=1), 1.0, atol=1e-12)  # scoring stays float32
+    difference = np.abs(plain.logprobs(test).values - mixed.logprobs(test).values)
+    assert 0 < difference.max() < 0.5
+
+
+@needs_torch
+def test_bf16_is_refused_in_one_line_on_a_cpu_without_bfloat16(monkeypatch):
+    monkeypatch.setattr(_torch_common, "bf16_supported", lambda torch: False)
+    with pytest.raises(ConfigError, match=r"family 'gru': parameter bf16=True is invalid"):
+        _small("gru", bf16=True).fit(_units(5, 3, 4, 0))
+
+
+# -------------------------------------------------------------------- params, packaging
+@needs_torch
+@pytest.mark.parametrize(
+    ("name", "key", "value", "allowed"),
+    [
+        ("gru", "hidden", 0, "an integer >= 1"),
+        ("lstm", "dropout", 1.0, "a number >= 0.0 and < 1.0"),
+        ("transformer", "width", 10, "a multiple of heads=4"),
+        ("transformer", "positional", "rotary", "one of 'learned', 'sinusoidal'"),
+        ("transformer", "stride", 9, "an integer >= 1 and <= 8"),
+        ("gru", "token_budget", 0, "an integer >= 1"),
+        ("gru", "bf16", "yes", "True or False"),
+    ],
+)
+def test_invalid_parameters_fail_before_training_naming_key_value_and_allowed(
+    name, key, value, allowed
+):
+    overrides = {key: value, "heads": 4} if name == "transformer" else {key: value}
+    model = _small(name, **overrides)
+    with pytest.raises(ConfigError) as caught:
+        model.fit(_units(5, 3, 4, 0))
+    assert str(caught.value) == (
+        f"family {name!r}: parameter {key}={value!r} is invalid; allowed: {allowed}"
+    )
+
+
+@needs_torch
+def test_every_torch_family_shares_the_documented_training_defaults():
+    import inspect
+
+    for name in TORCH_FAMILIES:
+        signature = inspect.signature(families.registry.get(name))
+        defaults = {key: signature.parameters[key].default for key in TRAINING_DEFAULTS}
+        assert defaults == TRAINING_DEFAULTS
+
+
+def test_without_torch_the_package_imports_and_torch_families_fail_in_one_line():
+    script = (
+        "import sys\n"
+        "class NoTorch:\n"  # a finder that makes every torch import fail, as if not installed
+        "    def find_spec(self, name, path=None, target=None):\n"
+        "        if name.split('.')[0] == 'torch':\n"
+        "            raise ImportError('No module named torch')\n"
+        "sys.meta_path.insert(0, NoTorch())\n"
+        "import retrograde.families as f\n"
+        "assert {'gru', 'lstm', 'transformer'} <= set(f.names())\n"
+        "try:\n"
+        "    f.make('lstm')\n"
+        "except Exception as exc:\n"
+        "    print(type(exc).__name__, '|', exc)\n"
+    )
+    result = subprocess.run(
+        [sys.executable, "-c", script], capture_output=True, text=True, check=True
+    )
+    kind, _, message = result.stdout.strip().partition(" | ")
+    assert kind == MissingDependencyError.__name__
+    assert "\n" not in message
+    assert "family 'lstm' needs PyTorch" in message
+    assert "pip install torch==2.13.0" in message
