@@ -265,3 +265,21 @@ def test_register_configs_stores_the_schema_in_hydra_config_store():
     assert "retrograde_schema.yaml" in repo and "study_schema.yaml" in repo["study"]
     node = repo["retrograde_schema.yaml"].node
     assert OmegaConf.get_type(node) is RetrogradeConfig
+
+
+def test_docstring_examples_of_the_pipeline_modules_run():
+    import doctest
+
+    import retrograde.commands.run
+    import retrograde.config
+    import retrograde.stages
+    import retrograde.stages.reorder
+
+    for module in (
+        retrograde.config,
+        retrograde.stages,
+        retrograde.stages.reorder,
+        retrograde.commands.run,
+    ):
+        failures, _ = doctest.testmod(module, optionflags=doctest.ELLIPSIS)
+        assert failures == 0, module.__name__

@@ -238,3 +238,15 @@ def test_a_crashing_fit_names_the_cell_and_its_log(host, capsys, monkeypatch):
     log = line.rsplit("see ", 1)[1]
     assert log.startswith("pipelines/retrograde/cells/corpus/boom/") and log.endswith("fit.log")
     assert "Traceback" in (host / log).read_text()
+
+
+def test_jobs_runs_the_new_fit_stages_as_parallel_dvc_processes(host, capsys):
+    status, ran, _, _ = _run(capsys, host, "--jobs", "2", "stats.n_boot=200", "study.seeds=[0,1]")
+    assert status == 0
+    new_cells = _cells(seeds=(1,))
+    assert new_cells <= set(_lock(host))
+    # The parallel executor logs each stage it ran; the final `dvc repro` fitted nothing.
+    logs = {p.stem for p in (host / "pipelines/retrograde/logs").glob("fit@*.log")}
+    assert new_cells <= logs and not (ran & new_cells)
+    metrics = yaml.safe_load((host / "pipelines/retrograde/metrics.json").read_text())
+    assert metrics["corpus"]["small"]["reverse"]["seeds"] == 2
