@@ -264,7 +264,7 @@ def test_grouping_units_by_document_widens_the_interval_when_documents_share_dif
 def test_seed_resampling_starts_at_three_seeds():
     per_group = np.array([[[1.0, 2.0, 3.0], [2.0, 3.0, 4.0]]])  # (1 variant, 2 seeds, 3 units)
     totals = bootstrap_totals(
-        per_group, n_boot=50, rng=np.random.default_rng(0), resample_seeds=False
+        per_group, n_boot=50, rng=np.random.default_rng(0), seed_weight_scale=None
     )
     # Seeds keep weight 1: each replicate is the seed-average of a unit resample.
     assert np.all(np.isclose(totals * 2 % 1, 0) | np.isclose(totals * 2 % 1, 1))

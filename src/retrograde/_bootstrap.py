@@ -3,8 +3,8 @@
 - :func:`bootstrap_totals` — a two-level (seeds x units) bootstrap of seed-averaged totals,
   the "pigeonhole" bootstrap for crossed designs (Owen 2007, *Ann. Appl. Stat.* 1(2)):
   seeds and groups of units are resampled independently and a cell's weight is the product
-  of its seed weight and its group count. Seed counts are rescaled as in Rao & Wu (1988) so
-  the seed-level variance is not shrunk by (S - 1) / S with few seeds.
+  of its seed weight and its group count. Seed weights are rescaled (:func:`seed_weight_scale`)
+  so that a handful of seeds does not understate training randomness.
 - :func:`sign_flip_pvalue` — a paired sign-flip (randomization) test on per-group
   differences, exact for few groups and Monte Carlo with the add-one correction otherwise.
 - :func:`holm` — Holm's (1979) step-down adjustment of p-values.
@@ -19,7 +19,14 @@ import itertools
 
 import numpy as np
 
-__all__ = ["bootstrap_totals", "group_sums", "holm", "resample_counts", "sign_flip_pvalue"]
+__all__ = [
+    "bootstrap_totals",
+    "group_sums",
+    "holm",
+    "resample_counts",
+    "seed_weight_scale",
+    "sign_flip_pvalue",
+]
 
 #: most random numbers drawn at once (about 32 MB of int64); bounds memory, not results
 _CHUNK_ELEMENTS = 4_000_000
@@ -61,7 +68,11 @@ def resample_counts(n_items: int, n_resamples: int, rng: np.random.Generator) ->
 
 
 def bootstrap_totals(
-    per_group: np.ndarray, *, n_boot: int, rng: np.random.Generator, resample_seeds: bool
+    per_group: np.ndarray,
+    *,
+    n_boot: int,
+    rng: np.random.Generator,
+    seed_weight_scale: float | None,
 ) -> np.ndarray:
     """Bootstrap replicates of each variant's seed-averaged total.
 
@@ -75,15 +86,16 @@ def bootstrap_totals(
         Number of bootstrap replicates.
     rng : numpy.random.Generator
         Source of randomness (seeded by the caller).
-    resample_seeds : bool
-        Also resample seeds (the outer level); when false every seed keeps weight 1.
+    seed_weight_scale : float or None
+        Also resample seeds (the outer level) with weights ``w = 1 + scale (k - 1)`` from
+        multinomial seed counts ``k``; ``None`` keeps every seed at weight 1. A scale of 1 is
+        the plain bootstrap; see :func:`seed_weight_scale` for the one the statistics use.
 
     Returns
     -------
     (n_boot, n_variants) float64
         ``sum_s w_s sum_g c_g per_group[v, s, g] / n_seeds`` for each replicate, with ``c``
-        multinomial group counts and ``w = 1 + sqrt(S / (S - 1)) (k - 1)`` from multinomial
-        seed counts ``k`` (or ``w = 1``).
+        multinomial group counts and ``w`` the seed weights.
     """
     n_variants, n_seeds, n_groups = per_group.shape
     by_group = per_group.transpose(2, 0, 1).reshape(n_groups, n_variants * n_seeds)
@@ -93,15 +105,33 @@ def bootstrap_totals(
         size = min(chunk, n_boot - start)
         group_counts = resample_counts(n_groups, size, rng)  # (size, n_groups)
         per_seed = (group_counts @ by_group).reshape(size, n_variants, n_seeds)
-        if resample_seeds:
-            # Rescaled seed weights (Rao & Wu 1988, JASA 83:231): a plain bootstrap of S
-            # seeds shrinks the seed variance by (S - 1) / S, which undercovers at S = 3..5.
-            seed_counts = resample_counts(n_seeds, size, rng)  # (size, n_seeds)
-            seed_counts = 1.0 + np.sqrt(n_seeds / (n_seeds - 1.0)) * (seed_counts - 1.0)
+        if seed_weight_scale is None:
+            seed_weights = np.ones((size, n_seeds))
         else:
-            seed_counts = np.ones((size, n_seeds))
-        totals[start : start + size] = np.einsum("bvs,bs->bv", per_seed, seed_counts) / n_seeds
+            seed_counts = resample_counts(n_seeds, size, rng)  # (size, n_seeds)
+            seed_weights = 1.0 + seed_weight_scale * (seed_counts - 1.0)
+        totals[start : start + size] = np.einsum("bvs,bs->bv", per_seed, seed_weights) / n_seeds
     return totals
+
+
+def seed_weight_scale(n_seeds: int, level: float) -> float:
+    """Scale of the seed-level bootstrap weights for ``n_seeds`` seeds at confidence ``level``.
+
+    ``sqrt(S / (S - 1))`` undoes the plain bootstrap's shrinking of a mean's variance by
+    ``(S - 1) / S`` (the rescaling bootstrap of Rao & Wu 1988, JASA 83:231). The factor
+    ``t_{S-1} / z`` (Student-t over normal quantile at ``level``) widens the seed level as a
+    t interval would for S values; it is this project's small-sample heuristic, checked by
+    simulation in ``benchmarks/bench_coverage.py`` (not a published method).
+
+    Examples
+    --------
+    >>> round(seed_weight_scale(5, 0.95), 3)  # sqrt(5/4) * 2.776 / 1.960
+    1.584
+    """
+    from scipy.stats import norm, t  # scipy is a core dependency; imported when needed
+
+    upper = 1.0 - (1.0 - level) / 2.0
+    return float(np.sqrt(n_seeds / (n_seeds - 1.0)) * t.ppf(upper, n_seeds - 1) / norm.ppf(upper))
 
 
 def sign_flip_pvalue(

@@ -7,7 +7,8 @@ under the model trained with seed ``s`` on that order (end marker included). The
 - ``bits_per_token = sum_i mean_s NLL[s, i] / ln 2 / sum_i n_tokens[i]``;
 - ``gap_pct = 100 * (T_order / T_reference - 1)`` with ``T = sum_i mean_s NLL[s, i]``;
 - the interval is a percentile bootstrap of that ratio that resamples units (grouped by
-  document when ``doc_ids`` is given) and, with 3 or more seeds, seeds as well;
+  document when ``doc_ids`` is given) and, with 3 or more seeds, seeds as well (with
+  widened seed weights, see :func:`retrograde._bootstrap.seed_weight_scale`);
 - ``p_value`` is a paired sign-flip test on the seed-averaged per-unit (per-document)
   differences;
 - ``seed_spread_pct`` is the standard deviation over seeds of the per-seed gap.
@@ -25,7 +26,13 @@ from typing import Any
 
 import numpy as np
 
-from ._bootstrap import bootstrap_totals, group_sums, holm, sign_flip_pvalue
+from ._bootstrap import (
+    bootstrap_totals,
+    group_sums,
+    holm,
+    seed_weight_scale,
+    sign_flip_pvalue,
+)
 from ._validation import check_float, check_int
 from .errors import DataError
 from .sequences import Ragged
@@ -201,7 +208,9 @@ def summarize_model(
         per_group,
         n_boot=n_boot,
         rng=rng,
-        resample_seeds=n_seeds >= MIN_SEEDS_FOR_TRAINING_NOISE,
+        seed_weight_scale=(
+            seed_weight_scale(n_seeds, level) if n_seeds >= MIN_SEEDS_FOR_TRAINING_NOISE else None
+        ),
     )  # (n_boot, n_orders)
     boot_gaps = 100.0 * (replicates / replicates[:, :1] - 1.0)
     tail = (1.0 - level) / 2.0
