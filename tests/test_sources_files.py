@@ -103,6 +103,8 @@ def test_text_parameters_are_checked_with_a_suggestion(tmp_path):
     )
     with pytest.raises(ConfigError, match="parameter files=3 is invalid"):
         make("text", files=3)
+    with pytest.raises(ConfigError, match="allowed: a path or glob, or a non-empty list of them"):
+        make("text", files={"a": str(tmp_path / "a.txt")})
     with pytest.raises(ConfigError, match="unexpected keyword argument 'path'"):
         make("text", path="a.txt")
 
@@ -287,3 +289,11 @@ def test_line_split_yields_every_non_blank_line_with_its_utf8_size(lines, ending
         documents = list(make("text", files=str(path), split="line").documents())
         assert [d.text for d in documents] == kept
         assert [d.n_bytes for d in documents] == [len(line.encode("utf-8")) for line in kept]
+
+
+def test_files_may_come_from_a_hydra_list_config(tmp_path):
+    from omegaconf import OmegaConf
+
+    (tmp_path / "a.txt").write_text("hi\n")
+    config = OmegaConf.create({"files": [str(tmp_path / "a.txt")], "split": "line"})
+    assert _texts(make("text", **config)) == ["hi"]

@@ -21,7 +21,7 @@ import glob
 import inspect
 import os
 from abc import ABC, abstractmethod
-from collections.abc import Iterator, Sequence
+from collections.abc import Iterator, Mapping, Sequence
 from pathlib import Path
 from typing import Any, ClassVar
 
@@ -153,7 +153,9 @@ def _as_path_list(owner: str, key: str, value: Any) -> list[str]:
     """A single path or a list of paths (Hydra gives a ListConfig) as a list of strings."""
     if isinstance(value, (str, os.PathLike)):
         items: list[Any] = [value]
-    elif isinstance(value, Sequence) or hasattr(value, "__iter__"):
+    elif isinstance(value, Mapping):
+        items = []
+    elif isinstance(value, Sequence) or hasattr(value, "__iter__"):  # list, tuple, ListConfig
         items = list(value)
     else:
         items = []
