@@ -13,6 +13,7 @@ from collections.abc import Callable
 import numpy as np
 
 from ..sequences import SequenceSet
+from ._ngram_counts import gather
 
 __all__ = ["unit_events"]
 
@@ -35,18 +36,25 @@ def unit_events(units: SequenceSet) -> tuple[Callable[[int], np.ndarray], np.nda
     # Flat token index of each event's own position (== next unit's start for end markers).
     token_index = np.arange(n_events, dtype=index_dtype) - unit_of_event
     # Position inside the unit, capped: only "is it at least lag?" is asked, lag <= 127.
-    position = np.minimum(token_index - units.offsets[:-1][unit_of_event], 127).astype(np.int8)
+    # Computed in place in index_dtype: int64 temporaries here were the fit's memory peak.
+    starts = gather(units.offsets[:-1].astype(index_dtype), unit_of_event)
     del unit_of_event
+    np.subtract(token_index, starts, out=starts)
+    np.minimum(starts, 127, out=starts)
+    position = starts.astype(np.int8)
+    del starts
     # One dummy token when there are none keeps the clipped look-ups below in range.
     tokens = np.asarray(units.tokens) if len(units.tokens) else np.zeros(1, dtype=np.int32)
     outcomes = np.full(n_events, end, dtype=np.int32)
     is_token = np.ones(n_events, dtype=bool)
     is_token[event_offsets[1:] - 1] = False
-    outcomes[is_token] = tokens[token_index[is_token]]
+    outcomes[is_token] = gather(tokens, token_index[is_token])
     del is_token
 
     def symbol_at_lag(lag: int) -> np.ndarray:
-        symbols = tokens[np.maximum(token_index - lag, 0)].astype(np.int32)
+        # Clipped at the first token; positions before the unit start get the begin marker.
+        symbols = gather(tokens, np.maximum(token_index, lag), offset=-lag)
+        symbols = symbols.astype(np.int32, copy=False)
         symbols[position < lag] = begin
         return symbols
 

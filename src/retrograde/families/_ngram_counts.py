@@ -31,6 +31,7 @@ __all__ = [
     "KneserNeyTables",
     "count_tables",
     "distinct_counts",
+    "gather",
     "interpolated_probs",
     "lookup",
     "modified_kn_discounts",
@@ -46,29 +47,61 @@ FALLBACK_DISCOUNT = 0.5
 _DENSE_KEYS = 1 << 25
 
 
+#: events per step when gathering: numpy converts int32 indices to int64 (intp) first, and
+#: a full-size converted copy at 25 M events would double the memory peak
+_GATHER_CHUNK = 1 << 20
+
+
+def gather(values: np.ndarray, index: np.ndarray, offset: int = 0) -> np.ndarray:
+    """``values[index + offset]`` computed in chunks, so no full-size int64 copy of ``index``."""
+    out = np.empty(len(index), dtype=values.dtype)
+    for start in range(0, len(index), _GATHER_CHUNK):
+        chunk = index[start : start + _GATHER_CHUNK].astype(np.intp)
+        if offset:
+            chunk += offset
+        np.take(values, chunk, out=out[start : start + _GATHER_CHUNK])
+    return out
+
+
 def _index_dtype(n: int) -> type[np.signedinteger[Any]]:
     return np.int32 if n < (1 << 31) else np.int64
 
 
-def rank_pairs(high: np.ndarray, low: np.ndarray, n_low: int) -> tuple[np.ndarray, np.ndarray]:
+def rank_pairs(
+    high: np.ndarray, low: np.ndarray, n_low: int, *, overwrite_high: bool = False
+) -> tuple[np.ndarray, np.ndarray]:
     """Ids of the pairs ``(high, low)`` among their distinct values, in key order.
 
     Returns ``(ids, keys)``: ``keys`` are the sorted distinct ``high * n_low + low`` (int64)
     and ``ids[e]`` is the index of pair ``e``'s key in ``keys`` (int32 when it fits).
+    ``overwrite_high=True`` lets the keys reuse ``high``'s memory when its dtype fits.
+
+    Examples
+    --------
+    >>> ids, keys = rank_pairs(np.array([1, 0, 1]), np.array([2, 2, 2]), 3)
+    >>> ids.tolist(), keys.tolist()
+    ([1, 0, 1], [2, 5])
     """
     n_high = int(high.max()) + 1 if len(high) else 1
     if n_high * n_low >= 1 << 62:
         raise OverflowError(f"n-gram key space {n_high} x {n_low} does not fit in 63 bits")
-    keys = high.astype(np.int64) * n_low + low
     space = n_high * n_low
+    dtype = np.int32 if space < (1 << 31) else np.int64
+    if overwrite_high and high.dtype == dtype:
+        keys = high
+        keys *= n_low
+        keys += low
+    else:
+        keys = _pair_keys(high, low, n_low, dtype)
     if space <= _DENSE_KEYS:
         present = np.zeros(space, dtype=bool)
-        present[keys] = True
+        for start in range(0, len(keys), _GATHER_CHUNK):
+            present[keys[start : start + _GATHER_CHUNK].astype(np.intp)] = True
         distinct = np.flatnonzero(present)
         del present
         rank = np.empty(space, dtype=_index_dtype(len(distinct)))
         rank[distinct] = np.arange(len(distinct))
-        return rank[keys], distinct
+        return gather(rank, keys), distinct.astype(np.int64)
     order = np.argsort(keys)
     sorted_keys = keys[order]
     del keys
@@ -77,7 +110,15 @@ def rank_pairs(high: np.ndarray, low: np.ndarray, n_low: int) -> tuple[np.ndarra
     np.not_equal(sorted_keys[1:], sorted_keys[:-1], out=is_new[1:])
     ids = np.empty(len(order), dtype=_index_dtype(len(order)))
     ids[order] = np.cumsum(is_new, dtype=ids.dtype) - 1
-    return ids, sorted_keys[is_new]
+    return ids, sorted_keys[is_new].astype(np.int64)
+
+
+def _pair_keys(high: np.ndarray, low: np.ndarray, n_low: int, dtype: Any) -> np.ndarray:
+    """``high * n_low + low`` computed in place (no full-size temporaries at 25 M events)."""
+    keys = high.astype(dtype)
+    keys *= n_low
+    keys += low
+    return keys
 
 
 def distinct_counts(keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -177,11 +218,13 @@ def count_tables(
     (the begin marker before the unit starts); ``outcomes`` is ``(n_events,)``.
     """
     context_keys: list[np.ndarray] = [np.zeros(0, dtype=np.int64)]
-    context_ids = np.zeros(len(outcomes), dtype=np.int64)  # the empty context
+    context_ids = np.zeros(len(outcomes), dtype=np.int32)  # the empty context
     for lag in range(1, order):
-        context_ids, keys = rank_pairs(context_ids, symbol_at_lag(lag), n_symbols)
+        context_ids, keys = rank_pairs(
+            context_ids, symbol_at_lag(lag), n_symbols, overwrite_high=True
+        )
         context_keys.append(keys)
-    top_keys = context_ids.astype(np.int64) * n_symbols + outcomes
+    top_keys = _pair_keys(context_ids, outcomes, n_symbols, np.int64)
     del context_ids
     type_keys = [np.zeros(0, dtype=np.int64)] * (order + 1)
     type_counts = [np.zeros(0, dtype=np.int64)] * (order + 1)
