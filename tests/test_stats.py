@@ -10,13 +10,14 @@ import pytest
 from scipy import stats as scipy_stats
 from statsmodels.stats.multitest import multipletests
 
-from retrograde import Ragged
+from retrograde import Ragged, SequenceSet
 from retrograde._bootstrap import bootstrap_totals, holm, sign_flip_pvalue
 from retrograde.errors import ConfigError, DataError
 from retrograde.stats import (
     adjust_holm,
     position_profile,
     seed_warning,
+    segment_breakdown,
     span_breakdown,
     summarize_model,
 )
@@ -349,3 +350,29 @@ def test_profiles_of_orders_with_different_units_are_refused():
             {"forward": Ragged.from_list([[1.0, 1.0]]), "reverse": Ragged.from_list([[1.0]])},
             reference_order="forward",
         )
+
+
+def test_segment_breakdown_splits_units_where_str_split_would():
+    # Reference: Python's str.split on the same text; a separator closes its own segment.
+    texts = ["ab.cd.e", "xyz", ".q"]
+    units = SequenceSet.from_list([[ord(c) for c in t] for t in texts], vocab_size=128)
+    rng = np.random.default_rng(0)
+    losses = Ragged.from_list([rng.gamma(2.0, 1.0, size=len(t) + 1) for t in texts])
+    out = segment_breakdown({"forward": losses}, units, separator=ord("."), max_segments=3)
+    expected_bits = {0: 0.0, 1: 0.0, 2: 0.0}
+    expected_tokens = {0: 0, 1: 0, 2: 0}
+    for text, row in zip(texts, losses, strict=True):
+        position = 0
+        for k, piece in enumerate(text.split(".")):
+            width = len(piece) + (1 if position + len(piece) < len(text) else 0)  # + its "."
+            expected_bits[min(k, 2)] += row[position : position + width].sum() / LN2
+            expected_tokens[min(k, 2)] += width
+            position += width
+    got = out["forward"]
+    assert [got[name]["tokens"] for name in ("segment_0", "segment_1", "segment_2+")] == [
+        expected_tokens[0],
+        expected_tokens[1],
+        expected_tokens[2],
+    ]
+    assert got["segment_1"]["bits_per_token"] == approx(expected_bits[1] / expected_tokens[1])
+    assert got["segment_0"]["bits_per_unit"] == approx(expected_bits[0] / 3)

@@ -1,5 +1,7 @@
 """Paired order gaps with uncertainty, Holm adjustment, position profiles and span losses.
 
+Position profiles and span losses live in ``retrograde._profiles`` and are re-exported here.
+
 The statistics follow DESIGN.md section 8 and are explained in ``docs/statistics.md``.
 For one model on one source, ``NLL[order][s, i]`` is the loss in nats of test unit ``i``
 under the model trained with seed ``s`` on that order (end marker included). Then
@@ -33,9 +35,9 @@ from ._bootstrap import (
     seed_weight_scale,
     sign_flip_pvalue,
 )
+from ._profiles import position_profile, segment_breakdown, span_breakdown
 from ._validation import check_float, check_int
 from .errors import DataError
-from .sequences import Ragged
 
 __all__ = [
     "MIN_SEEDS_FOR_TRAINING_NOISE",
@@ -44,6 +46,7 @@ __all__ = [
     "position_profile",
     "rounded",
     "seed_warning",
+    "segment_breakdown",
     "span_breakdown",
     "summarize_model",
 ]
@@ -275,120 +278,3 @@ def adjust_holm(
         leaf["p_value_holm"] = rounded(p_holm)
         leaf["significant"] = bool(p_holm < alpha)
     return table  # type: ignore[return-value]
-
-
-def _check_same_units(natural_losses: Mapping[str, Ragged]) -> tuple[list[str], np.ndarray]:
-    orders = list(natural_losses)
-    if not orders:
-        raise DataError("no orders to profile; natural_losses is empty")
-    lengths = natural_losses[orders[0]].lengths
-    for order in orders[1:]:
-        if not np.array_equal(natural_losses[order].lengths, lengths):
-            raise DataError(
-                f"order {order!r}: per-position losses do not match {orders[0]!r} unit by "
-                "unit; map every order's losses back to the natural order of the same units"
-            )
-    return orders, lengths
-
-
-def position_profile(
-    natural_losses: Mapping[str, Ragged], *, reference_order: str, n_buckets: int = 50
-) -> dict[str, Any]:
-    """Mean loss per natural-order position (or position bucket), and its gap to the reference.
-
-    ``natural_losses[order]`` holds, per test unit, the loss in nats at each natural-order
-    position with the end marker last. When every unit has the same length ``L <= n_buckets``
-    positions are exact (``x`` = 0 .. L-1); otherwise position ``j`` of a unit with ``L`` tokens
-    falls in bucket ``floor(j * n_buckets / L)`` and ``x`` is the bucket's middle as a fraction
-    of the unit. The end marker is reported apart (``end_bits``).
-
-    Returns
-    -------
-    dict
-        ``{"reference_order", "position": "absolute" | "relative", "x": [...], "tokens": [...],
-        "bits": {order: [...]}, "diff_bits": {order: [...]}, "end_bits": {order: float}}``,
-        bits are mean bits per token; empty buckets hold ``None``.
-    """
-    n_buckets = check_int("stats 'position_profile'", "n_buckets", n_buckets, 1)
-    orders, lengths = _check_same_units(natural_losses)
-    if reference_order not in natural_losses:
-        raise DataError(f"reference order {reference_order!r} has no position losses")
-    token_lengths = lengths - 1  # the last value of each row is the end marker
-    any_losses = natural_losses[orders[0]]
-    positions = any_losses.positions()  # (n_values,)
-    length_of_value = np.repeat(token_lengths, lengths)
-    is_token = positions < length_of_value
-    fixed = len(token_lengths) > 0 and np.all(token_lengths == token_lengths[0])
-    if fixed and token_lengths[0] <= n_buckets:
-        mode, n_bins = "absolute", int(token_lengths[0])
-        bucket = positions[is_token]
-        x = [float(j) for j in range(n_bins)]
-    else:
-        mode, n_bins = "relative", n_buckets
-        bucket = (positions[is_token] * n_buckets) // length_of_value[is_token]
-        x = [rounded((j + 0.5) / n_buckets) for j in range(n_bins)]
-    counts = np.bincount(bucket, minlength=n_bins)
-
-    def mean_bits(losses: Ragged) -> np.ndarray:
-        summed = np.bincount(bucket, weights=losses.values[is_token], minlength=n_bins)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            return summed / counts / _LN2
-
-    means = {order: mean_bits(natural_losses[order]) for order in orders}
-    end_values = {o: natural_losses[o].values[~is_token] for o in orders}
-
-    def listed(values: np.ndarray) -> list[float | None]:
-        return [rounded(v) if np.isfinite(v) else None for v in values]
-
-    return {
-        "reference_order": reference_order,
-        "position": mode,
-        "x": x,
-        "tokens": counts.astype(int).tolist(),
-        "bits": {o: listed(means[o]) for o in orders},
-        "diff_bits": {o: listed(means[o] - means[reference_order]) for o in orders},
-        "end_bits": {
-            o: rounded(end_values[o].mean() / _LN2) if len(end_values[o]) else None for o in orders
-        },
-    }
-
-
-def span_breakdown(
-    natural_losses: Mapping[str, Ragged], spans: Mapping[str, tuple[int, int]]
-) -> dict[str, dict[str, dict[str, Any]]]:
-    """Loss per named natural-order span, as bits per token and perplexity, for every order.
-
-    ``spans[name] = (start, end)`` selects token positions ``start <= j < end`` of each unit
-    (clipped to the unit; the end marker is never in a span). Perplexity is ``2 ** bits``.
-
-    Returns
-    -------
-    dict
-        ``{order: {span: {"bits_per_token", "perplexity", "bits_per_unit", "tokens"}}}``.
-
-    Examples
-    --------
-    >>> losses = Ragged.from_list([[math.log(2), math.log(4), 0.0]])  # 2 tokens + end marker
-    >>> span_breakdown({"forward": losses}, {"x": (0, 1), "y": (1, 2)})["forward"]["y"]
-    {'bits_per_token': 2.0, 'perplexity': 4.0, 'bits_per_unit': 2.0, 'tokens': 1}
-    """
-    orders, lengths = _check_same_units(natural_losses)
-    positions = natural_losses[orders[0]].positions()
-    token_length = np.repeat(lengths - 1, lengths)
-    n_units = len(lengths)
-    result: dict[str, dict[str, dict[str, Any]]] = {order: {} for order in orders}
-    for name, (start, end) in spans.items():
-        if not 0 <= start <= end:
-            raise DataError(f"span {name!r}: ({start}, {end}) is not a range 0 <= start <= end")
-        inside = (positions >= start) & (positions < end) & (positions < token_length)
-        n_inside = int(inside.sum())
-        for order in orders:
-            bits = float(natural_losses[order].values[inside].sum()) / _LN2
-            per_token = bits / n_inside if n_inside else float("nan")
-            result[order][name] = {
-                "bits_per_token": rounded(per_token) if n_inside else None,
-                "perplexity": rounded(2.0**per_token) if n_inside else None,
-                "bits_per_unit": rounded(bits / max(n_units, 1)),
-                "tokens": n_inside,
-            }
-    return result
