@@ -211,11 +211,13 @@ def count_tables(
     order: int,
     n_symbols: int,
     fixed_discount: float | None = None,
+    on_level: Callable[[], object] | None = None,
 ) -> KneserNeyTables:
     """Count every level and derive modified-KN discounts.
 
     ``symbol_at_lag(j)`` returns the ``(n_events,)`` context symbol ``j`` positions back
     (the begin marker before the unit starts); ``outcomes`` is ``(n_events,)``.
+    ``on_level()`` is called after each of the ``order`` passes over the events (progress).
     """
     context_keys: list[np.ndarray] = [np.zeros(0, dtype=np.int64)]
     context_ids = np.zeros(len(outcomes), dtype=np.int32)  # the empty context
@@ -224,12 +226,16 @@ def count_tables(
             context_ids, symbol_at_lag(lag), n_symbols, overwrite_high=True
         )
         context_keys.append(keys)
+        if on_level is not None:
+            on_level()
     top_keys = _pair_keys(context_ids, outcomes, n_symbols, np.int64)
     del context_ids
     type_keys = [np.zeros(0, dtype=np.int64)] * (order + 1)
     type_counts = [np.zeros(0, dtype=np.int64)] * (order + 1)
     type_keys[order], type_counts[order] = distinct_counts(top_keys)
     del top_keys
+    if on_level is not None:
+        on_level()
     for k in range(order - 1, 0, -1):
         # Continuation count of a k-gram: how many distinct (k+1)-gram types end with it.
         longer = type_keys[k + 1]

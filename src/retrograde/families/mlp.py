@@ -130,10 +130,13 @@ class MLP(Family):
         symbol_at_lag, outcomes, event_offsets = unit_events(units)
         n_symbols = self.vocab_size_ + 1
         # (n_events, window): column j holds the feature index of the symbol j + 1 back.
-        columns = np.empty((len(outcomes), self.window), dtype=np.int64)
+        n_features = self.window * n_symbols
+        columns = np.empty(
+            (len(outcomes), self.window), dtype=np.int32 if n_features < 2**31 else np.int64
+        )
         for lag in range(1, self.window + 1):
             columns[:, lag - 1] = (lag - 1) * n_symbols + symbol_at_lag(lag)
-        return _one_hot(columns, self.window * n_symbols), outcomes, event_offsets
+        return _one_hot(columns, n_features), outcomes, event_offsets
 
     # ------------------------------------------------------------------ learning
     def fit(self, train: SequenceSet, valid: SequenceSet | None = None, seed: int = 0) -> MLP:
@@ -269,9 +272,12 @@ class MLP(Family):
 def _one_hot(columns: np.ndarray, n_features: int) -> scipy.sparse.csr_matrix:
     """CSR matrix with a 1 at ``columns[e, j]`` for every row ``e`` (one per window slot)."""
     n_rows, per_row = columns.shape
-    indptr = np.arange(0, n_rows * per_row + 1, per_row, dtype=np.int64)
+    # int32 indices halve the index memory; scipy needs int64 past 2**31 entries.
+    index_dtype = np.int32 if max(n_rows * per_row, n_features) < 2**31 else np.int64
+    indptr = np.arange(0, n_rows * per_row + 1, per_row, dtype=index_dtype)
     data = np.ones(n_rows * per_row, dtype=np.float64)
-    return scipy.sparse.csr_matrix((data, columns.ravel(), indptr), shape=(n_rows, n_features))
+    indices = columns.ravel().astype(index_dtype, copy=False)
+    return scipy.sparse.csr_matrix((data, indices, indptr), shape=(n_rows, n_features))
 
 
 def forward_probs(

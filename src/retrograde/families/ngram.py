@@ -14,6 +14,7 @@ from collections.abc import Sequence
 from typing import Any, ClassVar
 
 import numpy as np
+from tqdm.auto import tqdm
 
 from .._validation import check_float, check_int
 from ..errors import DataError
@@ -75,13 +76,16 @@ class NGram(Family):
         self.vocab_size_ = train.effective_vocab_size()
         train = _with_vocab(train, self.vocab_size_)
         symbol_at_lag, outcomes, _ = unit_events(train)
-        self.tables_ = count_tables(
-            symbol_at_lag,
-            outcomes,
-            order=self.order,
-            n_symbols=self.vocab_size_ + 1,
-            fixed_discount=self.discount,
-        )
+        # One step per pass over the events; tqdm shows it only on a terminal.
+        with tqdm(total=self.order, desc="ngram fit", unit="pass", disable=None) as bar:
+            self.tables_ = count_tables(
+                symbol_at_lag,
+                outcomes,
+                order=self.order,
+                n_symbols=self.vocab_size_ + 1,
+                fixed_discount=self.discount,
+                on_level=bar.update,
+            )
         self.learning_curve_ = []
         if valid is not None and len(valid):
             # Not iterative: one point, so reports can still show validation loss.
