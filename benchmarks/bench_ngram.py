@@ -1,91 +1,329 @@
-"""Time and size the ``ngram`` family at the scale issue #3 names.
+"""Throughput and peak memory of the ``ngram`` family, with NLTK as the reference.
 
-A 5-gram on character data: the invented demo corpus (UTF-8 bytes as tokens, one unit per
-line), cut into contiguous train / valid / test blocks of 80 / 10 / 10 %. The fit gets the
-validation units as the pipeline's fit stage does (one scoring pass for the curve), then
-the test units are scored. Targets: fit + score >= 2 M tokens/s, peak memory < 1 GB with
-25 M training tokens.
+Data: Python source files shipped with this machine (see ``_corpus.py``), line units, the
+``chars`` and ``words`` tokenizers. Every measured case runs in a fresh process.
 
-Run: ``python benchmarks/bench_ngram.py [--train-tokens N] [--order K]``.
-Peak memory is measured in a second pass with ``tracemalloc`` (numpy reports its array
-allocations to it), so the timing pass runs untraced.
+What is timed
+-------------
+``ours``
+    ``families.make("ngram", order=K).fit(train)`` on the first units of the train split
+    holding N tokens, then ``logprobs(test)`` on the first units of the test split holding
+    N / 8 tokens (the test split is 1/8 of train in an 80/10/10 split). Scoring covers
+    every token and the end marker of each unit. Throughputs count real tokens.
+``nltk``
+    ``nltk.lm.KneserNeyInterpolated(K)``: ``padded_everygram_pipeline`` + ``fit`` on the
+    same small training units as ``ours_small`` (NLTK's pipeline is lazy, so both are
+    timed together), then ``model.logscore(token, context)`` for each token and the end
+    marker of the same test units, one call per event (NLTK has no batch scorer).
+``ours_small``
+    Our fit and score on exactly the NLTK data, median of 5 runs (each is milliseconds).
+
+Targets (issues #3 and #9): fit >= 100x and scoring >= 1000x NLTK's throughput; fit +
+score >= 2 M tokens/s for a character 5-gram; time per token flat within 30% from 1 M to
+16 M tokens; peak memory < 1 GB for a character 5-gram with 25 M training tokens.
+
+Run: ``python benchmarks/bench_ngram.py [--quick] [--out PATH]``.
 """
 
 from __future__ import annotations
 
 import argparse
-import resource
+import math
+import os
+import sys
+import tempfile
 import time
-import tracemalloc
+from pathlib import Path
+from typing import Any
 
+import _common
+import _corpus
 import numpy as np
 
-from retrograde import SequenceSet
-from retrograde.families import make
-from retrograde.sources.demo import corpus_text
+ORDERS = (3, 5, 8)
+KINDS = ("chars", "words")
+SIZES = (1_000_000, 4_000_000, 16_000_000)
+LARGE_CASE = ("chars", 5, 25_000_000)  # issue #3's memory target
+NLTK_TRAIN_TOKENS = 20_000
+#: scored events (tokens + end markers) per NLTK order: its scoring slows with the order
+NLTK_SCORED_EVENTS = {3: 2000, 5: 1000, 8: 250}
+#: --quick: enough to run every code path in seconds
+QUICK = {"orders": (3,), "sizes": (20_000, 40_000), "large": 60_000, "nltk_train": 2000}
+QUICK_NLTK_EVENTS = 40
+GIGABYTE = 1e9
 
 
-def character_splits(train_tokens: int, seed: int) -> dict[str, SequenceSet]:
-    """Byte tokens of the demo corpus, one unit per line, split 80 / 10 / 10 in order."""
-    data = np.frombuffer(
-        corpus_text(size_bytes=int(train_tokens / 0.8), seed=seed).encode("utf-8"),
-        dtype=np.uint8,
+def measure_ours(case: dict[str, Any]) -> dict[str, Any]:
+    from retrograde.families import make
+
+    folder = Path(case["data"])
+    train = _corpus.prefix(_corpus.load_split(folder, "train"), case["train_tokens"])
+    test = _corpus.prefix(_corpus.load_split(folder, "test"), case["test_tokens"])
+    baseline_mib = _common.peak_rss_bytes() / _common.MIB
+    repeats = case.get("repeats", 1)
+    model, fit_seconds = _common.median_seconds(
+        lambda: make("ngram", order=case["order"]).fit(train), repeats
     )
-    # Units are lines without their newline; offsets index the newline-free token array.
-    newline = np.flatnonzero(data == 10)
-    tokens = np.delete(data, newline).astype(np.int32)
-    ends = newline - np.arange(len(newline))
-    offsets = np.concatenate([[0], ends]).astype(np.int64)
-    units = SequenceSet(tokens[: offsets[-1]], offsets, vocab_size=256)
-    cuts = np.searchsorted(offsets, [0.8 * offsets[-1], 0.9 * offsets[-1]])
-    index = np.arange(len(units))
+    scores, score_seconds = _common.median_seconds(lambda: model.logprobs(test), repeats)
     return {
-        "train": units.subset(index[: cuts[0]]),
-        "valid": units.subset(index[cuts[0] : cuts[1]]),
-        "test": units.subset(index[cuts[1] :]),
+        "train_tokens": len(train.tokens),
+        "test_tokens": len(test.tokens),
+        "test_events": len(scores.values),
+        "fit_seconds": fit_seconds,
+        "score_seconds": score_seconds,
+        "bits_per_token": float(-scores.values.sum() / math.log(2) / len(test.tokens)),
+        "baseline_rss_mib": round(baseline_mib, 1),
     }
 
 
-def fit_and_score(splits: dict[str, SequenceSet], order: int) -> tuple[float, float, float]:
-    """(fit seconds, score seconds, test bits per token)."""
-    start = time.perf_counter()
-    model = make("ngram", order=order).fit(splits["train"], splits["valid"])
-    fitted = time.perf_counter()
-    scores = model.logprobs(splits["test"])
-    scored = time.perf_counter()
-    bits = -scores.values.sum() / np.log(2) / len(splits["test"].tokens)
-    return fitted - start, scored - fitted, bits
+def measure_nltk(case: dict[str, Any]) -> dict[str, Any]:
+    from nltk.lm import KneserNeyInterpolated
+    from nltk.lm.preprocessing import pad_both_ends, padded_everygram_pipeline
+    from nltk.util import ngrams
+
+    folder = Path(case["data"])
+    order = case["order"]
+    train = _corpus.prefix(_corpus.load_split(folder, "train"), case["train_tokens"])
+    test = _corpus.prefix(_corpus.load_split(folder, "test"), case["test_tokens"])
+    # NLTK's vocabulary looks up strings only: the ids become their decimal text.
+    sentences = [list(map(str, row.tolist())) for row in train]
+
+    def fit() -> Any:
+        grams, vocabulary = padded_everygram_pipeline(order, sentences)
+        model = KneserNeyInterpolated(order)
+        model.fit(grams, vocabulary)
+        return model
+
+    model, fit_seconds = _common.timed(fit)
+    # NLTK pads with K-1 begin and K-1 end symbols; the first len+1 K-grams of a unit predict
+    # its tokens and one end marker: the same events our family scores.
+    events = [
+        gram
+        for row in test
+        for gram in list(ngrams(pad_both_ends(list(map(str, row.tolist())), n=order), order))[
+            : len(row) + 1
+        ]
+    ]
+    log2_probs, score_seconds = _common.timed(
+        lambda: [model.logscore(gram[-1], gram[:-1]) for gram in events]
+    )
+    total_bits = -float(np.sum(log2_probs))
+    return {
+        "train_tokens": len(train.tokens),
+        "test_tokens": len(test.tokens),
+        "test_events": len(events),
+        "fit_seconds": fit_seconds,
+        "score_seconds": score_seconds,
+        "bits_per_token": total_bits / len(test.tokens) if math.isfinite(total_bits) else None,
+    }
 
 
-def main() -> None:
+def with_throughput(row: dict[str, Any]) -> dict[str, Any]:
+    row["fit_tokens_per_s"] = row["train_tokens"] / row["fit_seconds"]
+    row["score_tokens_per_s"] = row["test_tokens"] / row["score_seconds"]
+    row["fit_score_tokens_per_s"] = (row["train_tokens"] + row["test_tokens"]) / (
+        row["fit_seconds"] + row["score_seconds"]
+    )
+    row["seconds_per_million_tokens"] = 1e6 / row["fit_score_tokens_per_s"]
+    return row
+
+
+def nltk_events_cap_to_tokens(events: int, units: Any) -> int:
+    """Test tokens whose units hold about ``events`` events (tokens + end markers)."""
+    ends = units.offsets[1:] + np.arange(1, len(units) + 1)
+    n_units = int(min(len(units), 1 + ends.searchsorted(events)))
+    return int(units.offsets[n_units])
+
+
+def run_all(args: argparse.Namespace, workdir: Path) -> dict[str, Any]:
+    script = Path(__file__).resolve()
+    sizes = QUICK["sizes"] if args.quick else SIZES
+    orders = QUICK["orders"] if args.quick else ORDERS
+    large_kind, large_order, large_size = LARGE_CASE
+    large_size = QUICK["large"] if args.quick else large_size
+    nltk_train = QUICK["nltk_train"] if args.quick else NLTK_TRAIN_TOKENS
+    corpora = {}
+    for kind in KINDS:
+        need = max(sizes) if kind != large_kind else max(*sizes, large_size)
+        print(f"preparing {kind} units ({need:,} train tokens) ...", flush=True)
+        start = time.perf_counter()
+        corpora[kind] = _corpus.prepare_corpus(kind, need, workdir / kind)
+        corpora[kind]["prepare_seconds"] = round(time.perf_counter() - start, 1)
+
+    grid = []
+    cases = [(k, o, n) for k in KINDS for o in orders for n in sizes]
+    for kind, order, size in [*cases, (large_kind, large_order, large_size)]:
+        is_large = (kind, order, size) == (large_kind, large_order, large_size)
+        case = {"data": str(workdir / kind), "order": order}
+        case |= {"train_tokens": size, "test_tokens": size // 8}
+        row = with_throughput(_common.run_fresh(script, case | {"system": "ours"}))
+        grid.append({"tokens": kind, "order": order, "size": size, "large_case": is_large, **row})
+        print(f"  ours {kind} order {order} N={size:,}: {row['fit_score_tokens_per_s']:,.0f} tok/s")
+
+    versus_nltk = []
+    for kind in KINDS:
+        test = _corpus.load_split(workdir / kind, "test")
+        for order in orders:
+            events = QUICK_NLTK_EVENTS if args.quick else NLTK_SCORED_EVENTS[order]
+            case = {"data": str(workdir / kind), "order": order, "train_tokens": nltk_train}
+            case["test_tokens"] = nltk_events_cap_to_tokens(events, test)
+            nltk = with_throughput(_common.run_fresh(script, case | {"system": "nltk"}))
+            ours = with_throughput(
+                _common.run_fresh(script, case | {"system": "ours", "repeats": 5})
+            )
+            versus_nltk.append(
+                {
+                    "tokens": kind,
+                    "order": order,
+                    "nltk": nltk,
+                    "ours": ours,
+                    "fit_ratio": ours["fit_tokens_per_s"] / nltk["fit_tokens_per_s"],
+                    "score_ratio": ours["score_tokens_per_s"] / nltk["score_tokens_per_s"],
+                }
+            )
+            print(f"  nltk {kind} order {order}: fit x{versus_nltk[-1]['fit_ratio']:,.0f}")
+    return {"corpora": corpora, "grid": grid, "versus_nltk": versus_nltk}
+
+
+def scaling(grid: list[dict[str, Any]]) -> list[dict[str, Any]]:
+    """Time per token at the largest grid size over that at the smallest, per (tokens, order)."""
+    rows = []
+    for kind in KINDS:
+        for order in ORDERS:
+            runs = sorted(
+                (
+                    r
+                    for r in grid
+                    if (r["tokens"], r["order"]) == (kind, order) and not r["large_case"]
+                ),
+                key=lambda r: r["size"],
+            )
+            if len(runs) >= 2:
+                ratio = (
+                    runs[-1]["seconds_per_million_tokens"] / runs[0]["seconds_per_million_tokens"]
+                )
+                rows.append({"tokens": kind, "order": order, "time_per_token_ratio": ratio})
+    return rows
+
+
+def targets(results: dict[str, Any]) -> dict[str, Any]:
+    grid, versus = results["grid"], results["versus_nltk"]
+    char5 = [r for r in grid if r["tokens"] == "chars" and r["order"] == 5]
+    large = next(r for r in grid if r["large_case"])
+    ratios = [r["time_per_token_ratio"] for r in results["scaling"]]
+    return {
+        "fit_ratio_min": min(r["fit_ratio"] for r in versus),
+        "fit_ratio_target": 100,
+        "score_ratio_min": min(r["score_ratio"] for r in versus),
+        "score_ratio_target": 1000,
+        "char5_fit_score_tokens_per_s_min": min(r["fit_score_tokens_per_s"] for r in char5),
+        "char5_fit_score_target": 2e6,
+        "time_per_token_ratio_max": max(ratios) if ratios else None,
+        "time_per_token_ratio_target": 1.3,
+        "large_case_peak_rss_mib": large["peak_rss_mib"],
+        "large_case_train_tokens": large["train_tokens"],
+        "large_case_peak_target_mib": GIGABYTE / _common.MIB,
+    }
+
+
+def print_report(results: dict[str, Any]) -> None:
+    print("\nngram family: fit on N train tokens, score N/8 test tokens (fresh process each)")
+    print(
+        _common.format_table(
+            results["grid"],
+            [
+                ("tokens", "tokens", ""),
+                ("order", "order", "d"),
+                ("train_tokens", "train tok", ",d"),
+                ("fit_tokens_per_s", "fit tok/s", ",.0f"),
+                ("score_tokens_per_s", "score tok/s", ",.0f"),
+                ("fit_score_tokens_per_s", "fit+score tok/s", ",.0f"),
+                ("seconds_per_million_tokens", "s/M tok", ".3f"),
+                ("peak_rss_mib", "peak MiB", ",.0f"),
+                ("bits_per_token", "test bits/tok", ".3f"),
+            ],
+        )
+    )
+    rows = [
+        {
+            "tokens": r["tokens"],
+            "order": r["order"],
+            "train": r["nltk"]["train_tokens"],
+            "events": r["nltk"]["test_events"],
+            "nltk_fit": r["nltk"]["fit_tokens_per_s"],
+            "ours_fit": r["ours"]["fit_tokens_per_s"],
+            "fit_ratio": r["fit_ratio"],
+            "nltk_score": r["nltk"]["score_tokens_per_s"],
+            "ours_score": r["ours"]["score_tokens_per_s"],
+            "score_ratio": r["score_ratio"],
+        }
+        for r in results["versus_nltk"]
+    ]
+    print("\nversus NLTK KneserNeyInterpolated on the same small data (same run)")
+    print(
+        _common.format_table(
+            rows,
+            [
+                ("tokens", "tokens", ""),
+                ("order", "order", "d"),
+                ("train", "train tok", ",d"),
+                ("events", "scored", ",d"),
+                ("nltk_fit", "NLTK fit tok/s", ",.0f"),
+                ("ours_fit", "ours fit tok/s", ",.0f"),
+                ("fit_ratio", "fit ratio", ",.0f"),
+                ("nltk_score", "NLTK score tok/s", ",.0f"),
+                ("ours_score", "ours score tok/s", ",.0f"),
+                ("score_ratio", "score ratio", ",.0f"),
+            ],
+        )
+    )
+    print("\nscaling: time per token at the largest size / at the smallest (target <= 1.3)")
+    print(
+        _common.format_table(
+            results["scaling"],
+            [
+                ("tokens", "tokens", ""),
+                ("order", "order", "d"),
+                ("time_per_token_ratio", "ratio", ".2f"),
+            ],
+        )
+    )
+    goal = results["targets"]
+    print("\ntargets")
+    print(f"  fit ratio min      {goal['fit_ratio_min']:>12,.0f}  (target >= 100)")
+    print(f"  score ratio min    {goal['score_ratio_min']:>12,.0f}  (target >= 1000)")
+    print(
+        f"  char 5-gram tok/s  {goal['char5_fit_score_tokens_per_s_min']:>12,.0f}  (>= 2,000,000)"
+    )
+    if goal["time_per_token_ratio_max"] is not None:
+        print(f"  scaling ratio max  {goal['time_per_token_ratio_max']:>12.2f}  (target <= 1.3)")
+    print(
+        f"  peak memory, char 5-gram at {goal['large_case_train_tokens']:,} train tokens: "
+        f"{goal['large_case_peak_rss_mib']:,.0f} MiB (target < 1 GB = 954 MiB)"
+    )
+
+
+def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--train-tokens", type=float, default=25e6)
-    parser.add_argument("--order", type=int, default=5)
-    parser.add_argument("--seed", type=int, default=0)
-    args = parser.parse_args()
-    splits = character_splits(int(args.train_tokens), args.seed)
-    n = {name: len(units.tokens) for name, units in splits.items()}
-    fit_seconds, score_seconds, bits = fit_and_score(splits, args.order)
-    tracemalloc.start()
-    fit_and_score(splits, args.order)
-    peak_bytes = tracemalloc.get_traced_memory()[1]
-    tracemalloc.stop()
-    total = n["train"] + n["valid"] + n["test"]
-    print(
-        f"{args.order}-gram on demo characters: train {n['train']:,} valid {n['valid']:,} "
-        f"test {n['test']:,} tokens"
-    )
-    print(f"fit (incl. valid scoring) {fit_seconds:.2f} s, test scoring {score_seconds:.2f} s")
-    print(
-        f"fit + score: {total / (fit_seconds + score_seconds) / 1e6:.2f} M tokens/s "
-        f"(target >= 2); test scoring alone {n['test'] / score_seconds / 1e6:.2f} M tokens/s"
-    )
-    print(f"peak traced memory during fit + score: {peak_bytes / 2**30:.2f} GiB (target < 1 GB)")
-    print(f"test bits per token: {bits:.4f}")
-    # Whole process, corpus text and all three splits included (Linux reports KiB).
-    max_rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 2**20
-    print(f"process peak RSS (corpus generation and splits included): {max_rss:.2f} GiB")
+    _common.add_common_arguments(parser, "ngram")
+    args = parser.parse_args(argv)
+    if args.case:
+        measure = {"ours": measure_ours, "nltk": measure_nltk}
+        return _common.serve_case(args.case, lambda case: measure[case["system"]](case))
+    started = time.perf_counter()
+    info = _common.machine()
+    with tempfile.TemporaryDirectory(prefix="retrograde-bench-ngram-") as tmp:
+        results = run_all(args, Path(tmp))
+    results["scaling"] = scaling(results["grid"])
+    results["targets"] = targets(results)
+    info["load_average_1min_after"] = round(os.getloadavg()[0], 2)
+    results |= {"machine": info, "quick": args.quick}
+    results["wall_seconds"] = round(time.perf_counter() - started, 1)
+    print_report(results)
+    print(f"\ntotal wall time {results['wall_seconds']:.0f} s")
+    _common.write_results(args.out, results)
+    return 0
 
 
 if __name__ == "__main__":
-    main()
+    sys.exit(main())

@@ -1,0 +1,103 @@
+"""Benchmark data: Python source files that ship with this machine, cut into line units.
+
+The corpus is real text that needs no download: the standard library's ``.py`` files
+(``sysconfig.get_paths()["stdlib"]``, without ``site-packages``), then, when more text is
+needed, the ``.py`` files of the running interpreter's ``site-packages`` (numpy, scipy,
+scikit-learn, DVC, ... as installed here); each group in sorted path order. The text is
+cut exactly as the pipeline's ``units`` stage cuts a text source with ``unit: line``:
+:func:`retrograde.units.prepare_units` (salted-hash split 80/10/10, vocabulary fitted on
+the training lines) with the project's ``chars`` or ``words`` tokenizer.
+"""
+
+from __future__ import annotations
+
+import sysconfig
+from collections.abc import Iterator
+from pathlib import Path
+
+from retrograde._document import Document
+from retrograde.sequences import SequenceSet
+from retrograde.tokenize import make as make_tokenizer
+from retrograde.units import prepare_units
+
+__all__ = ["CHARS_PER_WORD_TOKEN", "load_split", "prepare_corpus", "prefix", "source_text"]
+
+#: characters per ``words`` token on the standard library (31.5 M chars -> 10.8 M tokens,
+#: measured here); used to read enough text for a word-token budget, with a margin
+CHARS_PER_WORD_TOKEN = 3.3
+
+
+def _python_files() -> Iterator[Path]:
+    paths = sysconfig.get_paths()
+    stdlib = Path(paths["stdlib"])
+    yield from sorted(
+        path
+        for path in stdlib.rglob("*.py")
+        if "site-packages" not in path.relative_to(stdlib).parts
+    )
+    yield from sorted(Path(paths["purelib"]).rglob("*.py"))
+
+
+def source_text(n_chars: int) -> tuple[str, int]:
+    """The first ``n_chars`` characters of the corpus and the number of files read."""
+    pieces: list[str] = []
+    total = 0
+    n_files = 0
+    for path in _python_files():
+        # Invalid UTF-8 is rare in these files; replacing it keeps the run deterministic.
+        text = path.read_bytes().decode("utf-8", errors="replace")
+        pieces.append(text if text.endswith("\n") else text + "\n")
+        total += len(pieces[-1])
+        n_files += 1
+        if total >= n_chars:
+            break
+    if total < n_chars:
+        raise RuntimeError(f"only {total:,} characters of Python source here; need {n_chars:,}")
+    return "".join(pieces)[:n_chars], n_files
+
+
+def prepare_corpus(kind: str, n_train_tokens: int, folder: Path) -> dict[str, int]:
+    """Write ``folder/{train,test}/`` (SequenceSet folders) with >= ``n_train_tokens`` train tokens.
+
+    ``kind`` is the tokenizer (``chars`` or ``words``). Returns counts for the report.
+    """
+    chars_per_token = 1.0 if kind == "chars" else CHARS_PER_WORD_TOKEN
+    # The train split gets ~80% of the lines; read 10% more text than that needs.
+    n_chars = int(n_train_tokens * chars_per_token / 0.8 * 1.1)
+    text, n_files = source_text(n_chars)
+    prepared = prepare_units(
+        [Document(doc_id=0, where="python-sources", text=text)],
+        tokenizer=make_tokenizer(kind),
+        mode="line",
+    )
+    train, test = prepared.splits["train"], prepared.splits["test"]
+    if len(train.tokens) < n_train_tokens:
+        raise RuntimeError(
+            f"{kind}: {len(train.tokens):,} train tokens from {n_chars:,} characters; "
+            f"need {n_train_tokens:,} (raise CHARS_PER_WORD_TOKEN)"
+        )
+    train.save(folder / "train")
+    test.save(folder / "test")
+    return {
+        "characters": len(text),
+        "files": n_files,
+        "train_tokens": len(train.tokens),
+        "train_units": len(train),
+        "test_tokens": len(test.tokens),
+        "test_units": len(test),
+        "vocab_size": int(prepared.vocab_size),
+    }
+
+
+def load_split(folder: Path, split: str) -> SequenceSet:
+    return SequenceSet.load(folder / split)
+
+
+def prefix(units: SequenceSet, n_tokens: int) -> SequenceSet:
+    """The shortest run of leading units holding at least ``n_tokens`` tokens (or all)."""
+    n_units = int(min(len(units), 1 + units.offsets[1:].searchsorted(n_tokens)))
+    return SequenceSet(
+        units.tokens[: units.offsets[n_units]],
+        units.offsets[: n_units + 1],
+        vocab_size=units.vocab_size,
+    )
