@@ -211,3 +211,14 @@ def test_a_sweep_over_a_missing_source_is_refused_before_anything_is_written(tmp
     with pytest.raises(ConfigError, match="sweep 'width': source 'nope'"):
         write_all(tmp_path / "out", **run)
     assert not (tmp_path / "out").exists()
+
+
+def test_report_warns_about_a_source_with_too_few_test_documents(tmp_path):
+    run = build_run()
+    for orders in run["table"]["demo"].values():
+        for leaf in orders.values():
+            leaf["documents"] = 3
+    write_all(tmp_path, **{**run, "curves": {}, "profiles": {}, "sweeps": {}})
+    report = (tmp_path / "report.md").read_text()
+    assert "source 'demo' has only 3 test documents" in report
+    assert "source 'markov'" not in report

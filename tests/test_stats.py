@@ -15,6 +15,7 @@ from retrograde._bootstrap import bootstrap_totals, holm, sign_flip_pvalue
 from retrograde.errors import ConfigError, DataError
 from retrograde.stats import (
     adjust_holm,
+    grouping_warning,
     position_profile,
     seed_warning,
     segment_breakdown,
@@ -69,6 +70,7 @@ def test_point_gap_and_bits_follow_the_seed_averaged_totals():
         "seed_spread_pct": 0.0,
         "units": 3,
         "tokens": 15,
+        "groups": 3,
     }
 
 
@@ -260,6 +262,21 @@ def test_grouping_units_by_document_widens_the_interval_when_documents_share_dif
         return leaf["gap_pct_high"] - leaf["gap_pct_low"]
 
     assert width(by_doc["reverse"]) > 2 * width(by_unit["reverse"])
+
+
+def test_fewer_than_ten_documents_fall_back_to_units_and_say_so():
+    rng = np.random.default_rng(3)
+    losses = simulate(rng, n_units=60, n_seeds=1, shift=0.02)
+    one_document = summarize_model(
+        losses, reference_order="forward", n_tokens=np.ones(60), doc_ids=np.zeros(60)
+    )["reverse"]
+    by_unit = summarize_model(losses, reference_order="forward", n_tokens=np.ones(60))["reverse"]
+    # Resampling a single document would give a zero-width interval; units are used instead.
+    assert one_document["gap_pct_low"] < one_document["gap_pct_high"]
+    assert one_document["groups"] == 60 and one_document["documents"] == 1
+    assert {k: v for k, v in one_document.items() if k != "documents"} == by_unit
+    assert "only 1 test document," in grouping_warning("demo", 1)
+    assert grouping_warning("demo", 10) is None
 
 
 def test_seed_resampling_starts_at_three_seeds():

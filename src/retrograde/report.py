@@ -21,7 +21,15 @@ from ._io import atomic_dir, atomic_write_json, atomic_write_text
 from ._validation import check_choice
 from .errors import ConfigError
 
-__all__ = ["CAUTIONS", "FORMATS", "format_table", "is_reference_leaf", "table_rows", "write_all"]
+__all__ = [
+    "CAUTIONS",
+    "FORMATS",
+    "format_table",
+    "is_reference_leaf",
+    "table_rows",
+    "table_warnings",
+    "write_all",
+]
 
 Table = Mapping[str, Mapping[str, Mapping[str, Mapping[str, Any]]]]
 
@@ -54,6 +62,8 @@ LEAF_FIELDS = (
     "seeds",
     "units",
     "tokens",
+    "groups",
+    "documents",
 )
 
 
@@ -65,6 +75,24 @@ def is_reference_leaf(leaf: Mapping[str, Any]) -> bool:
         and leaf.get("gap_pct_low") == 0
         and leaf.get("gap_pct_high") == 0
     )
+
+
+def table_warnings(table: Table) -> list[str]:
+    """Cautions that follow from the table itself (too few test documents in a source)."""
+    from .stats import grouping_warning
+
+    found = []
+    for source, models in table.items():
+        documents = [
+            leaf["documents"]
+            for orders in models.values()
+            for leaf in orders.values()
+            if "documents" in leaf
+        ]
+        warning = grouping_warning(source, min(documents)) if documents else None
+        if warning:
+            found.append(warning)
+    return found
 
 
 def table_rows(table: Table) -> list[dict[str, Any]]:
@@ -264,6 +292,7 @@ def write_all(
     from . import plots  # matplotlib is imported only when a report is written
 
     out_dir = Path(out_dir)
+    warnings = [*warnings, *(w for w in table_warnings(table) if w not in warnings)]
     for name, sweep in sweeps.items():
         if sweep.get("source") not in table:
             raise ConfigError(

@@ -40,7 +40,9 @@ from ._validation import check_float, check_int
 from .errors import DataError
 
 __all__ = [
+    "MIN_DOCUMENTS_FOR_GROUPING",
     "MIN_SEEDS_FOR_TRAINING_NOISE",
+    "grouping_warning",
     "SIGNIFICANT_DIGITS",
     "adjust_holm",
     "position_profile",
@@ -54,6 +56,9 @@ __all__ = [
 SIGNIFICANT_DIGITS = 6
 #: with fewer seeds the interval resamples units only (seed resampling of 1-2 values is noise)
 MIN_SEEDS_FOR_TRAINING_NOISE = 3
+#: with fewer test documents the bootstrap resamples units one by one (resampling 1-9
+#: documents would give a degenerate or wildly unstable interval); the report warns
+MIN_DOCUMENTS_FOR_GROUPING = 10
 _LN2 = math.log(2.0)
 _OWNER = "stats 'summarize_model'"
 
@@ -78,6 +83,18 @@ def seed_warning(n_seeds: int) -> str | None:
         f"with {n_seeds} seed{'s' if n_seeds != 1 else ''} the interval ignores training "
         f"randomness (it resamples test units only); fit at least "
         f"{MIN_SEEDS_FOR_TRAINING_NOISE} seeds"
+    )
+
+
+def grouping_warning(source: str, n_documents: int) -> str | None:
+    """The caution a report shows when a source has too few test documents, else ``None``."""
+    if n_documents >= MIN_DOCUMENTS_FOR_GROUPING:
+        return None
+    return (
+        f"source {source!r} has only {n_documents} test document"
+        f"{'s' if n_documents != 1 else ''}, so its intervals resample units one by one and "
+        "are too narrow if units of a document are alike; give the source more documents "
+        "(e.g. text split=paragraph or split=line)"
     )
 
 
@@ -157,7 +174,9 @@ def summarize_model(
     n_bytes : (n_units,) int, optional
         Natural UTF-8 bytes per unit; adds ``bits_per_byte``.
     doc_ids : (n_units,) int, optional
-        Document of each unit; the bootstrap and the sign flips then work on whole documents.
+        Document of each unit; the bootstrap and the sign flips then work on whole documents
+        (when there are at least ``MIN_DOCUMENTS_FOR_GROUPING`` of them; else on units, and
+        :func:`grouping_warning` explains why).
     floors : (n_units,) float, optional
         Exact NLL in nats of each unit (calibration sources); adds ``floor_bits_per_token``
         and ``excess_bits_per_token``.
@@ -173,8 +192,9 @@ def summarize_model(
     dict
         ``{order: leaf}``; a leaf has ``bits_per_token``, ``gap_pct``, ``gap_pct_low``,
         ``gap_pct_high``, ``p_value``, ``seeds``, ``seed_spread_pct`` (``None`` with one
-        seed), ``units``, ``tokens`` and, when known, ``bits_per_byte``,
-        ``floor_bits_per_token``, ``excess_bits_per_token``.
+        seed), ``units``, ``tokens``, ``groups`` (documents or units resampled) and, when
+        known, ``documents``, ``bits_per_byte``, ``floor_bits_per_token``,
+        ``excess_bits_per_token``.
 
     Examples
     --------
@@ -196,11 +216,13 @@ def summarize_model(
     floors = _optional_per_unit("floors", floors, n_units)
     total_tokens = int(np.sum(n_tokens))
 
-    if doc_ids is None:
-        group_index, n_groups = np.arange(n_units), n_units
-    else:
-        _, group_index = np.unique(doc_ids, return_inverse=True)
-        n_groups = int(group_index.max()) + 1
+    group_index, n_groups = np.arange(n_units), n_units
+    n_documents = None
+    if doc_ids is not None:
+        _, document_index = np.unique(doc_ids, return_inverse=True)
+        n_documents = int(document_index.max()) + 1
+        if n_documents >= MIN_DOCUMENTS_FOR_GROUPING:
+            group_index, n_groups = document_index.ravel(), n_documents
     per_group = group_sums(nll, group_index.ravel(), n_groups)  # (n_orders, n_seeds, n_groups)
     rng = np.random.default_rng(seed)
 
@@ -238,7 +260,10 @@ def summarize_model(
             ),
             "units": n_units,
             "tokens": total_tokens,
+            "groups": n_groups,  # what the bootstrap resampled: documents, or else units
         }
+        if n_documents is not None:
+            leaf["documents"] = n_documents
         if n_bytes is not None:
             leaf["bits_per_byte"] = rounded(totals[index] / _LN2 / max(int(n_bytes.sum()), 1))
         if floors is not None:
