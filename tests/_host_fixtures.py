@@ -84,3 +84,22 @@ def new_pipeline_host(dest: Path, *, corpus_bytes: int = 6000) -> Path:
     sh(["git", "add", "-A"], host)
     sh(["git", "commit", "-q", "-m", "adopt retrograde"], host)
     return host
+
+
+def _sort_tokens_order() -> type:
+    from retrograde.orders import Order
+
+    class SortTokens(Order):
+        """Not a bijection: sorting loses the order, so the output alone cannot be inverted."""
+
+        def positions(self, x):  # type: ignore[no-untyped-def]
+            import numpy as np
+
+            return np.argsort(np.asarray(x), kind="stable").astype(np.int64)
+
+    return SortTokens
+
+
+#: An order a config can name by dotted path (``_host_fixtures.SortTokens``) that fails
+#: the round trip on any unit whose tokens are not already sorted.
+SortTokens = _sort_tokens_order()

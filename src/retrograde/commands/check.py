@@ -34,7 +34,15 @@ __all__ = ["configure", "parse_order_spec", "read_text", "run"]
 
 
 def configure(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("file", type=Path, help="a UTF-8 text file (one document)")
+    parser.add_argument(
+        "file", type=Path, nargs="?", help="a UTF-8 text file (one document); omit with --dir"
+    )
+    # Host mode (retrograde.hostcheck): `check --dir HOST [OVERRIDES]` checks the composed
+    # config of a host repository; positional words are then Hydra overrides.
+    parser.add_argument(
+        "--dir", default=None, metavar="HOST", help="check a host's composed config"
+    )
+    parser.add_argument("overrides", nargs="*", help="with --dir: Hydra overrides")
     parser.add_argument("--tokenizer", default="chars", choices=("bytes", "chars", "words"))
     parser.add_argument(
         "--max-vocab",
@@ -219,6 +227,13 @@ def _verdicts(
 
 
 def run(args: argparse.Namespace) -> int:
+    if args.dir is not None:
+        from ..hostcheck import run_host_check
+
+        words = [*([] if args.file is None else [str(args.file)]), *args.overrides]
+        return run_host_check(args.dir, words, as_json=args.json)
+    if args.file is None or args.overrides:
+        raise ConfigError("check: give one FILE, or --dir HOST [OVERRIDES] for a host repository")
     if args.max_vocab is not None:
         check_int(f"tokenizer {args.tokenizer!r}", "max_vocab", args.max_vocab, low=2)
     check_fractions(args.fractions)

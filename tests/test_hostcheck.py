@@ -1,0 +1,113 @@
+"""`retrograde check --dir HOST [OVERRIDES]`: config, round trip on the data, cells to run."""
+
+from __future__ import annotations
+
+import contextlib
+import io
+import json
+import shutil
+
+import pytest
+
+from _host_fixtures import DVC, new_host, new_pipeline_host, sh, snapshot
+from retrograde.cli import main
+from retrograde.hostcheck import format_host_check
+
+pytestmark = pytest.mark.dvc
+
+SMOKE = "study=smoke"
+FITS = [f"fit@corpus-ngram-{o}-{s}" for o in ("forward", "reverse") for s in (0, 1)]
+
+
+def _check(capsys, *argv: str) -> tuple[int, str, str]:
+    status = main(["check", *argv])
+    out, err = capsys.readouterr()
+    return status, out, err
+
+
+def test_before_any_run_every_cell_is_to_run_and_every_order_round_trips(tmp_path, capsys):
+    host = new_pipeline_host(tmp_path / "host")
+    status, out, err = _check(capsys, "--dir", str(host), "--json", SMOKE)
+    assert (status, err) == (0, "")
+    report = json.loads(out)
+    assert report["grid"]["cells"] == 4
+    assert report["cells"] == {"to_run": FITS, "up_to_date": []}
+    corpus = report["round_trip"]["corpus"]
+    assert corpus["orders"] == ["forward", "reverse"] and corpus["units"] > 0
+    # The check brought params.yaml up to date the way `run` does: DVC itself now lists the
+    # same fit stages (outside reference: `dvc stage list`).
+    listed = sh([*DVC, "stage", "list", "--name-only", "pipelines/retrograde/dvc.yaml"], host)
+    assert [n.split(":", 1)[1] for n in listed.split() if ":fit@" in n] == FITS
+
+
+@pytest.mark.slow
+def test_cells_check_calls_to_run_are_exactly_those_run_then_fits(tmp_path, capsys):
+    host = new_pipeline_host(tmp_path / "host")
+    first = io.StringIO()
+    with contextlib.redirect_stderr(first), contextlib.redirect_stdout(io.StringIO()):
+        assert main(["run", "--dir", str(host), SMOKE]) == 0, first.getvalue()
+    shutil.rmtree(host / "pipelines/retrograde/cells/corpus/ngram/reverse/seed1")
+    grid = [SMOKE, "study.seeds=[0,1,2]"]
+    status, out, _ = _check(capsys, "--dir", str(host), "--json", *grid)
+    to_run = json.loads(out)["cells"]["to_run"]
+    assert status == 0
+    assert to_run == [
+        "fit@corpus-ngram-forward-2",
+        "fit@corpus-ngram-reverse-1",
+        "fit@corpus-ngram-reverse-2",
+    ]
+    # Outside reference: what DVC then reproduces (the deleted cell comes back from the
+    # local run-cache instead of a new fit; either way DVC had to act on it).
+    err = io.StringIO()
+    with contextlib.redirect_stderr(err), contextlib.redirect_stdout(io.StringIO()):
+        assert main(["run", "--dir", str(host), *grid]) == 0, err.getvalue()
+    acted = sorted(
+        line.split()[1]
+        for line in err.getvalue().splitlines()
+        if line.split()[:1] in (["ran"], ["restored"])
+    )
+    assert [name for name in acted if name.startswith("fit@")] == to_run
+
+
+def test_an_order_that_is_not_a_bijection_fails_the_check_with_exit_one(tmp_path, capsys):
+    host = new_pipeline_host(tmp_path / "host")
+    before = snapshot(host)
+    override = "+study.orders.sorted={name:_host_fixtures.SortTokens}"
+    status, out, err = _check(capsys, "--dir", str(host), SMOKE, override)
+    assert status == 1 and out == ""
+    assert err.startswith("retrograde check: round trip failed: ") and "sorted" in err
+    assert snapshot(host) == before  # refused before anything was written
+
+
+def test_a_bad_override_is_one_line_exit_two(tmp_path, capsys):
+    host = new_pipeline_host(tmp_path / "host")
+    status, out, err = _check(capsys, "--dir", str(host), "study.sedes=[0]")
+    assert status == 2 and out == "" and err.count("\n") == 1
+
+
+def test_a_host_without_init_is_told_to_run_init(tmp_path, capsys):
+    host = new_host(tmp_path / "host")
+    status, _, err = _check(capsys, "--dir", str(host))
+    assert status == 2 and f"run `retrograde init --dir {host.resolve()}` first" in err
+
+
+def test_without_file_or_dir_check_says_what_to_give(capsys):
+    status, _, err = _check(capsys)
+    assert status == 2 and "give one FILE, or --dir HOST [OVERRIDES]" in err
+
+
+def test_the_text_report_lists_cells_to_run():
+    text = format_host_check(
+        {
+            "grid": {
+                "sources": ["s"],
+                "models": ["m"],
+                "orders": ["f"],
+                "seeds": [0, 1],
+                "cells": 2,
+            },
+            "round_trip": {"s": {"units": 3, "tokens": 9, "orders": ["f"]}},
+            "cells": {"to_run": ["fit@s-m-f-1"], "up_to_date": ["fit@s-m-f-0"]},
+        }
+    )
+    assert text.splitlines()[-2:] == ["cells: 1 up to date, 1 to run", "  to run: fit@s-m-f-1"]
