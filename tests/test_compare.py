@@ -149,3 +149,9 @@ def test_touching_intervals_overlap_and_are_not_a_change():
     assert change.status == "within"
     text = format_changes([change], old_label="a", new_label="b")
     assert text.splitlines()[-1].startswith("1 cells: 0 changed")
+
+
+def test_a_path_outside_the_repository_is_a_config_error(repo, tmp_path_factory, capsys):
+    elsewhere = tmp_path_factory.mktemp("elsewhere") / "metrics.json"
+    assert main(["compare", "HEAD", "--dir", str(repo), "--path", str(elsewhere)]) == 2
+    assert "is outside the git repository" in capsys.readouterr().err

@@ -173,7 +173,13 @@ def read_table_at(
             )
         return _parse(file_path.read_text(encoding="utf-8"), str(file_path))
     root = git_toplevel(repo_dir)
-    inside = file_path.resolve().relative_to(root).as_posix()
+    try:
+        inside = file_path.resolve().relative_to(root).as_posix()
+    except ValueError:
+        raise ConfigError(
+            f"option --path: {file_path} is outside the git repository {root}; give a path "
+            "inside it (relative to --dir)"
+        ) from None
     verify = run_git(
         root, ["rev-parse", "--verify", "--quiet", f"{revision}^{{commit}}"], check=False
     )
