@@ -147,7 +147,7 @@ def run_all(args: argparse.Namespace, workdir: Path) -> dict[str, Any]:
         need = max(sizes) if kind != large_kind else max(*sizes, large_size)
         print(f"preparing {kind} units ({need:,} train tokens) ...", flush=True)
         start = time.perf_counter()
-        corpora[kind] = _corpus.prepare_corpus(kind, need, workdir / kind)
+        corpora[kind] = _corpus.prepare_corpus(kind, need, workdir / kind, n_test_tokens=need // 8)
         corpora[kind]["prepare_seconds"] = round(time.perf_counter() - start, 1)
 
     grid = []
