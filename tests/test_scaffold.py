@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import contextlib
+import io
 import subprocess
 from importlib import resources
 from pathlib import Path
@@ -13,6 +15,7 @@ from _host_fixtures import new_host, sh, snapshot
 from retrograde.cli import main
 from retrograde.hostrepo import find_host
 from retrograde.scaffold import IGNORE_RULES, install, planned_files, source_config
+from retrograde.sources.demo import write_corpus
 
 pytestmark = pytest.mark.dvc
 
@@ -216,3 +219,32 @@ def test_source_config_keeps_the_package_header_and_other_keys():
         if key not in ("params", "deps"):
             assert updated[key] == original[key]
     assert rewritten.startswith(b"# @package study.sources.corpus\n")
+
+
+@pytest.mark.slow
+def test_a_source_written_by_a_host_stage_connects_the_two_pipelines(tmp_path, monkeypatch):
+    host = new_host(tmp_path / "upstream")
+    write_corpus(host / "raw.txt", size_bytes=4000, seed=1)
+    (host / "prepare.py").write_text(
+        "import pathlib\n"
+        "out = pathlib.Path('data/prepared')\n"
+        "out.mkdir(parents=True, exist_ok=True)\n"
+        "(out / 'corpus.txt').write_text(pathlib.Path('raw.txt').read_text().lower())\n"
+    )
+    (host / "dvc.yaml").write_text(
+        "stages:\n  prepare:\n    cmd: python prepare.py\n"
+        "    deps: [prepare.py, raw.txt]\n    outs: [data/prepared]\n"
+    )
+    sh(["git", "add", "-A"], host)
+    sh(["git", "commit", "-q", "-m", "host pipeline"], host)
+    monkeypatch.chdir(host)
+    with contextlib.redirect_stdout(io.StringIO()):
+        assert main(["init", "--source", "data/prepared/corpus.txt"]) == 0
+    err = io.StringIO()
+    with contextlib.redirect_stderr(err), contextlib.redirect_stdout(io.StringIO()):
+        status = main(["run", "study=smoke", "study.seeds=[0]"])
+    assert status == 0, err.getvalue()
+    ran = [line.split()[1] for line in err.getvalue().splitlines() if line.split()[:1] == ["ran"]]
+    # DVC ran the host's own stage first, because the corpus is a declared dependency.
+    assert ran[:2] == ["prepare", "units_corpus"], ran
+    assert "table" in ran
