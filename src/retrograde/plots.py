@@ -16,6 +16,7 @@ from typing import Any
 
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
+from matplotlib.ticker import MaxNLocator
 
 __all__ = [
     "curve_rows",
@@ -164,6 +165,8 @@ def learning_curve_figure(curves: Mapping[str, Any]) -> Figure:
     for ax in axes:
         ax.set_xlabel("epoch")
         ax.set_ylabel("validation loss (bits per token)")
+        ax.xaxis.set_major_locator(MaxNLocator(integer=True))  # epochs are whole numbers
+        ax.ticklabel_format(axis="y", useOffset=False)  # show bits, not "+1.507" offsets
     return figure
 
 
