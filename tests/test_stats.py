@@ -7,6 +7,8 @@ import math
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy import stats as scipy_stats
 from statsmodels.stats.multitest import multipletests
 
@@ -24,6 +26,7 @@ from retrograde.stats import (
 )
 
 LN2 = math.log(2.0)
+ORDERS = ("forward", "reverse", "block_reverse")
 # Leaves are rounded to 6 significant digits, so comparisons allow a relative 1e-5.
 approx = functools.partial(pytest.approx, rel=1e-5)
 
@@ -393,3 +396,30 @@ def test_segment_breakdown_splits_units_where_str_split_would():
     ]
     assert got["segment_1"]["bits_per_token"] == approx(expected_bits[1] / expected_tokens[1])
     assert got["segment_0"]["bits_per_unit"] == approx(expected_bits[0] / 3)
+
+
+@settings(max_examples=25, deadline=None)
+@given(
+    n_units=st.integers(1, 30),
+    n_seeds=st.integers(1, 4),
+    scale=st.floats(0.01, 100.0),
+    seed=st.integers(0, 2**16),
+)
+def test_gaps_ignore_unit_order_and_the_unit_of_loss(n_units, n_seeds, scale, seed):
+    # Invariances of a ratio of paired totals (common practice, no source): shuffling the
+    # units the same way in every order, or measuring loss in other units, changes nothing.
+    rng = np.random.default_rng(seed)
+    losses = {o: rng.gamma(3.0, 4.0, size=(n_seeds, n_units)) for o in ORDERS}
+    shuffle = rng.permutation(n_units)
+    n_tokens = rng.integers(1, 9, size=n_units)
+    base = summarize_model(losses, reference_order="forward", n_tokens=n_tokens, n_boot=20)
+    moved = summarize_model(
+        {o: v[:, shuffle] * scale for o, v in losses.items()},
+        reference_order="forward",
+        n_tokens=n_tokens[shuffle],
+        n_boot=20,
+    )
+    for order in ORDERS:
+        assert moved[order]["gap_pct"] == approx(base[order]["gap_pct"], abs=1e-9)
+        assert moved[order]["bits_per_token"] == approx(base[order]["bits_per_token"] * scale)
+        assert 0.0 < moved[order]["p_value"] <= 1.0
