@@ -155,3 +155,13 @@ def test_a_path_outside_the_repository_is_a_config_error(repo, tmp_path_factory,
     elsewhere = tmp_path_factory.mktemp("elsewhere") / "metrics.json"
     assert main(["compare", "HEAD", "--dir", str(repo), "--path", str(elsewhere)]) == 2
     assert "is outside the git repository" in capsys.readouterr().err
+
+
+def test_markdown_format_gives_a_pipe_table_for_a_pull_request(repo, capsys):
+    assert main(["compare", "first", "HEAD", "--dir", str(repo), "--format", "markdown"]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    assert lines[0] == "| cell | gap % first | gap % HEAD | status |"
+    assert (
+        "| `demo.mlp.reverse` | +2.00 [+1.00, +3.00] | +6.00 [+5.00, +7.00] | **CHANGED** |"
+        in lines
+    )

@@ -21,6 +21,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+from ._validation import check_choice
 from .errors import ConfigError, DataError
 from .hostrepo import PIPELINE_DIR, git_toplevel, run_git
 
@@ -109,12 +110,19 @@ def _gap_text(values: tuple[float, float, float] | None) -> str:
 
 
 def format_changes(
-    changes: list[CellChange], *, old_label: str, new_label: str, show_all: bool = False
+    changes: list[CellChange],
+    *,
+    old_label: str,
+    new_label: str,
+    show_all: bool = False,
+    fmt: str = "text",
 ) -> str:
-    """A plain-text table of the cells that differ (all with ``show_all``) and a summary."""
+    """The cells that differ (all with ``show_all``) and a summary, as aligned ``text`` or a
+    ``markdown`` table (e.g. for a pull-request comment)."""
+    fmt = check_choice("compare 'format_changes'", "format", fmt, ("text", "markdown"))
     shown = [c for c in changes if show_all or c.status != "same"]
     header = ("cell", f"gap % {old_label}", f"gap % {new_label}", "status")
-    rows = [header] + [
+    rows = [
         (
             c.cell,
             _gap_text(c.old),
@@ -123,15 +131,21 @@ def format_changes(
         )
         for c in shown
     ]
-    widths = [max(len(row[i]) for row in rows) for i in range(len(header))]
-    lines = (
-        [
-            "  ".join(text.ljust(w) for text, w in zip(row, widths, strict=True)).rstrip()
-            for row in rows
+    if not shown:
+        lines = []
+    elif fmt == "markdown":
+        bold = [
+            (f"`{r[0]}`", r[1], r[2], f"**{r[3]}**" if r[3] == "CHANGED" else r[3]) for r in rows
         ]
-        if shown
-        else []
-    )
+        lines = ["| " + " | ".join(header) + " |", "|---|---|---|---|"]
+        lines += ["| " + " | ".join(row) + " |" for row in bold]
+        lines.append("")
+    else:
+        widths = [max(len(row[i]) for row in [header, *rows]) for i in range(len(header))]
+        lines = [
+            "  ".join(text.ljust(w) for text, w in zip(row, widths, strict=True)).rstrip()
+            for row in [header, *rows]
+        ]
     counts = {s: sum(c.status == s for c in changes) for s in STATUSES}
     summary = (
         f"{len(changes)} cells: {counts['changed']} changed beyond both intervals, "

@@ -1,4 +1,5 @@
-"""``retrograde compare REV_A [REV_B] [--dir HOST] [--path FILE] [--all] [--fail-on-change]``.
+"""``retrograde compare REV_A [REV_B] [--dir HOST] [--path FILE] [--all] [--format text|markdown]
+[--fail-on-change]``.
 
 Reads the gap table (``pipelines/retrograde/metrics.json``) at git revision ``REV_A`` and at
 ``REV_B`` (default: the working tree), and prints every cell whose gap moved with both
@@ -33,6 +34,12 @@ def configure(parser: argparse.ArgumentParser) -> None:
     )
     parser.add_argument("--all", action="store_true", help="also list identical cells")
     parser.add_argument(
+        "--format",
+        default="text",
+        choices=("text", "markdown"),
+        help="aligned text (default) or a Markdown table for a pull-request comment",
+    )
+    parser.add_argument(
         "--fail-on-change",
         action="store_true",
         help="exit with status 1 when any gap changed beyond its intervals",
@@ -44,7 +51,9 @@ def run(args: argparse.Namespace) -> int:
     old = read_table_at(Path(args.dir), args.rev_a, args.path)
     new = read_table_at(Path(args.dir), args.rev_b, args.path)
     changes = compare_tables(old, new, old_label=old_label, new_label=new_label)
-    text = format_changes(changes, old_label=old_label, new_label=new_label, show_all=args.all)
+    text = format_changes(
+        changes, old_label=old_label, new_label=new_label, show_all=args.all, fmt=args.format
+    )
     print(text, end="")
     changed = any(change.status == "changed" for change in changes)
     return 1 if args.fail_on_change and changed else 0
