@@ -68,6 +68,7 @@ def measure_ours(case: dict[str, Any]) -> dict[str, Any]:
     return {
         "train_tokens": len(train.tokens),
         "test_tokens": len(test.tokens),
+        "test_units": len(test),
         "test_events": len(scores.values),
         "fit_seconds": fit_seconds,
         "score_seconds": score_seconds,
@@ -111,6 +112,7 @@ def measure_nltk(case: dict[str, Any]) -> dict[str, Any]:
     return {
         "train_tokens": len(train.tokens),
         "test_tokens": len(test.tokens),
+        "test_units": len(test),
         "test_events": len(events),
         "fit_seconds": fit_seconds,
         "score_seconds": score_seconds,
