@@ -281,3 +281,32 @@ def test_render_quotes_dependency_paths_yaml_would_misread():
 def test_render_refuses_a_stage_file_without_markers():
     with pytest.raises(HostRepoError, match="retrograde init --force"):
         render_dvc_yaml("stages: {}\n", {"study": {"sources": {}}})
+
+
+# ---------------------------------------------------------------- failures seen by `run`
+def test_run_turns_a_failed_fit_stage_into_the_stages_own_line(tmp_path):
+    from retrograde.commands.run import _raise_failure, parse_repro_line
+    from retrograde.hostrepo import HostRepo
+
+    output = (
+        "Running stage 'pipelines/retrograde/dvc.yaml:fit@c-m-reverse-0':\n"
+        "> python -m retrograde.stages.fit --source c --model m --order reverse --seed 0\n"
+        "retrograde fit: error: cell c/m/reverse/seed0 failed (ValueError: nan); see "
+        "pipelines/retrograde/cells/c/m/reverse/seed0/fit.log\n"
+        "ERROR: failed to reproduce 'pipelines/retrograde/dvc.yaml:fit@c-m-reverse-0': "
+        "failed to run: python -m retrograde.stages.fit, exited with 2\n"
+    )
+    failed = [p[1] for p in map(parse_repro_line, output.splitlines()) if p and p[0] == "failed"]
+    assert failed == ["fit@c-m-reverse-0"]
+    host = HostRepo(root=tmp_path, git_root=tmp_path)
+    with pytest.raises(FitError) as info:
+        _raise_failure(host, output, failed, tmp_path / "run.log")
+    assert str(info.value) == (
+        "cell c/m/reverse/seed0 failed (ValueError: nan); see "
+        "pipelines/retrograde/cells/c/m/reverse/seed0/fit.log"
+    )
+    dvc_only = "ERROR: failed to reproduce 'prepare': output 'x' does not exist\n"
+    with pytest.raises(
+        HostRepoError, match="stage 'prepare' failed .*does not exist; see .*run.log"
+    ):
+        _raise_failure(host, dvc_only, ["prepare"], tmp_path / "run.log")

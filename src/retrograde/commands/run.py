@@ -120,11 +120,9 @@ def _raise_failure(host: HostRepo, output: str, failed: list[str], log_path: Pat
     ours = [line for line in output.splitlines() if re.match(r"^retrograde \w+: error: ", line)]
     if ours:
         message = ours[-1].split(": error: ", 1)[1]
-        raise (
-            FitError(message)
-            if failed and failed[0].startswith("fit@")
-            else HostRepoError(f"stage {failed[0] if failed else '?'!r}: {message}")
-        )
+        if failed and failed[0].startswith("fit@"):
+            raise FitError(message)  # already names the cell and its fit.log
+        raise HostRepoError(f"stage {failed[0] if failed else '?'!r}: {message}")
     stage = f"stage {failed[0]!r}" if failed else "dvc repro"
     raise HostRepoError(f"{stage} failed in {host.root}: {last_error_line(output)}; see {log_path}")
 

@@ -112,9 +112,12 @@ def _file_units(name: str, source: Any, spec: dict[str, Any]) -> tuple[dict[str,
     from .. import tokenize
     from ..units import prepare_units
 
+    root = Path.cwd()  # the host root (see _body)
     for path in source.paths():
         # A file DVC does not track would not trigger a rerun when it changes.
-        if not covered(Path(path).resolve().relative_to(Path.cwd()).as_posix(), spec["deps"]):
+        resolved = Path(path).resolve()
+        inside = resolved.is_relative_to(root)
+        if not inside or not covered(resolved.relative_to(root).as_posix(), spec["deps"]):
             raise DataError(
                 f"source {name!r} reads {path} but study.sources.{name}.deps does not list "
                 "it; add it and run `retrograde run` again"
