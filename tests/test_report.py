@@ -222,3 +222,27 @@ def test_report_warns_about_a_source_with_too_few_test_documents(tmp_path):
     report = (tmp_path / "report.md").read_text()
     assert "source 'demo' has only 3 test documents" in report
     assert "source 'markov'" not in report
+
+
+def test_report_warns_when_every_seed_of_a_model_gave_the_same_losses(tmp_path):
+    # An n-gram fit ignores its seed: the spread over seeds is exactly 0.
+    losses = np.random.default_rng(5).gamma(4.0, 10.0, size=(1, 40))
+    same_every_seed = {
+        "forward": np.repeat(losses, 3, axis=0),
+        "reverse": np.repeat(losses * 1.01, 3, axis=0),
+    }
+    leaves = summarize_model(same_every_seed, reference_order="forward", n_tokens=np.ones(40))
+    table = adjust_holm({"markov": {"ngram": leaves}})
+    assert leaves["reverse"]["seed_spread_pct"] == 0.0
+    run = {
+        "table": table,
+        "profiles": {},
+        "spans": {},
+        "curves": {},
+        "sweeps": {},
+        "provenance": {},
+        "warnings": [],
+    }
+    write_all(tmp_path, **run)
+    report = (tmp_path / "report.md").read_text()
+    assert "source 'markov': model 'ngram' gave identical losses for every seed" in report

@@ -78,11 +78,31 @@ def is_reference_leaf(leaf: Mapping[str, Any]) -> bool:
 
 
 def table_warnings(table: Table) -> list[str]:
-    """Cautions that follow from the table itself (too few test documents in a source)."""
+    """Cautions that follow from the table itself: deterministic fits, too few documents."""
     from .stats import grouping_warning
 
     found = []
     for source, models in table.items():
+        deterministic = [
+            model
+            for model, orders in models.items()
+            if (
+                spreads := [
+                    leaf.get("seed_spread_pct")
+                    for leaf in orders.values()
+                    if not is_reference_leaf(leaf) and leaf.get("seeds", 0) > 1
+                ]
+            )
+            and all(spread == 0 for spread in spreads)
+        ]
+        if deterministic:
+            names = ", ".join(repr(m) for m in deterministic)
+            found.append(
+                f"source {source!r}: model{'s' if len(deterministic) > 1 else ''} {names} gave "
+                "identical losses for every seed (a deterministic fit), so the interval leaves "
+                "out training randomness, including which training units were drawn; judge "
+                "the size of the gap, not only its significance"
+            )
         documents = [
             leaf["documents"]
             for orders in models.values()
