@@ -26,7 +26,7 @@ from .._validation import check_int
 from ..errors import FitError, HostRepoError
 from ..hostrepo import HostRepo, dvc_argv, find_host, last_error_line
 
-__all__ = ["configure", "parse_repro_line", "run"]
+__all__ = ["configure", "parse_repro_line", "run", "stage_python_first", "write_pipeline_files"]
 
 _STAGE = r"'(?:[^']*dvc\.yaml:)?(?P<stage>[^']+)'"
 _EVENTS = (
@@ -136,6 +136,26 @@ def _print_table(host: HostRepo, level: float) -> None:
         print(report.format_table(table, "markdown", level=level))
 
 
+def write_pipeline_files(host: HostRepo, params: dict[str, Any]) -> list[Path]:
+    """Write ``params.yaml`` and the units block of the stage file; return what changed.
+
+    A file whose content would not change is left alone (its timestamp too), so a no-op
+    ``run`` gives DVC nothing new to look at.
+    """
+    from ..stages import render_dvc_yaml
+
+    dvc_text = render_dvc_yaml(host.dvc_file.read_text(encoding="utf-8"), params)
+    written = []
+    for path, text in ((host.params_file, _params_text(params)), (host.dvc_file, dvc_text)):
+        if _write_if_changed(path, text):
+            written.append(path)
+    return written
+
+
+#: public name of the PATH guard for other commands that start DVC stages
+stage_python_first = _stage_python_first
+
+
 def _params_text(params: dict[str, Any]) -> str:
     import yaml
 
@@ -156,15 +176,14 @@ def run(args: argparse.Namespace) -> int:
                 f"{host.root}` first"
             )
     params = compose(host.root, args.overrides)
-    dvc_text = render_dvc_yaml(host.dvc_file.read_text(encoding="utf-8"), params)
+    render_dvc_yaml(host.dvc_file.read_text(encoding="utf-8"), params)  # markers present?
     cells = grid_cells(params)
     if args.dry:
         print(f"{len(cells)} fit cells; stage names:")
         for cell in cells:
             print(f"  {fit_stage_name(*cell)}")
         return 0
-    _write_if_changed(host.params_file, _params_text(params))
-    _write_if_changed(host.dvc_file, dvc_text)
+    write_pipeline_files(host, params)
     target = host.dvc_file.relative_to(host.root).as_posix()
     with _stage_python_first():
         if jobs > 1:
