@@ -17,6 +17,7 @@ from retrograde._bootstrap import bootstrap_totals, holm, sign_flip_pvalue
 from retrograde.errors import ConfigError, DataError
 from retrograde.stats import (
     adjust_holm,
+    bootstrap_pvalue,
     grouping_warning,
     position_profile,
     seed_warning,
@@ -69,6 +70,7 @@ def test_point_gap_and_bits_follow_the_seed_averaged_totals():
         "gap_pct_low": 0.0,
         "gap_pct_high": 0.0,
         "p_value": 1.0,
+        "p_value_sign_flip": 1.0,
         "seeds": 2,
         "seed_spread_pct": 0.0,
         "units": 3,
@@ -217,9 +219,37 @@ def coverage(*, shift, n_seeds, repetitions=200, seed_sd=0.01):
     return covered / repetitions
 
 
+@pytest.mark.slow  # 200 repetitions; the longer version is benchmarks/bench_coverage.py
 def test_interval_covers_zero_at_about_its_level_on_a_symmetric_source():
     # 95% interval: coverage within 90-99% over 200 repetitions (binomial sd ~ 1.5%).
     assert 0.90 <= coverage(shift=0.0, n_seeds=5) <= 0.99
+
+
+def test_significance_is_not_inflated_by_training_randomness_on_a_symmetric_source():
+    # With a 1% per-seed training effect the unit-level sign flips alone rejected a true null
+    # in about half of the repetitions; p_value must hold its level like the interval does.
+    rng = np.random.default_rng(11)
+    rejected = flips_rejected = 0
+    for repetition in range(100):
+        leaf = summarize_model(
+            simulate(rng, n_units=200, n_seeds=5, shift=0.0),
+            reference_order="forward",
+            n_tokens=np.ones(200),
+            n_boot=400,
+            n_flips=200,
+            seed=repetition,
+        )["reverse"]
+        rejected += leaf["p_value"] < 0.05
+        flips_rejected += leaf["p_value_sign_flip"] < 0.05
+        assert leaf["p_value"] >= leaf["p_value_sign_flip"]
+    assert rejected <= 10  # level 5%: binomial(100, 0.05) exceeds 10 with probability ~1%
+    assert flips_rejected >= 25  # the problem this guards against is real
+
+
+def test_bootstrap_p_value_is_twice_the_smaller_tail_with_add_one():
+    replicated = np.array([[-0.5], [0.5], [1.0], [1.5], [2.0], [2.5], [3.0], [3.5], [4.0]])
+    # 1 of 9 replicates <= 0: 2 * (1 + 1) / (9 + 1) = 0.4 (common practice, no source).
+    assert bootstrap_pvalue(replicated).tolist() == [0.4]
 
 
 def test_interval_excludes_zero_most_of_the_time_on_a_shifted_source():

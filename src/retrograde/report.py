@@ -249,10 +249,10 @@ def render_report(
         parts += ["> **Warnings**", ">"] + [f"> - {w}" for w in warnings] + [""]
     parts += [
         "Each gap is `100 * (NLL(order) / NLL(reference) - 1)` on the same test units, with a "
-        f"{_interval_title(level)} from a bootstrap over units and seeds and a paired sign-flip "
-        "p-value "
-        "(Holm-adjusted over every gap in this table). Positive gaps mean the order is harder "
-        "to learn than the reference.",
+        f"{_interval_title(level)} from a bootstrap over units and seeds, and a p-value from a "
+        "paired sign-flip test on units (with 3 or more seeds, no smaller than the bootstrap's "
+        "own p-value), Holm-adjusted over every gap in this table. Positive gaps mean the "
+        "order is harder to learn than the reference.",
         "",
         format_table(table, "markdown", level=level),
     ]
