@@ -185,3 +185,25 @@ def test_invalid_parameters_are_refused_naming_key_value_and_range(params, messa
 def test_unknown_parameters_are_refused():
     with pytest.raises(ConfigError, match="unexpected keyword argument 'ordr'"):
         make("ngram", ordr=3)
+
+
+def test_a_unigram_model_saves_and_loads_without_context_tables(tmp_path):
+    train = SequenceSet.from_list([[0, 1, 1], [2]], vocab_size=3)
+    model = make("ngram", order=1).fit(train)
+    model.save(tmp_path / "unigram")
+    from retrograde.families import load
+
+    np.testing.assert_array_equal(
+        load(tmp_path / "unigram").logprobs(train).values, model.logprobs(train).values
+    )
+
+
+def test_docstring_examples_run():
+    import doctest
+
+    import retrograde.families._ngram_counts
+    import retrograde.families.ngram
+
+    for module in (retrograde.families.ngram, retrograde.families._ngram_counts):
+        result = doctest.testmod(module)
+        assert result.attempted > 0 and result.failed == 0
