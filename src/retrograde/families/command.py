@@ -29,10 +29,7 @@ the trainer's stderr.
 
 from __future__ import annotations
 
-import json
-import re
 import shutil
-import subprocess
 import tempfile
 import weakref
 from collections.abc import Sequence
@@ -41,18 +38,16 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from .._validation import check_float, invalid
-from ..errors import FitError
+from .._validation import check_float
 from ..sequences import Ragged, SequenceSet
 from . import registry
 from ._base import Family
+from ._command_run import check_arguments, read_curve, run_trainer
 
 __all__ = ["CommandFamily"]
 
-_PLACEHOLDER = re.compile(r"\{(\w+)\}")
 _FIT_KEYS = ("train", "valid", "test", "out", "seed")
 _SCORE_KEYS = ("model", "test", "out", "seed")
-_STDERR_TAIL = 800  # characters of stderr quoted in an error
 
 
 @registry.register("command")
@@ -94,9 +89,9 @@ class CommandFamily(Family):
 
     def _validate_params(self) -> None:
         owner = f"family {self.name!r}"
-        _check_arguments(owner, "command", self.command, _FIT_KEYS)
+        check_arguments(owner, "command", self.command, _FIT_KEYS)
         if self.score_command is not None:
-            _check_arguments(owner, "score_command", self.score_command, _SCORE_KEYS)
+            check_arguments(owner, "score_command", self.score_command, _SCORE_KEYS)
         check_float(owner, "timeout", self.timeout, 0.0, low_open=True)
 
     # ------------------------------------------------------------------ learning
@@ -115,7 +110,7 @@ class CommandFamily(Family):
         out = workdir / "out"
         values = self._run_fit_command(self.valid_, workdir, out)
         self.model_dir_ = out if self.score_command is not None else None
-        self.learning_curve_ = _read_curve(out / "curve.json")
+        self.learning_curve_ = read_curve(out / "curve.json")
         if not self.learning_curve_ and len(self.valid_):
             bits = -values.sum() / np.log(2) / max(len(self.valid_.tokens), 1)
             self.learning_curve_ = [{"epoch": 1, "valid_bits_per_token": float(bits)}]
@@ -127,7 +122,7 @@ class CommandFamily(Family):
         out.mkdir()
         places = {key: str(workdir / key) for key in ("train", "valid", "test", "out")}
         places["seed"] = str(self.seed_)
-        return _run(self.command, places, out, test, self.timeout, "command")
+        return run_trainer(self.command, places, out, test, self.timeout, "command")
 
     # ------------------------------------------------------------------- scoring
     def logprobs(self, units: SequenceSet) -> Ragged:
@@ -148,7 +143,7 @@ class CommandFamily(Family):
                     "out": str(workdir / "out"),
                     "seed": str(self.seed_),
                 }
-                values = _run(
+                values = run_trainer(
                     self.score_command,
                     places,
                     workdir / "out",
@@ -216,112 +211,6 @@ def _as_list(arguments: Any) -> Any:
     if isinstance(arguments, str) or not isinstance(arguments, Sequence):
         return arguments
     return list(arguments)
-
-
-def _check_arguments(owner: str, key: str, arguments: Any, allowed: Sequence[str]) -> None:
-    names = ", ".join("{" + name + "}" for name in allowed)
-    if (
-        not isinstance(arguments, list)
-        or not arguments
-        or not all(isinstance(a, str) for a in arguments)
-    ):
-        raise invalid(owner, key, arguments, f"a non-empty list of strings using {names}")
-    for argument in arguments:
-        for name in _PLACEHOLDER.findall(argument):
-            if name not in allowed:
-                raise invalid(owner, key, arguments, f"placeholders {names} (found {{{name}}})")
-
-
-def _substitute(arguments: Sequence[str], places: dict[str, str]) -> list[str]:
-    def one(argument: str) -> str:
-        return _PLACEHOLDER.sub(lambda m: places.get(m.group(1), m.group(0)), argument)
-
-    return [one(a) for a in arguments]
-
-
-def _run(
-    arguments: Sequence[str],
-    places: dict[str, str],
-    out: Path,
-    test: SequenceSet,
-    timeout: float,
-    key: str,
-) -> np.ndarray:
-    """Run the trainer (no shell), then read and check ``out/logprobs.npy``."""
-    argv = _substitute(arguments, places)
-    shown = " ".join(arguments)
-    try:
-        done = subprocess.run(
-            argv, stdin=subprocess.DEVNULL, capture_output=True, timeout=timeout, check=False
-        )
-    except FileNotFoundError as exc:
-        raise FitError(
-            f"family 'command': {key} program {argv[0]!r} was not found; give an existing "
-            "program (an absolute path, or one on PATH)"
-        ) from exc
-    except subprocess.TimeoutExpired as exc:
-        raise FitError(
-            f"family 'command': {key} [{shown}] did not finish within {timeout:g} s; raise "
-            f"the family's timeout or speed up the trainer; stderr tail: {_tail(exc.stderr)}"
-        ) from exc
-    tail = _tail(done.stderr)
-    if done.returncode != 0:
-        raise FitError(
-            f"family 'command': {key} [{shown}] exited with status {done.returncode}; "
-            f"stderr tail: {tail}"
-        )
-    path = out / "logprobs.npy"
-    if not path.is_file():
-        raise FitError(
-            f"family 'command': {key} [{shown}] wrote no {{out}}/logprobs.npy; write float64 "
-            f"log-probabilities there; stderr tail: {tail}"
-        )
-    try:
-        values = np.load(path, allow_pickle=False)
-    except ValueError as exc:
-        raise FitError(f"family 'command': {path.name} is not a plain .npy array ({exc})") from exc
-    expected = len(test.tokens) + len(test)
-    if values.ndim != 1 or values.shape[0] != expected or values.dtype.kind not in "fi":
-        raise FitError(
-            f"family 'command': {key} wrote {path.name} with shape {values.shape} and dtype "
-            f"{values.dtype}; expected float64 ({expected},): len + 1 per test unit "
-            f"({len(test)} units, {len(test.tokens)} tokens); stderr tail: {tail}"
-        )
-    values = values.astype(np.float64)
-    bad = np.flatnonzero(~np.isfinite(values) | (values > 0))
-    if len(bad):
-        raise FitError(
-            f"family 'command': {key} wrote {len(bad)} log-probabilities that are not finite "
-            f"and <= 0 (first at flat index {bad[0]}: {float(values[bad[0]])!r}); every outcome needs "
-            f"a probability in (0, 1]; stderr tail: {tail}"
-        )
-    return values
-
-
-def _tail(stderr: bytes | str | None) -> str:
-    if not stderr:
-        return "(empty)"
-    text = stderr.decode("utf-8", "replace") if isinstance(stderr, bytes) else stderr
-    text = " | ".join(line for line in text.strip().splitlines() if line.strip())
-    return text[-_STDERR_TAIL:]
-
-
-def _read_curve(path: Path) -> list[dict[str, float]]:
-    if not path.is_file():
-        return []
-    try:
-        curve = json.loads(path.read_text())
-    except json.JSONDecodeError as exc:
-        raise FitError(f"family 'command': {path.name} is not valid JSON ({exc})") from exc
-    ok = isinstance(curve, list) and all(
-        isinstance(r, dict) and "epoch" in r and "valid_bits_per_token" in r for r in curve
-    )
-    if not ok:
-        raise FitError(
-            f"family 'command': {path.name} must be a list of "
-            '{"epoch": ..., "valid_bits_per_token": ...} records'
-        )
-    return [dict(r) for r in curve]
 
 
 def _with_vocab(units: SequenceSet, vocab_size: int) -> SequenceSet:

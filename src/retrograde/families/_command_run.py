@@ -1,0 +1,130 @@
+"""Running an external trainer for the ``command`` family and checking what it wrote.
+
+The protocol is described in :mod:`retrograde.families.command`.
+"""
+
+from __future__ import annotations
+
+import json
+import re
+import subprocess
+from collections.abc import Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from .._validation import invalid
+from ..errors import FitError
+from ..sequences import SequenceSet
+
+__all__ = ["check_arguments", "read_curve", "run_trainer"]
+
+_PLACEHOLDER = re.compile(r"\{(\w+)\}")
+_STDERR_TAIL = 800  # characters of stderr quoted in an error
+
+
+def check_arguments(owner: str, key: str, arguments: Any, allowed: Sequence[str]) -> None:
+    names = ", ".join("{" + name + "}" for name in allowed)
+    if (
+        not isinstance(arguments, list)
+        or not arguments
+        or not all(isinstance(a, str) for a in arguments)
+    ):
+        raise invalid(owner, key, arguments, f"a non-empty list of strings using {names}")
+    for argument in arguments:
+        for name in _PLACEHOLDER.findall(argument):
+            if name not in allowed:
+                raise invalid(owner, key, arguments, f"placeholders {names} (found {{{name}}})")
+
+
+def _substitute(arguments: Sequence[str], places: dict[str, str]) -> list[str]:
+    def one(argument: str) -> str:
+        return _PLACEHOLDER.sub(lambda m: places.get(m.group(1), m.group(0)), argument)
+
+    return [one(a) for a in arguments]
+
+
+def run_trainer(
+    arguments: Sequence[str],
+    places: dict[str, str],
+    out: Path,
+    test: SequenceSet,
+    timeout: float,
+    key: str,
+) -> np.ndarray:
+    """Run the trainer (no shell), then read and check ``out/logprobs.npy``."""
+    argv = _substitute(arguments, places)
+    shown = " ".join(arguments)
+    try:
+        done = subprocess.run(
+            argv, stdin=subprocess.DEVNULL, capture_output=True, timeout=timeout, check=False
+        )
+    except FileNotFoundError as exc:
+        raise FitError(
+            f"family 'command': {key} program {argv[0]!r} was not found; give an existing "
+            "program (an absolute path, or one on PATH)"
+        ) from exc
+    except subprocess.TimeoutExpired as exc:
+        raise FitError(
+            f"family 'command': {key} [{shown}] did not finish within {timeout:g} s; raise "
+            f"the family's timeout or speed up the trainer; stderr tail: {_tail(exc.stderr)}"
+        ) from exc
+    tail = _tail(done.stderr)
+    if done.returncode != 0:
+        raise FitError(
+            f"family 'command': {key} [{shown}] exited with status {done.returncode}; "
+            f"stderr tail: {tail}"
+        )
+    path = out / "logprobs.npy"
+    if not path.is_file():
+        raise FitError(
+            f"family 'command': {key} [{shown}] wrote no {{out}}/logprobs.npy; write float64 "
+            f"log-probabilities there; stderr tail: {tail}"
+        )
+    try:
+        values = np.load(path, allow_pickle=False)
+    except ValueError as exc:
+        raise FitError(f"family 'command': {path.name} is not a plain .npy array ({exc})") from exc
+    expected = len(test.tokens) + len(test)
+    if values.ndim != 1 or values.shape[0] != expected or values.dtype.kind not in "fi":
+        raise FitError(
+            f"family 'command': {key} wrote {path.name} with shape {values.shape} and dtype "
+            f"{values.dtype}; expected float64 ({expected},): len + 1 per test unit "
+            f"({len(test)} units, {len(test.tokens)} tokens); stderr tail: {tail}"
+        )
+    values = values.astype(np.float64)
+    bad = np.flatnonzero(~np.isfinite(values) | (values > 0))
+    if len(bad):
+        raise FitError(
+            f"family 'command': {key} wrote {len(bad)} log-probabilities that are not finite "
+            f"and <= 0 (first at flat index {bad[0]}: {float(values[bad[0]])!r}); every outcome needs "
+            f"a probability in (0, 1]; stderr tail: {tail}"
+        )
+    return values
+
+
+def _tail(stderr: bytes | str | None) -> str:
+    if not stderr:
+        return "(empty)"
+    text = stderr.decode("utf-8", "replace") if isinstance(stderr, bytes) else stderr
+    text = " | ".join(line for line in text.strip().splitlines() if line.strip())
+    return text[-_STDERR_TAIL:]
+
+
+def read_curve(path: Path) -> list[dict[str, float]]:
+    if not path.is_file():
+        return []
+    try:
+        curve = json.loads(path.read_text())
+    except json.JSONDecodeError as exc:
+        raise FitError(f"family 'command': {path.name} is not valid JSON ({exc})") from exc
+    ok = isinstance(curve, list) and all(
+        isinstance(r, dict) and "epoch" in r and "valid_bits_per_token" in r for r in curve
+    )
+    if not ok:
+        raise FitError(
+            f"family 'command': {path.name} must be a list of "
+            '{"epoch": ..., "valid_bits_per_token": ...} records'
+        )
+    return [dict(r) for r in curve]
