@@ -56,6 +56,7 @@ LEAF_FIELDS = (
     "gap_pct_low",
     "gap_pct_high",
     "p_value",
+    "p_value_sign_flip",
     "p_value_holm",
     "significant",
     "seed_spread_pct",
@@ -77,24 +78,27 @@ def is_reference_leaf(leaf: Mapping[str, Any]) -> bool:
     )
 
 
+def _deterministic_models(models: Mapping[str, Mapping[str, Mapping[str, Any]]]) -> list[str]:
+    """Models fitted with several seeds whose every gap had zero spread over seeds."""
+    found = []
+    for model, orders in models.items():
+        spreads = [
+            leaf.get("seed_spread_pct")
+            for leaf in orders.values()
+            if not is_reference_leaf(leaf) and leaf.get("seeds", 0) > 1
+        ]
+        if spreads and all(spread == 0 for spread in spreads):
+            found.append(model)
+    return found
+
+
 def table_warnings(table: Table) -> list[str]:
     """Cautions that follow from the table itself: deterministic fits, too few documents."""
     from .stats import grouping_warning
 
     found = []
     for source, models in table.items():
-        deterministic = [
-            model
-            for model, orders in models.items()
-            if (
-                spreads := [
-                    leaf.get("seed_spread_pct")
-                    for leaf in orders.values()
-                    if not is_reference_leaf(leaf) and leaf.get("seeds", 0) > 1
-                ]
-            )
-            and all(spread == 0 for spread in spreads)
-        ]
+        deterministic = _deterministic_models(models)
         if deterministic:
             names = ", ".join(repr(m) for m in deterministic)
             found.append(
