@@ -13,7 +13,7 @@ import yaml
 from _host_fixtures import DVC, new_host, new_pipeline_host, sh
 from retrograde.cli import main
 from retrograde.errors import ConfigError, FitError
-from retrograde.parallel import LOG_DIR, log_path_for, run_stages_in_parallel
+from retrograde.parallel import LOG_DIR, log_path_for, order_lock_entries, run_stages_in_parallel
 
 pytestmark = pytest.mark.dvc
 
@@ -69,7 +69,7 @@ def test_two_jobs_run_every_stage_two_at_a_time_and_dvc_records_all(tmp_path):
     run_stages_in_parallel(host, CELLS, jobs=2)
     assert _max_overlap(host / "trace") == 2
     lock = yaml.safe_load((host / "pipelines/retrograde/dvc.lock").read_text())
-    assert sorted(lock["stages"]) == CELLS
+    assert list(lock["stages"]) == CELLS  # given order, whatever order they finished in
     # Outside reference: DVC's own status agrees that nothing is left to run.
     status = sh([*DVC, "status", "pipelines/retrograde/dvc.yaml:fit"], host)
     assert "up to date" in status
@@ -90,6 +90,10 @@ def test_run_with_two_jobs_writes_byte_identical_metrics_to_one_job(tmp_path):
         for jobs, host in hosts.items()
     }
     assert metrics[1] == metrics[2]
+    locks = {
+        jobs: (host / "pipelines/retrograde/dvc.lock").read_bytes() for jobs, host in hosts.items()
+    }
+    assert locks[1] == locks[2]  # same hashes and, after order_lock_entries, same layout
     assert b'"reverse"' in metrics[1]  # the table really holds the smoke grid's cells
     # The two-job run went through the parallel path: one log per fit stage.
     logs = sorted(p.name for p in (hosts[2] / LOG_DIR).glob("fit@*.log"))
@@ -111,6 +115,7 @@ def test_a_failing_stage_is_one_line_naming_it_and_its_log_and_no_new_stage_star
     assert not (host / "trace").exists()
 
 
+@pytest.mark.slow
 def test_an_already_recorded_stage_is_not_run_again(tmp_path):
     host = _host_with_stages(tmp_path / "host")
     run_stages_in_parallel(host, ["fit@a"], jobs=1)
@@ -133,3 +138,27 @@ def test_jobs_must_be_a_positive_integer(tmp_path, jobs):
 def test_no_stages_is_nothing_to_do(tmp_path):
     run_stages_in_parallel(tmp_path, [], jobs=4)
     assert list(tmp_path.iterdir()) == []
+
+
+@pytest.mark.slow
+def test_lock_entries_are_put_in_the_given_order_without_changing_content(tmp_path):
+    host = _host_with_stages(tmp_path / "host")
+    run_stages_in_parallel(host, ["fit@b", "fit@a"], jobs=1)  # recorded b, then a
+    lock_path = host / "pipelines/retrograde/dvc.lock"
+    as_dvc_wrote = lock_path.read_bytes()
+    order_lock_entries(lock_path, ["fit@b", "fit@a"])  # already in this order: untouched
+    assert lock_path.read_bytes() == as_dvc_wrote
+    order_lock_entries(lock_path, ["fit@a", "fit@b"])
+    assert list(yaml.safe_load(lock_path.read_text())["stages"]) == ["fit@a", "fit@b"]
+    assert yaml.safe_load(lock_path.read_text()) == yaml.safe_load(as_dvc_wrote)
+    # Outside reference: DVC reads the reordered file and finds both stages up to date.
+    status = sh(
+        [
+            *DVC,
+            "status",
+            "pipelines/retrograde/dvc.yaml:fit@a",
+            "pipelines/retrograde/dvc.yaml:fit@b",
+        ],
+        host,
+    )
+    assert "up to date" in status

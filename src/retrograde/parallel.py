@@ -11,24 +11,38 @@ Facts measured with DVC 3.67.1 (twelve one-second stages started at once): witho
 DVC holds its repository lock while it checks and records a stage (its retries give up
 after about 3 s); with ``--wait-for-lock`` all twelve succeeded and ``dvc.lock`` held all
 twelve entries. DVC releases that lock while the stage command runs, so the commands
-themselves overlap. Entries in ``dvc.lock`` appear in completion order, so the lock file's
-byte layout (not its content) can differ between runs with different ``jobs``.
+themselves overlap.
+
+DVC appends each stage's ``dvc.lock`` entry when the stage finishes, so parallel stages land
+in completion order. Afterwards :func:`order_lock_entries` puts them back in the order they
+were given (the matrix order a one-process ``dvc repro`` records them in), so ``dvc.lock``
+does not depend on ``jobs`` or on timing and reviews see no reshuffled entries.
 """
 
 from __future__ import annotations
 
+import io
 import re
+from collections.abc import Sequence
 from concurrent.futures import FIRST_COMPLETED, Future, ThreadPoolExecutor, wait
 from pathlib import Path
 from subprocess import CompletedProcess
 
 from tqdm import tqdm
 
+from ._io import atomic_write_text
 from ._validation import check_int
 from .errors import FitError
 from .hostrepo import PIPELINE_DIR, HostRepo, dvc_argv, last_error_line, run_tool
 
-__all__ = ["LOG_DIR", "log_path_for", "repro_argv", "run_stages_in_parallel"]
+__all__ = [
+    "LOG_DIR",
+    "log_path_for",
+    "order_lock_entries",
+    "ordered_keys",
+    "repro_argv",
+    "run_stages_in_parallel",
+]
 
 #: Per-stage logs of parallel runs, relative to the host root (git-ignored by ``init``).
 LOG_DIR = PIPELINE_DIR / "logs"
@@ -116,6 +130,7 @@ def run_stages_in_parallel(
                 results[name] = future.result()
                 failed = failed or results[name].returncode != 0
                 progress.update(1)
+    order_lock_entries(repo.dvc_file.with_name("dvc.lock"), [n for n in names if ":" not in n])
     failures = [name for name in names if name in results and results[name].returncode != 0]
     if failures:
         first = failures[0]
@@ -138,3 +153,51 @@ def _repro_one(repo: HostRepo, name: str, pull: bool) -> CompletedProcess[str]:
         log_path=log_path_for(repo.root, name),
         display=["dvc", *repro_argv(repo.target(name), pull=pull)],
     )
+
+
+def ordered_keys(keys: Sequence[str], names: Sequence[str]) -> list[str]:
+    """``keys`` with those in ``names`` moved together, in ``names`` order, to where the
+    first of them was; every other key keeps its place.
+
+    Examples
+    --------
+    >>> ordered_keys(["units", "fit@b", "fit@a", "table", "fit@c"], ["fit@a", "fit@b", "fit@c"])
+    ['units', 'fit@a', 'fit@b', 'fit@c', 'table']
+    """
+    wanted = [name for name in dict.fromkeys(names) if name in set(keys)]
+    moved = set(wanted)
+    out: list[str] = []
+    for key in keys:
+        if key not in moved:
+            out.append(key)
+        elif wanted:
+            out.extend(wanted)  # the first moved key's slot takes the whole group
+            wanted = []
+    return out
+
+
+def order_lock_entries(lock_path: Path, names: Sequence[str]) -> None:
+    """Reorder the ``stages`` of a ``dvc.lock`` with :func:`ordered_keys`; content unchanged.
+
+    The file is read and written with ruamel.yaml's round-trip mode and the settings DVC
+    itself uses for lock files, so DVC's next update produces the same layout. Nothing is
+    written when the order is already right or the file does not exist.
+    """
+    from ruamel.yaml import YAML
+    from ruamel.yaml.comments import CommentedMap
+
+    if not lock_path.is_file():
+        return
+    yaml = YAML()  # round trip, as DVC's modify_yaml
+    yaml.default_flow_style = False
+    data = yaml.load(lock_path.read_text(encoding="utf-8"))
+    stages = data.get("stages") if isinstance(data, dict) else None
+    if not stages:
+        return
+    keys = ordered_keys(list(stages), names)
+    if keys == list(stages):
+        return
+    data["stages"] = CommentedMap((key, stages[key]) for key in keys)
+    stream = io.StringIO()
+    yaml.dump(data, stream)
+    atomic_write_text(lock_path, stream.getvalue())
