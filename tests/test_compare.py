@@ -165,3 +165,14 @@ def test_markdown_format_gives_a_pipe_table_for_a_pull_request(repo, capsys):
         "| `demo.mlp.reverse` | +2.00 [+1.00, +3.00] | +6.00 [+5.00, +7.00] | **CHANGED** |"
         in lines
     )
+
+
+def test_table_prints_cautions_to_stderr_and_keeps_stdout_machine_readable(tmp_path, capsys):
+    metrics = tmp_path / METRICS
+    metrics.parent.mkdir(parents=True)
+    cell = leaf(2.0, 1.0, 3.0) | {"documents": 2}
+    metrics.write_text(json.dumps({"demo": {"mlp": {"reverse": cell}}}))
+    assert main(["table", "--dir", str(tmp_path), "--format", "json"]) == 0
+    captured = capsys.readouterr()
+    assert json.loads(captured.out)["demo"]["mlp"]["reverse"]["documents"] == 2
+    assert "retrograde: warning: source 'demo' has only 2 test documents" in captured.err

@@ -90,3 +90,20 @@ def test_curves_without_validation_scores_draw_no_learning_curve_figure(tmp_path
     written = plots.write_plots(tmp_path, table=run["table"], profiles={}, curves=curves, sweeps={})
     assert written == ["gaps.png"]
     assert sorted(p.name for p in tmp_path.iterdir()) == ["gaps.csv", "gaps.png"]
+
+
+def test_gaps_that_are_not_significant_are_drawn_hollow():
+    def leaf(gap, significant):
+        return {
+            "gap_pct": gap,
+            "gap_pct_low": gap - 1,
+            "gap_pct_high": gap + 1,
+            "bits_per_token": 2.0,
+            "significant": significant,
+        }
+
+    table = {"demo": {"mlp": {"reverse": leaf(5.0, True), "stride": leaf(0.5, False)}}}
+    ax = plots.gap_figure(table).axes[0]
+    hollow = [line for line in ax.get_lines() if line.get_label() == "_not significant"]
+    assert len(hollow) == 1
+    assert list(hollow[0].get_ydata()) == [0.5] and hollow[0].get_markerfacecolor() == "white"

@@ -104,12 +104,27 @@ def gap_figure(table: Mapping[str, Any]) -> Figure:
                 color=style["color"],
                 linestyle="none",
             )
+            # Hollow markers for tested gaps that are not significant after Holm.
+            hollow = [
+                (x, leaf["gap_pct"])
+                for x, leaf in zip(xs, leaves.values(), strict=True)
+                if leaf.get("significant") is False
+            ]
+            if hollow:
+                ax.plot(
+                    *zip(*hollow, strict=True),
+                    marker=style["marker"],
+                    color=style["color"],
+                    markerfacecolor="white",
+                    linestyle="none",
+                    label="_not significant",
+                )
         ax.axhline(0.0, color="grey", linewidth=0.8)
         ax.set_xticks(range(len(orders)), orders, rotation=30, ha="right")
         ax.set_xlabel("order")
         ax.set_ylabel("gap to reference order (%)")
         ax.set_title(f"source: {source}")
-        ax.legend(title="model", fontsize="small")
+        ax.legend(title="model (hollow: not significant)", fontsize="small")
     return figure
 
 

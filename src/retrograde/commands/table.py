@@ -1,16 +1,18 @@
 """``retrograde table [--dir HOST] [--path FILE] [--format markdown|json|csv]``.
 
 Prints the gap table of the last run (``pipelines/retrograde/metrics.json`` under ``--dir``)
-as a Markdown table per source, the exact JSON, or CSV with one row per cell.
+as a Markdown table per source, the exact JSON, or CSV with one row per cell. Cautions that
+follow from the table itself (deterministic fits, too few test documents) go to stderr.
 """
 
 from __future__ import annotations
 
 import argparse
+import sys
 from pathlib import Path
 
 from ..compare import METRICS_PATH, read_table_at
-from ..report import FORMATS, format_table
+from ..report import FORMATS, format_table, table_warnings
 
 __all__ = ["configure", "run"]
 
@@ -33,4 +35,6 @@ def configure(parser: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace) -> int:
     table = read_table_at(Path(args.dir), None, args.path)
     print(format_table(table, args.format), end="")
+    for warning in table_warnings(table):  # stderr, so json/csv output stays machine-readable
+        print(f"retrograde: warning: {warning}", file=sys.stderr)
     return 0
