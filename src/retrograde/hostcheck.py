@@ -109,18 +109,10 @@ def cell_status(host: HostRepo, params: dict[str, Any]) -> dict[str, list[str]]:
 
     Brings ``params.yaml`` and the stage file up to date first (as ``run`` does).
     """
-    from .commands.run import _params_text, _write_if_changed
-    from .stages import (
-        fit_stage_name,
-        grid_cells,
-        render_dvc_yaml,
-        reorder_stage_name,
-        units_stage_name,
-    )
+    from .commands.run import write_pipeline_files
+    from .stages import fit_stage_name, grid_cells, reorder_stage_name, units_stage_name
 
-    _write_if_changed(host.params_file, _params_text(params))
-    dvc_text = render_dvc_yaml(host.dvc_file.read_text(encoding="utf-8"), params)
-    _write_if_changed(host.dvc_file, dvc_text)
+    write_pipeline_files(host, params)
     cells = grid_cells(params)
     targets = [host.target(fit_stage_name(*cell)) for cell in cells]
     changed: set[str] = set()

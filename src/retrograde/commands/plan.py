@@ -125,14 +125,12 @@ def _reproduce(
 ) -> None:
     """Bring the generated files up to date as ``run`` does, then reproduce the shard."""
     from ..parallel import run_stages_in_parallel
-    from ..stages import render_dvc_yaml, reorder_stage_name
-    from .run import _params_text, _stage_python_first, _write_if_changed
+    from ..stages import reorder_stage_name
+    from .run import stage_python_first, write_pipeline_files
 
-    _write_if_changed(host.params_file, _params_text(params))
-    dvc_text = render_dvc_yaml(host.dvc_file.read_text(encoding="utf-8"), params)
-    _write_if_changed(host.dvc_file, dvc_text)
+    write_pipeline_files(host, params)
     upstream = sorted({host.target(reorder_stage_name(s, o)) for s, _, o, _ in cells})
-    with _stage_python_first():
+    with stage_python_first():
         run_dvc(
             host.root,
             ["repro", *(["--pull"] if pull else []), *upstream],
