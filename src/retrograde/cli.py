@@ -24,6 +24,7 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "run": ("retrograde.commands.run", "compose the config, reproduce the pipeline, print the table"),
     "table": ("retrograde.commands.table", "print the gap table of the last run"),
     "compare": ("retrograde.commands.compare", "diff the gap table between two git revisions"),
+    "demo": ("retrograde.commands.demo", "run a demo study in a throwaway host repository"),
 }
 
 
