@@ -180,18 +180,8 @@ class MLP(Family):
         with bar:
             for epoch in range(1, self.epochs + 1):
                 order = rng.permutation(len(outcomes))
-                losses = []
-                for start in range(0, len(order), _CHUNK_EVENTS):
-                    chunk = order[start : start + _CHUNK_EVENTS]
-                    # sklearn warns (and clips) when a call has fewer events than a batch.
-                    classifier.batch_size = min(self.batch_size, len(chunk))
-                    classifier.partial_fit(features[chunk], outcomes[chunk], classes=classes)
-                    losses.append(classifier.loss_ * len(chunk))
-                    bar.update(len(chunk))
-                record: dict[str, float] = {
-                    "epoch": epoch,
-                    "train_loss": float(sum(losses) / len(order)),
-                }
+                train_loss = self._epoch(classifier, features, outcomes, order, classes, bar)
+                record: dict[str, float] = {"epoch": epoch, "train_loss": train_loss}
                 if valid_data is None:
                     self.coefs_ = [w.copy() for w in classifier.coefs_]
                     self.intercepts_ = [b.copy() for b in classifier.intercepts_]
@@ -211,6 +201,26 @@ class MLP(Family):
                     if since_best >= self.patience:
                         break
         return self
+
+    def _epoch(
+        self,
+        classifier: MLPClassifier,
+        features: scipy.sparse.csr_matrix,
+        outcomes: np.ndarray,
+        order: np.ndarray,
+        classes: np.ndarray,
+        bar: Any,
+    ) -> float:
+        """One pass over the events in ``order``; returns the mean training loss (nats)."""
+        total = 0.0
+        for start in range(0, len(order), _CHUNK_EVENTS):
+            chunk = order[start : start + _CHUNK_EVENTS]
+            # sklearn warns (and clips) when a call has fewer events than a batch.
+            classifier.batch_size = min(self.batch_size, len(chunk))
+            classifier.partial_fit(features[chunk], outcomes[chunk], classes=classes)
+            total += classifier.loss_ * len(chunk)
+            bar.update(len(chunk))
+        return float(total / len(order))
 
     # ------------------------------------------------------------------- scoring
     def _probs(
