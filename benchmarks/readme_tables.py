@@ -1,0 +1,220 @@
+"""Rewrite the measured tables in ``benchmarks/README.md`` from ``benchmarks/results/*.json``.
+
+The README's figures come only from the results files: run the benchmarks, then
+``python benchmarks/readme_tables.py``. Only the text between the markers changes.
+"""
+
+from __future__ import annotations
+
+import json
+import sys
+from pathlib import Path
+from typing import Any
+
+HERE = Path(__file__).resolve().parent
+START, END = "<!-- results:start -->", "<!-- results:end -->"
+RUN_ORDER = ("scratch", "noop", "edit")
+
+
+def _load(name: str) -> dict[str, Any] | None:
+    path = HERE / "results" / f"{name}.json"
+    return json.loads(path.read_text()) if path.is_file() else None
+
+
+def _table(header: list[str], rows: list[list[str]]) -> str:
+    # Text in the first column reads best left-aligned, numbers right-aligned.
+    align = ["---"] + ["---:"] * (len(header) - 1)
+    lines = ["| " + " | ".join(header) + " |", "|" + "|".join(align) + "|"]
+    return "\n".join(lines + ["| " + " | ".join(row) + " |" for row in rows])
+
+
+def _number(value: float | None, spec: str = ",.0f") -> str:
+    return "-" if value is None else format(value, spec)
+
+
+def _machine(result: dict[str, Any]) -> str:
+    m = result["machine"]
+    return (
+        f"_Measured {m['date_utc']} on {m['cpu']} ({m['logical_cpus']} logical CPUs, "
+        f"{m['memory_gib']} GiB), Python {m['python']}, numpy {m['numpy']}, retrograde "
+        f"{m['retrograde_commit']}; 1-minute load average {m['load_average_1min']} before, "
+        f"{m.get('load_average_1min_after', '?')} after; script wall time "
+        f"{result['wall_seconds']:.0f} s._"
+    )
+
+
+def ngram_section(result: dict[str, Any]) -> list[str]:
+    grid = [
+        [
+            r["tokens"],
+            str(r["order"]),
+            _number(r["train_tokens"]),
+            _number(r["fit_tokens_per_s"]),
+            _number(r["score_tokens_per_s"]),
+            _number(r["fit_score_tokens_per_s"]),
+            _number(r["peak_rss_mib"]),
+            _number(r["bits_per_token"], ".3f"),
+        ]
+        for r in result["grid"]
+    ]
+    versus = [
+        [
+            r["tokens"],
+            str(r["order"]),
+            _number(r["nltk"]["train_tokens"]),
+            _number(r["nltk"]["test_events"]),
+            _number(r["nltk"]["fit_tokens_per_s"]),
+            _number(r["ours"]["fit_tokens_per_s"]),
+            f"{r['fit_ratio']:,.0f}x",
+            _number(r["nltk"]["score_tokens_per_s"]),
+            _number(r["ours"]["score_tokens_per_s"]),
+            f"{r['score_ratio']:,.0f}x",
+        ]
+        for r in result["versus_nltk"]
+    ]
+    scaling = [
+        [r["tokens"], str(r["order"]), f"{r['time_per_token_ratio']:.2f}"]
+        for r in result["scaling"]
+    ]
+    t = result["targets"]
+    checks = [
+        ["fit throughput vs NLTK (min)", ">= 100x", f"{t['fit_ratio_min']:,.0f}x"],
+        ["scoring throughput vs NLTK (min)", ">= 1000x", f"{t['score_ratio_min']:,.0f}x"],
+        [
+            "char 5-gram fit + score (min over sizes)",
+            ">= 2,000,000 tok/s",
+            f"{t['char5_fit_score_tokens_per_s_min']:,.0f} tok/s",
+        ],
+        [
+            "time per token, 16 M / 1 M (max)",
+            "<= 1.30",
+            _number(t["time_per_token_ratio_max"], ".2f"),
+        ],
+        [
+            f"peak memory, char 5-gram, {t['large_case_train_tokens']:,} train tokens",
+            "< 1 GB (954 MiB)",
+            f"{t['large_case_peak_rss_mib']:,.0f} MiB",
+        ],
+    ]
+    return [
+        "### n-gram (`bench_ngram.py`)",
+        "",
+        _machine(result),
+        "",
+        _table(["check", "target", "measured"], checks),
+        "",
+        _table(
+            ["tokens", "order", "train tokens", "fit tok/s", "score tok/s", "fit+score tok/s"]
+            + ["peak MiB", "test bits/token"],
+            grid,
+        ),
+        "",
+        "Against NLTK `KneserNeyInterpolated`, same data, same run:",
+        "",
+        _table(
+            ["tokens", "order", "train tokens", "scored events", "NLTK fit tok/s"]
+            + ["ours fit tok/s", "fit ratio", "NLTK score tok/s", "ours score tok/s"]
+            + ["score ratio"],
+            versus,
+        ),
+        "",
+        "Time per token (fit + score) at 16 M over 1 M tokens:",
+        "",
+        _table(["tokens", "order", "ratio"], scaling),
+    ]
+
+
+def mlp_section(result: dict[str, Any]) -> list[str]:
+    rows = [
+        [
+            r["system"],
+            _number(r["train_tokens"]),
+            str(r["epochs_run"]),
+            _number(r["train_tokens_per_s"]),
+            _number(r["score_tokens_per_s"]),
+            _number(r["peak_rss_mib"]),
+            _number(r["bits_per_token"], ".3f"),
+        ]
+        for r in result["rows"]
+    ]
+    ratios = result["ratios"]
+    return [
+        "### Neural families (`bench_mlp.py`)",
+        "",
+        _machine(result),
+        "",
+        _table(
+            ["system", "train tokens", "epochs", "train tok/s", "score tok/s", "peak MiB"]
+            + ["test bits/token"],
+            rows,
+        ),
+        "",
+        f"`mlp` / scikit-learn `MLPClassifier` on the same one-hot task: training "
+        f"{ratios['mlp_vs_sklearn_train']:.2f}x, scoring {ratios['mlp_vs_sklearn_score']:.2f}x.",
+    ]
+
+
+def pipeline_section(result: dict[str, Any]) -> list[str]:
+    rows = [
+        [
+            name,
+            str(run["stages_ran"]),
+            f"{run['total_seconds']:.1f}",
+            f"{run['stage_seconds']:.1f}",
+            f"{run['dvc_overhead_seconds']:.1f}",
+            f"{run['cli_seconds']:.1f}",
+            f"{run['dvc_share']:.0%}",
+        ]
+        for name, run in sorted(result["runs"].items(), key=lambda item: RUN_ORDER.index(item[0]))
+    ]
+    g = result["grid"]
+    return [
+        "### Pipeline (`bench_pipeline.py`)",
+        "",
+        _machine(result),
+        "",
+        f"{g['orders']} orders x {g['models']} models x {g['seeds']} seeds, demo corpus of "
+        f"{g['corpus_bytes']:,} bytes:",
+        "",
+        _table(
+            ["run", "stages ran", "total s", "our stages s", "DVC s", "CLI s", "DVC share"],
+            rows,
+        ),
+    ]
+
+
+def other_sections() -> list[str]:
+    lines: list[str] = []
+    torch_loop = _load("torch_loop")
+    if torch_loop is not None:
+        lines += ["### Torch training loop (`bench_torch_loop.py`, owned by the torch engineer)"]
+        lines += ["", "```json", json.dumps(torch_loop, indent=2, sort_keys=True), "```"]
+    for name in ("stats", "coverage"):
+        result = _load(name)
+        if result is not None:
+            lines += ["", f"### `bench_{name}.py` (owned by the stats engineer)", ""]
+            lines += ["```json", json.dumps(result, indent=2, sort_keys=True), "```"]
+    return lines
+
+
+def main() -> int:
+    sections: list[str] = []
+    for name, render in (("ngram", ngram_section), ("mlp", mlp_section)):
+        result = _load(name)
+        if result is not None:
+            sections += [*render(result), ""]
+    pipeline = _load("pipeline")
+    if pipeline is not None:
+        sections += [*pipeline_section(pipeline), ""]
+    sections += other_sections()
+    readme = HERE / "README.md"
+    text = readme.read_text()
+    head, rest = text.split(START, 1)
+    tail = rest.split(END, 1)[1]
+    readme.write_text(head + START + "\n" + "\n".join(sections).strip() + "\n" + END + tail)
+    print(f"updated {readme}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
