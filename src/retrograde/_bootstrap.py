@@ -7,6 +7,7 @@
   so that a handful of seeds does not understate training randomness.
 - :func:`sign_flip_pvalue` — a paired sign-flip (randomization) test on per-group
   differences, exact for few groups and Monte Carlo with the add-one correction otherwise.
+- :func:`bootstrap_pvalue` — two-sided p-values read off the bootstrap replicates.
 - :func:`holm` — Holm's (1979) step-down adjustment of p-values.
 
 Resampling weights are drawn in chunks of at most ``_CHUNK_ELEMENTS`` numbers and applied
@@ -21,6 +22,7 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 __all__ = [
+    "bootstrap_pvalue",
     "bootstrap_totals",
     "group_sums",
     "holm",
@@ -197,6 +199,23 @@ def sign_flip_pvalue(
             signs = rng.integers(0, 2, size=(size, n_groups), dtype=np.int8) * 2.0 - 1.0
             hits += (np.abs(signs @ differences) >= threshold).sum(axis=0)
     return (1.0 + hits) / (1.0 + n_flips), False
+
+
+def bootstrap_pvalue(replicated_gaps: np.ndarray) -> np.ndarray:
+    """Two-sided bootstrap p-values of "gap = 0": twice the smaller tail share beyond 0.
+
+    ``replicated_gaps`` is ``(n_boot, n_tests)``; the add-one correction keeps p above 0
+    (``2 / (n_boot + 1)`` at least), and a column that is exactly 0 everywhere gets 1.
+
+    Examples
+    --------
+    >>> bootstrap_pvalue(np.array([[1.0, -1.0], [2.0, 1.0], [3.0, 2.0], [4.0, 3.0]])).tolist()
+    [0.4, 0.8]
+    """
+    n_boot = len(replicated_gaps)
+    below = (1.0 + (replicated_gaps <= 0).sum(axis=0)) / (n_boot + 1.0)
+    above = (1.0 + (replicated_gaps >= 0).sum(axis=0)) / (n_boot + 1.0)
+    return np.minimum(1.0, 2.0 * np.minimum(below, above))
 
 
 def holm(p_values: np.ndarray) -> np.ndarray:

@@ -31,6 +31,7 @@ from typing import Any
 import numpy as np
 
 from ._bootstrap import (
+    bootstrap_pvalue,
     bootstrap_totals,
     group_sums,
     holm,
@@ -87,23 +88,6 @@ def seed_warning(n_seeds: int) -> str | None:
         f"randomness (it resamples test units only); fit at least "
         f"{MIN_SEEDS_FOR_TRAINING_NOISE} seeds"
     )
-
-
-def bootstrap_pvalue(replicated_gaps: np.ndarray) -> np.ndarray:
-    """Two-sided bootstrap p-values of "gap = 0": twice the smaller tail share beyond 0.
-
-    ``replicated_gaps`` is ``(n_boot, n_tests)``; the add-one correction keeps p above 0
-    (``2 / (n_boot + 1)`` at least), and a column that is exactly 0 everywhere gets 1.
-
-    Examples
-    --------
-    >>> bootstrap_pvalue(np.array([[1.0, -1.0], [2.0, 1.0], [3.0, 2.0], [4.0, 3.0]])).tolist()
-    [0.4, 0.8]
-    """
-    n_boot = len(replicated_gaps)
-    below = (1.0 + (replicated_gaps <= 0).sum(axis=0)) / (n_boot + 1.0)
-    above = (1.0 + (replicated_gaps >= 0).sum(axis=0)) / (n_boot + 1.0)
-    return np.minimum(1.0, 2.0 * np.minimum(below, above))
 
 
 def grouping_warning(source: str, n_documents: int) -> str | None:
