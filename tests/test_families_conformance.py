@@ -51,7 +51,7 @@ def build(name):
         pytest.skip(f"family {name!r} needs an optional dependency: {exc}")
 
 
-@pytest.fixture(params=names())
+@pytest.fixture(scope="module", params=names())
 def fitted(request):
     """(name, model fitted on TRAIN with VALID, seed 0)."""
     model = build(request.param)
