@@ -61,7 +61,8 @@ def _run(capsys, host: Path, *argv: str) -> tuple[int, set[str], str, str]:
     """Run `retrograde run`; return (status, stages DVC ran, stdout, stderr)."""
     status = main(["run", "--dir", str(host), *argv])
     out, err = capsys.readouterr()
-    ran = {line.split()[1] for line in err.splitlines() if line.strip().startswith("ran ")}
+    # Progress lines read "  [k/N] running  <stage>" (or "restored").
+    ran = {line.split()[-1] for line in err.splitlines() if "] running " in line}
     return status, ran, out, err
 
 

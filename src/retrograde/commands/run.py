@@ -86,8 +86,12 @@ def _write_if_changed(path: Path, text: str) -> bool:
     return True
 
 
-def _repro(host: HostRepo, target: str, *, pull: bool) -> dict[str, list[str]]:
-    """Run ``dvc repro target``, show one line per stage; on failure raise one line."""
+def _repro(host: HostRepo, target: str, *, pull: bool, total: int) -> dict[str, list[str]]:
+    """Run ``dvc repro target``; show ``[k/total]`` per stage started or restored.
+
+    ``total`` counts retrograde's own stages (the host's upstream stages come on top).
+    On failure raise one line naming the stage (and, for a fit, the cell and its log).
+    """
     argv = [*dvc_argv(), "repro", *(["--pull"] if pull else []), target]
     log_path = host.pipeline_dir / "logs" / "run.log"
     log_path.parent.mkdir(parents=True, exist_ok=True)
@@ -107,8 +111,11 @@ def _repro(host: HostRepo, target: str, *, pull: bool) -> dict[str, list[str]]:
             parsed = parse_repro_line(line)
             if parsed:
                 events[parsed[0]].append(parsed[1])
+                seen = sum(len(v) for k, v in events.items() if k != "failed")
                 if parsed[0] in ("ran", "restored"):
-                    print(f"  {parsed[0]:>8}  {parsed[1]}", file=sys.stderr, flush=True)
+                    shown = "running" if parsed[0] == "ran" else "restored"
+                    progress = f"[{seen:>{len(str(total))}}/{total}]"
+                    print(f"  {progress} {shown:<8} {parsed[1]}", file=sys.stderr, flush=True)
     log_path.write_text("".join(lines), encoding="utf-8")
     if process.returncode != 0:
         _raise_failure(host, "".join(lines), events["failed"], log_path)
@@ -184,15 +191,18 @@ def run(args: argparse.Namespace) -> int:
             print(f"  {fit_stage_name(*cell)}")
         return 0
     write_pipeline_files(host, params)
+    study = params["study"]
+    total = len(study["sources"]) * (1 + len(study["orders"])) + len(cells) + 1
     target = host.dvc_file.relative_to(host.root).as_posix()
     with _stage_python_first():
         if jobs > 1:
             from ..parallel import run_stages_in_parallel
 
-            _repro(host, f"{target}:reorder", pull=args.pull)  # units, reorder, host upstream
+            # units, reorder and the host's upstream stages first
+            _repro(host, f"{target}:reorder", pull=args.pull, total=total)
             names = [fit_stage_name(*cell) for cell in cells]
             run_stages_in_parallel(host.root, names, jobs, pull=args.pull)
-        events = _repro(host, target, pull=args.pull)
+        events = _repro(host, target, pull=args.pull, total=total)
     print(
         f"retrograde: {len(events['ran'])} stages ran, {len(events['restored'])} restored "
         f"from the run-cache, {len(events['unchanged'])} unchanged",
