@@ -5,6 +5,8 @@ from __future__ import annotations
 import csv
 import io
 import json
+import subprocess
+import sys
 
 import numpy as np
 import pytest
@@ -246,3 +248,42 @@ def test_report_warns_when_every_seed_of_a_model_gave_the_same_losses(tmp_path):
     write_all(tmp_path, **run)
     report = (tmp_path / "report.md").read_text()
     assert "source 'markov': model 'ngram' gave identical losses for every seed" in report
+
+
+@pytest.mark.dvc
+def test_dvc_metrics_diff_keys_read_source_model_order_field(written, tmp_path):
+    # Outside reference: DVC 3 itself flattens the nested metrics.json into dotted keys.
+    run, folder = written
+    repo = tmp_path / "host"
+    metrics = repo / "pipelines" / "retrograde" / "metrics.json"
+    metrics.parent.mkdir(parents=True)
+    metrics.write_bytes((folder / "metrics.json").read_bytes())
+
+    def tool(*argv):
+        return subprocess.run(
+            argv, cwd=repo, check=True, capture_output=True, text=True, stdin=subprocess.DEVNULL
+        ).stdout
+
+    tool("git", "init", "-q")
+    tool(sys.executable, "-m", "dvc", "init", "-q")
+    tool("git", "add", "-A")
+    tool("git", "-c", "user.name=t", "-c", "user.email=t@localhost", "commit", "-qm", "one")
+    changed = json.loads(metrics.read_text())
+    changed["demo"]["ngram_n2"]["reverse"]["gap_pct"] += 1.0
+    metrics.write_text(json.dumps(changed))
+    diff = json.loads(
+        tool(
+            sys.executable,
+            "-m",
+            "dvc",
+            "metrics",
+            "diff",
+            "HEAD",
+            "--json",
+            "--targets",
+            "pipelines/retrograde/metrics.json",
+        )
+    )
+    keys = diff["pipelines/retrograde/metrics.json"]
+    assert list(keys) == ["demo.ngram_n2.reverse.gap_pct"]
+    assert keys["demo.ngram_n2.reverse.gap_pct"]["diff"] == pytest.approx(1.0)
