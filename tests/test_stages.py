@@ -131,6 +131,38 @@ def test_units_stage_for_a_calibration_source_writes_exact_floors(tmp_path):
     assert info["kind"] == "calibration" and sum(info["n_units"].values()) == 60
 
 
+def test_units_stage_cuts_token_arrays_into_windows_in_natural_order(tmp_path):
+    root = tmp_path / "host"
+    wdir = _host(root, [])
+    stream = np.random.default_rng(0).integers(0, 50, size=1003).astype(np.int32)
+    np.save(root / "data" / "ids.npy", stream)
+    params = compose(
+        root,
+        [
+            "study.sources.corpus.name=tokens",
+            "study.sources.corpus.params.files=[data/ids.npy]",
+            "~study.sources.corpus.params.split",
+            "study.sources.corpus.deps=[data/ids.npy]",
+            "study.sources.corpus.tokenizer=null",
+            "study.sources.corpus.units.mode=window",
+            "study.sources.corpus.units.window=10",
+        ],
+    )
+    _write_params(wdir, params)
+    assert units_stage.main(["--params", str(wdir), "--source", "corpus"]) == 0
+    folder = wdir / "data/corpus/units"
+    rows = [
+        tuple(unit.tolist())
+        for name in ("train", "valid", "test")
+        for unit in SequenceSet.load(folder / name)
+    ]
+    # Reference: numpy's reshape of the stream into 100 windows, the last 3 ids dropped.
+    expected = [tuple(row) for row in stream[:1000].reshape(100, 10).tolist()]
+    assert sorted(rows) == sorted(expected)
+    assert not (folder / "tokenizer.json").exists()
+    assert SequenceSet.load(folder / "train").vocab_size == int(stream[:1000].max()) + 1
+
+
 # ------------------------------------------------------------------------------- reorder
 def test_reorder_stage_reverses_every_unit_and_records_natural_positions(pipeline):
     natural = SequenceSet.load(pipeline / "data/corpus/units/test")
