@@ -207,3 +207,18 @@ def test_docstring_examples_run():
     for module in (retrograde.families.ngram, retrograde.families._ngram_counts):
         result = doctest.testmod(module)
         assert result.attempted > 0 and result.failed == 0
+
+
+def test_scoring_in_batches_of_units_gives_the_same_values_as_one_batch(monkeypatch):
+    import retrograde.families.ngram as ngram_module
+
+    rng = np.random.default_rng(11)
+    units = SequenceSet.from_list(
+        [rng.integers(0, 4, rng.integers(0, 9)) for _ in range(60)], vocab_size=4
+    )
+    model = make("ngram", order=4).fit(units)
+    whole = model.logprobs(units)
+    monkeypatch.setattr(ngram_module, "_SCORE_TOKENS", 7)  # many batches, some units empty
+    batched = model.logprobs(units)
+    np.testing.assert_array_equal(batched.offsets, whole.offsets)
+    np.testing.assert_array_equal(batched.values, whole.values)

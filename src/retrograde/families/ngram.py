@@ -26,6 +26,9 @@ from ._ngram_counts import KneserNeyTables, count_tables, interpolated_probs
 
 __all__ = ["NGram"]
 
+#: tokens scored per batch in ``logprobs``
+_SCORE_TOKENS = 1 << 22
+
 
 @registry.register("ngram")
 class NGram(Family):
@@ -99,9 +102,22 @@ class NGram(Family):
         """Row ``i``: ``len(units[i]) + 1`` natural-log probabilities, end marker last."""
         self._check_fitted()
         self._check_units(units)
-        symbol_at_lag, outcomes, event_offsets = unit_events(_with_vocab(units, self.vocab_size_))
-        probs = interpolated_probs(self.tables_, symbol_at_lag, outcomes)
-        return Ragged(np.log(probs), event_offsets)
+        event_offsets = units.offsets + np.arange(len(units) + 1)
+        values = np.empty(int(event_offsets[-1]), dtype=np.float64)
+        # Whole units in batches of about _SCORE_TOKENS tokens bound the working memory
+        # (about 80 bytes per event) whatever the size of the test split.
+        cuts = np.unique(
+            np.searchsorted(units.offsets, np.arange(0, len(units.tokens), _SCORE_TOKENS))
+        )
+        bounds = [0, *[int(c) for c in cuts if 0 < c < len(units)], len(units)]
+        for first, last in zip(bounds[:-1], bounds[1:], strict=True):
+            batch = _unit_range(units, first, last, self.vocab_size_)
+            symbol_at_lag, outcomes, _ = unit_events(batch)
+            start = event_offsets[first]
+            values[start : event_offsets[last]] = np.log(
+                interpolated_probs(self.tables_, symbol_at_lag, outcomes)
+            )
+        return Ragged(values, event_offsets)
 
     def next_token_probs(self, contexts: Sequence[np.ndarray]) -> np.ndarray:
         """(n_contexts, vocab_size + 1) full distribution after each context (from unit start)."""
@@ -141,6 +157,13 @@ class NGram(Family):
             type_counts=[empty] + [state[f"type_counts_{k}"] for k in range(1, self.order + 1)],
             discounts=state["discounts"],
         )
+
+
+def _unit_range(units: SequenceSet, first: int, last: int, vocab_size: int) -> SequenceSet:
+    """Units ``first:last`` as a view (no copy), with the model's vocabulary size."""
+    offsets = units.offsets[first : last + 1]
+    tokens = units.tokens[offsets[0] : offsets[-1]]
+    return SequenceSet(tokens, offsets - offsets[0], vocab_size=vocab_size)
 
 
 def _with_vocab(units: SequenceSet, vocab_size: int) -> SequenceSet:
