@@ -345,6 +345,15 @@ def test_infinite_losses_are_refused_with_a_hint():
         )
 
 
+def test_a_reference_with_zero_total_loss_is_refused():
+    with pytest.raises(DataError, match="total test loss of some seed is not positive"):
+        summarize_model(
+            {"forward": np.zeros((1, 3)), "reverse": np.ones((1, 3))},
+            reference_order="forward",
+            n_tokens=np.ones(3),
+        )
+
+
 def test_a_bad_level_names_the_parameter_and_what_is_allowed():
     with pytest.raises(ConfigError) as caught:
         summarize_model(

@@ -231,6 +231,11 @@ def summarize_model(
     rng = np.random.default_rng(seed)
 
     totals = nll.sum(axis=2).mean(axis=1)  # (n_orders,) nats, seed-averaged
+    if np.any(nll[0].sum(axis=1) <= 0):
+        raise DataError(
+            f"order {reference_order!r}: the total test loss of some seed is not positive, so "
+            "gaps relative to it are undefined; check that the test units are not empty"
+        )
     gaps = 100.0 * (totals / totals[0] - 1.0)
     per_seed_gaps = 100.0 * (nll.sum(axis=2) / nll[0].sum(axis=1) - 1.0)  # (n_orders, n_seeds)
     replicates = bootstrap_totals(
