@@ -27,6 +27,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from ._hydra_compose import compose_raw, first_line
 from ._validation import did_you_mean
 from .errors import ConfigError
 
@@ -151,73 +152,6 @@ def register_configs() -> None:
         store.store(group=group, name=f"{group}_schema", node=node)
 
 
-# ------------------------------------------------------------------------------- compose
-def compose_raw(conf_dir: str | os.PathLike[str], overrides: Sequence[str] = ()) -> dict[str, Any]:
-    """Compose ``conf_dir/config.yaml`` with Hydra overrides into a plain dict (no checks)."""
-    from hydra import compose as hydra_compose
-    from hydra import initialize_config_dir
-    from hydra.errors import HydraException, MissingConfigException
-    from omegaconf import OmegaConf
-    from omegaconf.errors import OmegaConfBaseException
-
-    conf_dir = Path(conf_dir).resolve()
-    if not (conf_dir / "config.yaml").is_file():
-        raise ConfigError(
-            f"{conf_dir / 'config.yaml'} not found; run `retrograde init` to write the defaults"
-        )
-    failure: Exception | None = None
-    with initialize_config_dir(config_dir=str(conf_dir), version_base="1.3"):
-        try:
-            cfg = hydra_compose(config_name="config", overrides=list(overrides))
-            container = OmegaConf.to_container(cfg, resolve=True)
-        except (HydraException, OmegaConfBaseException) as exc:
-            failure = exc
-    # Explained outside the `with`: the explanation may compose again (Hydra is global).
-    if isinstance(failure, MissingConfigException):
-        raise _missing_option_error(conf_dir, failure) from failure
-    if failure is not None:
-        raise _override_error(conf_dir, overrides, failure) from failure
-    assert isinstance(container, dict)
-    container.pop("hydra", None)
-    return container  # type: ignore[return-value]
-
-
-def _first_line(exc: BaseException) -> str:
-    text = str(exc).strip()
-    return text.splitlines()[0] if text else type(exc).__name__
-
-
-def _missing_option_error(conf_dir: Path, exc: Exception) -> ConfigError:
-    match = re.search(r"Could not (?:load|find) '([^']+)/([^']+)'", str(exc))
-    if not match:
-        return ConfigError(f"{conf_dir}: {_first_line(exc)}")
-    group, option = match.groups()
-    options = sorted(p.stem for p in (conf_dir / group).glob("*.yaml"))
-    return ConfigError(
-        f"unknown {group} config {option!r}{did_you_mean(option, options)}; "
-        f"available in {conf_dir / group}: {', '.join(options) or 'none'}"
-    )
-
-
-def _override_error(conf_dir: Path, overrides: Sequence[str], exc: Exception) -> ConfigError:
-    match = re.search(r"Could not override '([^']+)'", str(exc))
-    if not match:
-        return ConfigError(f"bad override or config in {conf_dir}: {_first_line(exc)}")
-    key = match.group(1)
-    parent, _, leaf = key.rpartition(".")
-    # The keys that do exist next to the unknown one, from the config without overrides.
-    base = compose_raw(conf_dir) if overrides else {}
-    node: Any = base
-    for part in parent.split(".") if parent else []:
-        node = node.get(part, {}) if isinstance(node, dict) else {}
-    siblings = sorted(node) if isinstance(node, dict) else []
-    return ConfigError(
-        f"unknown config key {key!r} in the overrides{did_you_mean(leaf, siblings)}; "
-        f"keys under {parent or 'the top level'!r}: {', '.join(siblings) or 'none'} "
-        f"(prefix with + to add a model or order parameter, e.g. +{key}=...)"
-    )
-
-
 # ----------------------------------------------------------------------------- normalize
 #: keys of a source entry that are retrograde's own; everything else beside _target_ is a param
 _SOURCE_KEYS = {f.name for f in dataclasses.fields(SourceConfig)} - {"name", "params"}
@@ -299,7 +233,7 @@ def check_schema(raw: dict[str, Any]) -> dict[str, Any]:
     except OmegaConfBaseException as exc:
         key = getattr(exc, "full_key", "") or "?"
         raise ConfigError(
-            f"config key {key!r}: {_first_line(exc)}; fix it in conf/retrograde or the override"
+            f"config key {key!r}: {first_line(exc)}; fix it in conf/retrograde or the override"
         ) from exc
     assert isinstance(container, dict)
     return container  # type: ignore[return-value]
