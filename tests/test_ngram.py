@@ -99,7 +99,12 @@ def test_fixed_discount_probabilities_agree_with_nltk_kneser_ney_interpolated(or
     reference = KneserNeyInterpolated(order, discount=discount)
     reference.fit(sentences, vocabulary_text=vocabulary)
 
+    # The alignment precondition of convention 1: every outcome continues some context.
+    assert len(model.tables_.type_keys[1]) == vocab_size + 1
+
     contexts = [np.array(u[:cut]) for u in units[:8] for cut in range(len(u) + 1)]
+    # Random contexts too, some never seen in training (both back off to lower orders).
+    contexts += [rng.integers(0, vocab_size, n) for n in (1, 2, 3, 4) for _ in range(5)]
     ours = model.next_token_probs(contexts)
     for row, context in enumerate(contexts):
         padded = [vocab_size] * (order - 1) + context.tolist()
