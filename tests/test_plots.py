@@ -107,3 +107,4 @@ def test_gaps_that_are_not_significant_are_drawn_hollow():
     hollow = [line for line in ax.get_lines() if line.get_label() == "_not significant"]
     assert len(hollow) == 1
     assert list(hollow[0].get_ydata()) == [0.5] and hollow[0].get_markerfacecolor() == "white"
+    assert hollow[0].get_zorder() > ax.containers[0].lines[0].get_zorder()  # drawn on top

@@ -118,6 +118,7 @@ def gap_figure(table: Mapping[str, Any]) -> Figure:
                     markerfacecolor="white",
                     linestyle="none",
                     label="_not significant",
+                    zorder=3,  # above the errorbar's own filled marker
                 )
         ax.axhline(0.0, color="grey", linewidth=0.8)
         ax.set_xticks(range(len(orders)), orders, rotation=30, ha="right")
