@@ -30,6 +30,7 @@ from retrograde._io import atomic_write_json
 __all__ = [
     "RESULTS_DIR",
     "add_common_arguments",
+    "current_rss_bytes",
     "format_table",
     "machine",
     "median_seconds",
@@ -53,17 +54,29 @@ SPEED_VARIABLES = (
 )
 
 
+def _status_kib(field: str) -> int | None:
+    status = Path("/proc/self/status")
+    if status.is_file():
+        for line in status.read_text().splitlines():
+            if line.startswith(field + ":"):
+                return int(line.split()[1])  # the file reports kB (KiB)
+    return None
+
+
+def current_rss_bytes() -> int:
+    """Resident memory of this process now, in bytes (``VmRSS``; 0 when unknown)."""
+    return (_status_kib("VmRSS") or 0) * 1024
+
+
 def peak_rss_bytes() -> int:
     """Peak resident memory of this process so far, in bytes (``VmHWM``; Linux).
 
     Falls back to ``getrusage(RUSAGE_SELF).ru_maxrss`` (KiB on Linux) elsewhere.
     """
-    status = Path("/proc/self/status")
-    if status.is_file():
-        for line in status.read_text().splitlines():
-            if line.startswith("VmHWM:"):
-                return int(line.split()[1]) * 1024  # the file reports kB (KiB)
-    return int(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss) * 1024
+    peak_kib = _status_kib("VmHWM")
+    if peak_kib is None:
+        peak_kib = int(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)
+    return peak_kib * 1024
 
 
 def timed(function: Callable[[], Any]) -> tuple[Any, float]:

@@ -15,12 +15,21 @@ import sysconfig
 from collections.abc import Iterator
 from pathlib import Path
 
+import numpy as np
+
 from retrograde._document import Document
 from retrograde.sequences import SequenceSet
 from retrograde.tokenize import make as make_tokenizer
 from retrograde.units import prepare_units
 
-__all__ = ["CHARS_PER_WORD_TOKEN", "load_split", "prepare_corpus", "prefix", "source_text"]
+__all__ = [
+    "CHARS_PER_WORD_TOKEN",
+    "load_prefix",
+    "load_split",
+    "prefix",
+    "prepare_corpus",
+    "source_text",
+]
 
 #: characters per ``words`` token on the standard library (31.5 M chars -> 10.8 M tokens,
 #: measured here); used to read enough text for a word-token budget, with a margin
@@ -94,8 +103,24 @@ def load_split(folder: Path, split: str) -> SequenceSet:
     return SequenceSet.load(folder / split)
 
 
+def load_prefix(folder: Path, split: str, n_tokens: int) -> SequenceSet:
+    """:func:`prefix` of a saved split, read through a memory map so only it stays resident.
+
+    A measured process then holds the data a pipeline stage would hold (its own units), not
+    the whole prepared corpus.
+    """
+    mapped = _prefix_view(SequenceSet.load(folder / split, mmap=True), n_tokens)
+    return SequenceSet(
+        np.array(mapped.tokens), np.array(mapped.offsets), vocab_size=mapped.vocab_size
+    )
+
+
 def prefix(units: SequenceSet, n_tokens: int) -> SequenceSet:
     """The shortest run of leading units holding at least ``n_tokens`` tokens (or all)."""
+    return _prefix_view(units, n_tokens)
+
+
+def _prefix_view(units: SequenceSet, n_tokens: int) -> SequenceSet:
     n_units = int(min(len(units), 1 + units.offsets[1:].searchsorted(n_tokens)))
     return SequenceSet(
         units.tokens[: units.offsets[n_units]],

@@ -83,8 +83,8 @@ def one_hot_windows(units: Any, window: int, vocab_size: int) -> tuple[Any, np.n
 
 def measure(case: dict[str, Any]) -> dict[str, Any]:
     folder = Path(case["data"])
-    train = _corpus.prefix(_corpus.load_split(folder, "train"), case["train_tokens"])
-    test = _corpus.prefix(_corpus.load_split(folder, "test"), case["test_tokens"])
+    train = _corpus.load_prefix(folder, "train", case["train_tokens"])
+    test = _corpus.load_prefix(folder, "test", case["test_tokens"])
     system, params = case["system"], case["params"]
     if system == "sklearn":
         from sklearn.exceptions import ConvergenceWarning

@@ -57,9 +57,9 @@ def measure_ours(case: dict[str, Any]) -> dict[str, Any]:
     from retrograde.families import make
 
     folder = Path(case["data"])
-    train = _corpus.prefix(_corpus.load_split(folder, "train"), case["train_tokens"])
-    test = _corpus.prefix(_corpus.load_split(folder, "test"), case["test_tokens"])
-    baseline_mib = _common.peak_rss_bytes() / _common.MIB
+    train = _corpus.load_prefix(folder, "train", case["train_tokens"])
+    test = _corpus.load_prefix(folder, "test", case["test_tokens"])
+    rss_before_fit_mib = _common.current_rss_bytes() / _common.MIB
     repeats = case.get("repeats", 1)
     model, fit_seconds = _common.median_seconds(
         lambda: make("ngram", order=case["order"]).fit(train), repeats
@@ -73,7 +73,7 @@ def measure_ours(case: dict[str, Any]) -> dict[str, Any]:
         "fit_seconds": fit_seconds,
         "score_seconds": score_seconds,
         "bits_per_token": float(-scores.values.sum() / math.log(2) / len(test.tokens)),
-        "baseline_rss_mib": round(baseline_mib, 1),
+        "rss_before_fit_mib": round(rss_before_fit_mib, 1),
     }
 
 
@@ -84,8 +84,8 @@ def measure_nltk(case: dict[str, Any]) -> dict[str, Any]:
 
     folder = Path(case["data"])
     order = case["order"]
-    train = _corpus.prefix(_corpus.load_split(folder, "train"), case["train_tokens"])
-    test = _corpus.prefix(_corpus.load_split(folder, "test"), case["test_tokens"])
+    train = _corpus.load_prefix(folder, "train", case["train_tokens"])
+    test = _corpus.load_prefix(folder, "test", case["test_tokens"])
     # NLTK's vocabulary looks up strings only: the ids become their decimal text.
     sentences = [list(map(str, row.tolist())) for row in train]
 

@@ -71,7 +71,7 @@ def test_ngram_benchmark_runs_quick_and_gives_nltk_the_same_events(tmp_path):
         assert pair["fit_ratio"] > 0 and pair["score_ratio"] > 0
     for row in results["grid"]:
         assert row["train_tokens"] >= row["size"]
-        assert row["peak_rss_mib"] >= row["baseline_rss_mib"] > 0
+        assert row["peak_rss_mib"] >= row["rss_before_fit_mib"] > 0
         assert row["test_events"] == row["test_tokens"] + row["test_units"]
     assert results["targets"]["large_case_train_tokens"] >= 60_000
 
