@@ -342,3 +342,20 @@ def test_run_turns_a_failed_fit_stage_into_the_stages_own_line(tmp_path):
         HostRepoError, match="stage 'prepare' failed .*does not exist; see .*run.log"
     ):
         _raise_failure(host, dvc_only, ["prepare"], tmp_path / "run.log")
+
+
+def test_run_refuses_a_host_without_dvc_or_without_init_naming_the_fix(tmp_path, capsys):
+    import subprocess
+
+    from retrograde.cli import main
+
+    host = tmp_path / "host"
+    host.mkdir()
+    subprocess.run(["git", "init", "-q", str(host)], check=True)
+    assert main(["run", "--dir", str(host)]) == 2
+    assert "dvc init" in capsys.readouterr().err
+    (host / ".dvc").mkdir()  # what `dvc init` leaves, as far as finding the host goes
+    assert main(["run", "--dir", str(host)]) == 2
+    err = capsys.readouterr().err
+    assert len(err.strip().splitlines()) == 1 and "run `retrograde init --dir" in err
+    assert sorted(p.name for p in host.iterdir()) == [".dvc", ".git"]  # nothing written
