@@ -7,7 +7,7 @@ for the grouped rows, a shared per-document effect. It prints how often the 95% 
 covers 0 (symmetric: should be about 0.95) and how often it excludes 0 (shifted: power).
 The fast version of this check runs in ``tests/test_stats.py``.
 
-Run: ``python benchmarks/bench_coverage.py [--repetitions N]``.
+Run: ``python benchmarks/bench_coverage.py [--quick] [--repetitions N]``.
 """
 
 from __future__ import annotations
@@ -15,6 +15,7 @@ from __future__ import annotations
 import argparse
 import time
 
+import _common
 import numpy as np
 
 from retrograde.stats import summarize_model
@@ -117,9 +118,11 @@ def real_models(repetitions: int) -> tuple[float, float, float]:
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    _common.add_common_arguments(parser, "coverage")
     parser.add_argument("--repetitions", type=int, default=1000)
     args = parser.parse_args()
-    n = args.repetitions
+    n = 20 if args.quick else args.repetitions
+    results: dict[str, object] = {"machine": _common.machine(), "repetitions": n}
     print(f"{'setting':58s} {'covers 0':>9s}")
     settings = [
         ("1 seed, no training noise", {"n_seeds": 1, "seed_sd": 0.0}),
@@ -138,23 +141,32 @@ def main() -> None:
             {"n_seeds": 5, "seed_sd": 0.01, "docs": 30, "doc_sd": 6.0, "group": False},
         ),
     ]
+    coverage_rows = {}
     for label, kwargs in settings:
         start = time.perf_counter()
         coverage = rate(repetitions=n, shift=0.0, **kwargs)
+        coverage_rows[label] = coverage
         print(f"symmetric, {label:47s} {coverage:9.3f}   ({time.perf_counter() - start:.1f} s)")
+    results["symmetric_coverage"] = coverage_rows
+    power = {}
     for shift in (0.01, 0.03):
         excluded = 1.0 - rate(repetitions=n, shift=shift, n_seeds=5, seed_sd=0.01)
+        power[f"{shift:.0%}"] = excluded
         print(f"shifted {shift:.0%}, 5 seeds, training sd 1%: excludes 0 in {excluded:.3f}")
+    results["shifted_excludes_zero"] = power
     sign_flip, reported = false_positive_rates(min(n, 400))
+    results["false_positive_rate"] = {"sign_flip": sign_flip, "p_value": reported}
     print(
         f"symmetric, 5 seeds, training sd 1%: p < 0.05 in {sign_flip:.3f} (sign flips alone), "
         f"{reported:.3f} (reported p_value)"
     )
     coverage, mean_gap, sd_gap = real_models(min(n, 200))
+    results["markov_ngram"] = {"coverage": coverage, "mean_gap_pct": mean_gap, "sd_gap_pct": sd_gap}
     print(
         f"markov source + ngram fits (1 seed, fresh training set each time): covers 0 in "
         f"{coverage:.3f}; gap {mean_gap:.2e} % +- {sd_gap:.2e} %"
     )
+    _common.write_results(args.out, results)
 
 
 if __name__ == "__main__":
