@@ -46,9 +46,40 @@ def _data_hash(units: SequenceSet) -> str:
     return digest.hexdigest()
 
 
+def _order_losses(
+    wdir: Path, where: tuple[str, str, str], seeds: list[int], test: SequenceSet
+) -> tuple[np.ndarray, Ragged, list[Any]]:
+    """One (source, model, order) over its seeds.
+
+    Returns ``(unit_nll, natural, curves)``: (n_seeds, n_units) nats per test unit, the
+    seed-averaged per-position losses in natural order (end marker last), one curve a seed.
+    """
+    from .. import scoring
+
+    source, model, order = where
+    positions_path = wdir / str(order_dir(source, order)) / "positions_test.npy"
+    if not positions_path.is_file():
+        raise DataError(
+            f"order {order!r} of source {source!r} was never written "
+            f"({positions_path.name} missing); run `retrograde run`"
+        )
+    positions = np.load(positions_path, allow_pickle=False)
+    # Each unit has len + 1 scores (end marker last): offsets of the flat score arrays.
+    score_offsets = np.concatenate([[0], np.cumsum(test.lengths + 1)]).astype(np.int64)
+    unit_nll, losses, curves = [], [], []
+    for seed in seeds:
+        values, curve = _read_cell(wdir, source, model, order, seed)
+        logprobs = Ragged(values, score_offsets)
+        unit_nll.append(scoring.unit_nll(logprobs))
+        losses.append(scoring.natural_order_losses(logprobs, positions, test).values)
+        curves.append(curve)
+    natural = Ragged(np.mean(losses, axis=0), score_offsets)
+    return np.stack(unit_nll), natural, curves
+
+
 def collect(wdir: Path, params: dict[str, Any]) -> dict[str, Any]:
     """The keyword arguments of :func:`retrograde.report.write_all` for this grid."""
-    from .. import scoring, stats
+    from .. import stats
 
     study, stats_config = params["study"], params["stats"]
     reference, seeds = study["reference_order"], [int(s) for s in study["seeds"]]
@@ -63,32 +94,15 @@ def collect(wdir: Path, params: dict[str, Any]) -> dict[str, Any]:
         test = SequenceSet.load(folder / "test")
         data_hashes[source] = _data_hash(test)
         floors = np.load(folder / "floors.npy") if (folder / "floors.npy").is_file() else None
-        # Each unit has len + 1 scores (end marker last): offsets of the flat score arrays.
-        score_offsets = np.concatenate([[0], np.cumsum(test.lengths + 1)]).astype(np.int64)
         table[source], profiles[source], curves[source] = {}, {}, {}
         for model in study["models"]:
             unit_nll: dict[str, np.ndarray] = {}
             natural: dict[str, Ragged] = {}
             curves[source][model] = {}
             for order in study["orders"]:
-                positions_path = wdir / str(order_dir(source, order)) / "positions_test.npy"
-                if not positions_path.is_file():
-                    raise DataError(
-                        f"order {order!r} of source {source!r} was never written "
-                        f"({positions_path.name} missing); run `retrograde run`"
-                    )
-                positions = np.load(positions_path, allow_pickle=False)
-                per_seed_nll, per_seed_losses, per_seed_curves = [], [], []
-                for seed in seeds:
-                    values, curve = _read_cell(wdir, source, model, order, seed)
-                    logprobs = Ragged(values, score_offsets)
-                    per_seed_nll.append(scoring.unit_nll(logprobs))
-                    losses = scoring.natural_order_losses(logprobs, positions, test)
-                    per_seed_losses.append(losses.values)
-                    per_seed_curves.append(curve)
-                unit_nll[order] = np.stack(per_seed_nll)  # (n_seeds, n_units) nats
-                natural[order] = Ragged(np.mean(per_seed_losses, axis=0), score_offsets)
-                curves[source][model][order] = per_seed_curves
+                unit_nll[order], natural[order], curves[source][model][order] = _order_losses(
+                    wdir, (source, model, order), seeds, test
+                )
             table[source][model] = stats.summarize_model(
                 unit_nll,
                 reference_order=reference,
