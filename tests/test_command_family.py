@@ -171,3 +171,16 @@ def test_a_missing_program_is_reported_by_name():
 def test_invalid_parameters_are_refused_naming_key_value_and_what_is_allowed(params, message):
     with pytest.raises(ConfigError, match=r"family 'command': parameter " + message):
         make("command", **params).fit(TRAIN)
+
+
+def test_no_temporary_folders_are_left_behind_after_a_fit_or_a_failure(tmp_path, monkeypatch):
+    import tempfile
+
+    scratch = tmp_path / "scratch"
+    scratch.mkdir()
+    monkeypatch.setattr(tempfile, "tempdir", str(scratch))
+    make("command", command=FIT).fit(TRAIN, VALID).logprobs(TEST)
+    assert list(scratch.iterdir()) == []
+    with pytest.raises(FitError):
+        failing_trainer(tmp_path, "sys.exit(3)\n").fit(TRAIN, VALID)
+    assert list(scratch.iterdir()) == []

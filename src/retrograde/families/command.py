@@ -73,6 +73,8 @@ class CommandFamily(Family):
     command: list[str]
     score_command: list[str] | None
     timeout: float
+    #: the trainer's {out} folder of the fit run (with score_command), else None
+    model_dir_: Path | None
 
     def __init__(
         self,
@@ -106,11 +108,23 @@ class CommandFamily(Family):
         self.train_ = _with_vocab(train, self.vocab_size_)
         self.valid_ = _with_vocab(valid if valid is not None else empty, self.vocab_size_)
         workdir = Path(tempfile.mkdtemp(prefix="retrograde-command-"))
-        weakref.finalize(self, shutil.rmtree, workdir, ignore_errors=True)
         out = workdir / "out"
-        values = self._run_fit_command(self.valid_, workdir, out)
-        self.model_dir_ = out if self.score_command is not None else None
-        self.learning_curve_ = read_curve(out / "curve.json")
+        try:
+            values = self._run_fit_command(self.valid_, workdir, out)
+            self.learning_curve_ = read_curve(out / "curve.json")
+        except BaseException:
+            shutil.rmtree(workdir, ignore_errors=True)
+            raise
+        finally:
+            for split in ("train", "valid", "test"):  # copies of the units: no longer needed
+                shutil.rmtree(workdir / split, ignore_errors=True)
+        if self.score_command is not None:
+            # The trainer's {out} holds its model until this object goes (or is saved).
+            self.model_dir_ = out
+            weakref.finalize(self, shutil.rmtree, workdir, ignore_errors=True)
+        else:
+            self.model_dir_ = None
+            shutil.rmtree(workdir, ignore_errors=True)
         if not self.learning_curve_ and len(self.valid_):
             bits = -values.sum() / np.log(2) / max(len(self.valid_.tokens), 1)
             self.learning_curve_ = [{"epoch": 1, "valid_bits_per_token": float(bits)}]
@@ -154,7 +168,7 @@ class CommandFamily(Family):
         return Ragged(values, units.offsets + np.arange(len(units) + 1))
 
     def next_token_probs(self, contexts: Sequence[np.ndarray]) -> np.ndarray:
-        """(n_contexts, vocab_size + 1): every continuation scored as a one-step unit pair.
+        """(n_contexts, vocab_size + 1): each context extended by every outcome, then scored.
 
         The trainer only reports observed log-probabilities, so each context is extended
         by every outcome (``vocab_size + 1`` test units per context); this is for checks on
