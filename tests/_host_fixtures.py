@@ -103,3 +103,17 @@ def _sort_tokens_order() -> type:
 #: An order a config can name by dotted path (``_host_fixtures.SortTokens``) that fails
 #: the round trip on any unit whose tokens are not already sorted.
 SortTokens = _sort_tokens_order()
+
+
+def dvc_events(host: Path) -> dict[str, list[str]]:
+    """What DVC itself reported per stage in the last `retrograde run` (its log, run.log),
+    in order: ``{"ran": [...], "restored": [...], "unchanged": [...], "failed": [...]}``."""
+    from retrograde.commands.run import parse_repro_line
+
+    events: dict[str, list[str]] = {"ran": [], "restored": [], "unchanged": [], "failed": []}
+    log = host / "pipelines" / "retrograde" / "logs" / "run.log"
+    for line in log.read_text(encoding="utf-8").splitlines():
+        parsed = parse_repro_line(line)
+        if parsed:
+            events[parsed[0]].append(parsed[1])
+    return events

@@ -9,7 +9,7 @@ import shutil
 
 import pytest
 
-from _host_fixtures import DVC, new_host, new_pipeline_host, sh, snapshot
+from _host_fixtures import DVC, dvc_events, new_host, new_pipeline_host, sh, snapshot
 from retrograde.cli import main
 from retrograde.hostcheck import format_host_check
 
@@ -61,11 +61,8 @@ def test_cells_check_calls_to_run_are_exactly_those_run_then_fits(tmp_path, caps
     err = io.StringIO()
     with contextlib.redirect_stderr(err), contextlib.redirect_stdout(io.StringIO()):
         assert main(["run", "--dir", str(host), *grid]) == 0, err.getvalue()
-    acted = sorted(
-        line.split()[1]
-        for line in err.getvalue().splitlines()
-        if line.split()[:1] in (["ran"], ["restored"])
-    )
+    events = dvc_events(host)
+    acted = sorted(events["ran"] + events["restored"])
     assert [name for name in acted if name.startswith("fit@")] == to_run
 
 

@@ -11,7 +11,7 @@ from pathlib import Path
 import pytest
 import yaml
 
-from _host_fixtures import new_host, sh, snapshot
+from _host_fixtures import dvc_events, new_host, sh, snapshot
 from retrograde.cli import main
 from retrograde.hostrepo import find_host
 from retrograde.scaffold import IGNORE_RULES, install, planned_files, source_config
@@ -244,7 +244,7 @@ def test_a_source_written_by_a_host_stage_connects_the_two_pipelines(tmp_path, m
     with contextlib.redirect_stderr(err), contextlib.redirect_stdout(io.StringIO()):
         status = main(["run", "study=smoke", "study.seeds=[0]"])
     assert status == 0, err.getvalue()
-    ran = [line.split()[1] for line in err.getvalue().splitlines() if line.split()[:1] == ["ran"]]
+    ran = dvc_events(host)["ran"]
     # DVC ran the host's own stage first, because the corpus is a declared dependency.
     assert ran[:2] == ["prepare", "units_corpus"], ran
     assert "table" in ran

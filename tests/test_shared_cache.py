@@ -17,20 +17,10 @@ from pathlib import Path
 import pytest
 import yaml
 
-from _host_fixtures import DVC, new_pipeline_host, sh
+from _host_fixtures import DVC, dvc_events, new_pipeline_host, sh
 
 SMOKE = "study=smoke"  # 4 fit cells
 FITS = [f"fit@corpus-ngram-{order}-{seed}" for order in ("forward", "reverse") for seed in (0, 1)]
-
-
-def _events(stderr: str) -> dict[str, set[str]]:
-    """`run` prints '<event>  <stage>' per stage DVC ran or restored."""
-    events: dict[str, set[str]] = {"ran": set(), "restored": set()}
-    for line in stderr.splitlines():
-        parts = line.split()
-        if len(parts) == 2 and parts[0] in events:
-            events[parts[0]].add(parts[1])
-    return events
 
 
 # ---------------------------------------------------------------- the recipe in docs/ci.md
@@ -87,8 +77,8 @@ def test_the_documented_shard_and_final_jobs_fit_each_cell_once_and_the_final_jo
         assert len(list(cells.glob("*/seed*"))) == 2
 
     final = _bash(blocks["ci-gather"], clones["final"], OVERRIDES=SMOKE)
-    events = _events(final.stderr)
-    assert set(FITS) <= events["restored"], final.stderr
+    events = dvc_events(clones["final"])  # DVC's own words, from run's log
+    assert set(FITS) <= set(events["restored"]), final.stderr
     assert not any(name.startswith("fit@") for name in events["ran"]), final.stderr
     # What DVC itself printed (run's log of the repro): each fit came from the run-cache ...
     log = (clones["final"] / "pipelines/retrograde/logs/run.log").read_text()
