@@ -23,6 +23,7 @@ from retrograde.stages import fit as fit_stage
 from retrograde.stages import reorder as reorder_stage
 from retrograde.stages import table as table_stage
 from retrograde.stages import units as units_stage
+from retrograde.stages.fit import fit_cell
 
 LINES = ["the cat sat on the mat", "a dog ran far", "birds sing at dawn", "rain falls softly"]
 CORPUS = "\n".join(f"{line} {i % 7}" for i in range(120) for line in LINES[i % 4 : i % 4 + 1])
@@ -199,6 +200,21 @@ def test_fit_stage_writes_model_scores_curve_and_log(pipeline):
     np.testing.assert_allclose(reloaded.values, values)
     assert isinstance(json.loads((cell / "curve.json").read_text()), list)
     assert "seed=1" in (cell / "fit.log").read_text()
+
+
+def test_fit_cell_returns_a_json_ready_learning_curve_for_an_epoch_based_family():
+    rng = np.random.default_rng(0)
+
+    def units(n):
+        rows = [rng.integers(0, 5, size=rng.integers(3, 9)) for _ in range(n)]
+        return SequenceSet.from_list(rows, vocab_size=5)
+
+    splits = {"train": units(60), "valid": units(10), "test": units(10)}
+    spec = {"family": "mlp", "params": {"window": 2, "hidden": 8, "epochs": 2}}
+    _, values, curve = fit_cell(spec, splits, seed=0)
+    assert [epoch["epoch"] for epoch in curve] == [1, 2]
+    assert json.loads(json.dumps(curve)) == curve  # plain numbers only
+    assert values.shape == (len(splits["test"].tokens) + len(splits["test"]),)
 
 
 def test_fit_crash_names_the_cell_and_keeps_its_log(pipeline, tmp_path, capsys):

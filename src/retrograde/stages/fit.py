@@ -32,6 +32,11 @@ from . import cell_dir, order_dir, read_params, run_stage
 __all__ = ["fit_cell", "main"]
 
 
+def _plain(value: Any) -> Any:
+    """A numpy scalar as the Python number it holds; anything else unchanged."""
+    return value.item() if isinstance(value, np.generic) else value
+
+
 def fit_cell(
     model_spec: dict[str, Any],
     splits: dict[str, SequenceSet],
@@ -57,7 +62,11 @@ def fit_cell(
         f"train {len(train)} units / {len(train.tokens)} tokens; valid {len(valid)}; test {len(test)}"
     )
     model.fit(train, valid if len(valid) else None, seed=seed)
-    curve = [dict(epoch) for epoch in getattr(model, "learning_curve_", [])]
+    # Plain Python numbers only: curve.json must load anywhere (numpy ints are not JSON).
+    curve = [
+        {str(key): _plain(value) for key, value in epoch.items()}
+        for epoch in getattr(model, "learning_curve_", [])
+    ]
     for epoch in curve:
         note(f"epoch {epoch}")
     logprobs = model.logprobs(test)
