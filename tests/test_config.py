@@ -283,3 +283,18 @@ def test_docstring_examples_of_the_pipeline_modules_run():
     ):
         failures, _ = doctest.testmod(module, optionflags=doctest.ELLIPSIS)
         assert failures == 0, module.__name__
+
+
+SHIPPED_SOURCES = sorted(
+    p.name.removesuffix(".yaml")
+    for p in (resources.files("retrograde") / "conf" / "source").iterdir()
+    if p.name.endswith(".yaml")
+)
+
+
+@pytest.mark.parametrize("source", SHIPPED_SOURCES)
+def test_every_shipped_source_config_composes_and_builds(host, source):
+    params = compose(host, [f"source=[{source}]"])
+    spec = params["study"]["sources"][source]
+    assert spec["kind"] in ("file", "calibration")
+    assert (spec["kind"] == "calibration") == (spec["deps"] == [])
