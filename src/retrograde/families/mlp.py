@@ -69,6 +69,10 @@ class MLP(Family):
 
     Without ``valid`` the model trains all epochs and the learning curve records only the
     training loss (``train_loss``, nats per event, L2 penalty included).
+
+    Memory: the sparse design matrix holds ``window`` entries of 12 bytes per event (about
+    100 bytes per training token at ``window=8``), so this family suits corpora up to a few
+    million tokens; the ``ngram`` and torch families scale further.
     """
 
     name: ClassVar[str] = "mlp"
