@@ -160,6 +160,7 @@ def test_unknown_override_key_fails_with_did_you_mean_and_the_keys_allowed(host)
     message = _one_line_error(host, ["study.sedes=[1]"])
     assert "'study.sedes'" in message and "did you mean 'seeds'" in message
     assert "orders" in message and "reference_order" in message
+    assert "+study" not in message  # a new key under study is never right
 
 
 def test_unknown_key_added_in_a_config_file_names_its_key_path(host):
@@ -193,7 +194,7 @@ def test_unknown_plugin_names_fail_with_did_you_mean(host, override, expected):
     [
         ("study.models.ngram.params.order=0", "parameter order=0 is invalid"),
         ("+study.models.ngram.params.ordr=2", "no parameter 'ordr' (did you mean 'order'?)"),
-        ("study.models.ngram.params.ordr=2", "'study.models.ngram.params.ordr'"),
+        ("study.models.ngram.params.ordr=2", "(did you mean 'order'?); keys under"),
         ("+study.orders.reverse.params.size=2", "order 'reverse' has no parameter 'size'"),
         ("study.seeds=[1,1]", "seeds=[1, 1] is invalid"),
         ("study.seeds=[]", "seeds=[] is invalid"),

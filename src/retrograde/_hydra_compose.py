@@ -77,8 +77,9 @@ def _override_error(conf_dir: Path, overrides: Sequence[str], exc: Exception) ->
     for part in parent.split(".") if parent else []:
         node = node.get(part, {}) if isinstance(node, dict) else {}
     siblings = sorted(node) if isinstance(node, dict) else []
+    # Only plug-in params are free-form; anywhere else a new key is a typo.
+    hint = f"; to add a parameter write +{key}=..." if parent.endswith(".params") else ""
     return ConfigError(
         f"unknown config key {key!r} in the overrides{did_you_mean(leaf, siblings)}; "
-        f"keys under {parent or 'the top level'!r}: {', '.join(siblings) or 'none'} "
-        f"(prefix with + to add a model or order parameter, e.g. +{key}=...)"
+        f"keys under {parent or 'the top level'!r}: {', '.join(siblings) or 'none'}{hint}"
     )
