@@ -6,8 +6,9 @@ resident memory is its own: the child reads ``VmHWM`` from ``/proc/self/status``
 the largest of *all* children so far, and on Linux a child's ``ru_maxrss`` can carry the
 parent's peak across ``fork`` + ``exec``; ``VmHWM`` is reset by ``exec``.
 
-Wall time is ``time.perf_counter``. The machine is shared, so :func:`machine` records the
-load average before and after a run: read the figures as "on this machine at that load".
+Wall time is ``time.perf_counter``, CPU time ``time.process_time``. The machine is shared,
+so :func:`machine` records the load average before and after a run: read wall-time figures
+as "on this machine at that load"; CPU-time figures move much less with the load.
 """
 
 from __future__ import annotations
@@ -30,6 +31,7 @@ from retrograde._io import atomic_write_json
 __all__ = [
     "RESULTS_DIR",
     "add_common_arguments",
+    "cell",
     "current_rss_bytes",
     "format_table",
     "machine",
@@ -79,21 +81,26 @@ def peak_rss_bytes() -> int:
     return peak_kib * 1024
 
 
-def timed(function: Callable[[], Any]) -> tuple[Any, float]:
-    """``(result, wall seconds)`` of one call."""
-    start = time.perf_counter()
+def timed(function: Callable[[], Any]) -> tuple[Any, float, float]:
+    """``(result, wall seconds, CPU seconds of this process)`` of one call.
+
+    CPU time (``time.process_time``, all threads) is reported beside wall time because
+    the machine is shared: other work stretches wall time far more than CPU time.
+    """
+    wall, cpu = time.perf_counter(), time.process_time()
     result = function()
-    return result, time.perf_counter() - start
+    return result, time.perf_counter() - wall, time.process_time() - cpu
 
 
-def median_seconds(function: Callable[[], Any], repeats: int) -> tuple[Any, float]:
-    """``(last result, median wall seconds)`` over ``repeats`` calls (for sub-second cases)."""
-    seconds = []
+def median_seconds(function: Callable[[], Any], repeats: int) -> tuple[Any, float, float]:
+    """``(last result, median wall seconds, median CPU seconds)`` over ``repeats`` calls."""
+    walls, cpus = [], []
     result = None
     for _ in range(repeats):
-        result, elapsed = timed(function)
-        seconds.append(elapsed)
-    return result, statistics.median(seconds)
+        result, wall, cpu = timed(function)
+        walls.append(wall)
+        cpus.append(cpu)
+    return result, statistics.median(walls), statistics.median(cpus)
 
 
 def _cpu_model() -> str:
@@ -188,7 +195,8 @@ def write_results(path: Path, payload: dict[str, Any]) -> None:
     print(f"\nresults written to {path}")
 
 
-def _cell(value: Any, spec: str) -> str:
+def cell(value: Any, spec: str) -> str:
+    """``value`` formatted with ``spec``; ``-`` for None."""
     if value is None:
         return "-"
     if isinstance(value, bool):
@@ -205,7 +213,7 @@ def format_table(rows: Sequence[dict[str, Any]], columns: Sequence[tuple[str, st
     3   0.50
     """
     header = [title for _, title, _ in columns]
-    body = [[_cell(row.get(key), spec) for key, _, spec in columns] for row in rows]
+    body = [[cell(row.get(key), spec) for key, _, spec in columns] for row in rows]
     widths = [max(len(text) for text in column) for column in zip(header, *body, strict=True)]
 
     def line(cells: Sequence[str], first_left: bool = True) -> str:

@@ -12,7 +12,8 @@ What is timed
 ``sklearn`` (reference, same run)
     ``sklearn.neural_network.MLPClassifier`` with the same layer, batch size, learning
     rate and penalty, ``fit`` for 2 epochs on the same one-hot matrix, built outside the
-    timer; scoring is ``predict_proba`` on the test matrix. The ratio ours / sklearn shows
+    timer; scoring is ``predict_proba`` on the test matrix. Both run with one BLAS thread
+    (``threadpoolctl``), as the family does. The ratio ours / sklearn shows
     what the family's feature building, chunking and probability floor cost on top.
 ``gru``, ``lstm``, ``transformer``
     When PyTorch is installed (and not with ``--quick``): default widths, ``context=128``,
@@ -89,6 +90,7 @@ def measure(case: dict[str, Any]) -> dict[str, Any]:
     if system == "sklearn":
         from sklearn.exceptions import ConvergenceWarning
         from sklearn.neural_network import MLPClassifier
+        from threadpoolctl import threadpool_limits
 
         vocab_size = train.effective_vocab_size()
         train_x, train_y = one_hot_windows(train, params["window"], vocab_size)
@@ -100,17 +102,19 @@ def measure(case: dict[str, Any]) -> dict[str, Any]:
             max_iter=params["epochs"],
             random_state=0,
         )
-        with warnings.catch_warnings():
+        # One BLAS thread, as the family itself runs (two threads on a busy 2-core machine
+        # spin and run ~10x slower: measured by the family's owner).
+        with warnings.catch_warnings(), threadpool_limits(limits=1, user_api="blas"):
             warnings.simplefilter("ignore", ConvergenceWarning)  # 2 epochs never converge
-            _, fit_seconds = _common.timed(lambda: classifier.fit(train_x, train_y))
-        _, score_seconds = _common.timed(lambda: classifier.predict_proba(test_x))
+            _, fit_seconds, fit_cpu = _common.timed(lambda: classifier.fit(train_x, train_y))
+            _, score_seconds, score_cpu = _common.timed(lambda: classifier.predict_proba(test_x))
         epochs_run, bits = classifier.n_iter_, None
     else:
         from retrograde.families import make
 
         model = make(system, progress=False, **params)
-        _, fit_seconds = _common.timed(lambda: model.fit(train, seed=0))
-        scores, score_seconds = _common.timed(lambda: model.logprobs(test))
+        _, fit_seconds, fit_cpu = _common.timed(lambda: model.fit(train, seed=0))
+        scores, score_seconds, score_cpu = _common.timed(lambda: model.logprobs(test))
         epochs_run = len(model.learning_curve_) or params["epochs"]
         bits = float(-scores.values.sum() / math.log(2) / len(test.tokens))
     return {
@@ -121,6 +125,10 @@ def measure(case: dict[str, Any]) -> dict[str, Any]:
         "score_seconds": score_seconds,
         "train_tokens_per_s": len(train.tokens) * int(epochs_run) / fit_seconds,
         "score_tokens_per_s": len(test.tokens) / score_seconds,
+        "fit_cpu_seconds": fit_cpu,
+        "score_cpu_seconds": score_cpu,
+        "train_tokens_per_cpu_s": len(train.tokens) * int(epochs_run) / fit_cpu,
+        "score_tokens_per_cpu_s": len(test.tokens) / score_cpu,
         "bits_per_token": bits,
     }
 
@@ -151,6 +159,10 @@ def run_all(args: argparse.Namespace, workdir: Path) -> dict[str, Any]:
     ratios = {
         "mlp_vs_sklearn_train": ours["train_tokens_per_s"] / reference["train_tokens_per_s"],
         "mlp_vs_sklearn_score": ours["score_tokens_per_s"] / reference["score_tokens_per_s"],
+        "mlp_vs_sklearn_train_cpu": ours["train_tokens_per_cpu_s"]
+        / reference["train_tokens_per_cpu_s"],
+        "mlp_vs_sklearn_score_cpu": ours["score_tokens_per_cpu_s"]
+        / reference["score_tokens_per_cpu_s"],
     }
     return {"corpus": corpus, "rows": rows, "ratios": ratios, "torch_installed": torch_installed}
 
@@ -179,6 +191,8 @@ def main(argv: list[str] | None = None) -> int:
                 ("epochs_run", "epochs", "d"),
                 ("train_tokens_per_s", "train tok/s", ",.0f"),
                 ("score_tokens_per_s", "score tok/s", ",.0f"),
+                ("train_tokens_per_cpu_s", "train tok/CPU s", ",.0f"),
+                ("score_tokens_per_cpu_s", "score tok/CPU s", ",.0f"),
                 ("peak_rss_mib", "peak MiB", ",.0f"),
                 ("bits_per_token", "test bits/tok", ".3f"),
             ],
@@ -188,6 +202,8 @@ def main(argv: list[str] | None = None) -> int:
     print(
         f"\nmlp / sklearn MLPClassifier (same task, same run): training x"
         f"{ratios['mlp_vs_sklearn_train']:.2f}, scoring x{ratios['mlp_vs_sklearn_score']:.2f}"
+        f" (CPU time: x{ratios['mlp_vs_sklearn_train_cpu']:.2f}, "
+        f"x{ratios['mlp_vs_sklearn_score_cpu']:.2f})"
     )
     if not results["torch_installed"] or args.quick:
         print("gru, lstm and transformer skipped (torch not installed, or --quick)")
