@@ -88,9 +88,20 @@ def test_a_host_without_init_is_told_to_run_init(tmp_path, capsys):
     assert status == 2 and f"run `retrograde init --dir {host.resolve()}` first" in err
 
 
-def test_without_file_or_dir_check_says_what_to_give(capsys):
+def test_plain_check_inside_a_host_checks_that_host_and_takes_overrides(
+    tmp_path, capsys, monkeypatch
+):
+    host = new_pipeline_host(tmp_path / "host")
+    monkeypatch.chdir(host / "data")  # anywhere inside the host
+    status, out, err = _check(capsys, SMOKE, "study.seeds=[0]")
+    assert (status, err) == (0, "")
+    assert "= 2 fit cells" in out.splitlines()[0]
+
+
+def test_plain_check_outside_a_repository_says_to_run_git_init(tmp_path, capsys, monkeypatch):
+    monkeypatch.chdir(tmp_path)
     status, _, err = _check(capsys)
-    assert status == 2 and "give one FILE, or --dir HOST [OVERRIDES]" in err
+    assert status == 2 and "is not inside a git repository" in err
 
 
 def test_the_text_report_lists_cells_to_run():

@@ -1,4 +1,4 @@
-"""``retrograde check --dir HOST [OVERRIDES]``: what ``retrograde run`` would do, without fitting.
+"""``retrograde check [--dir HOST] [OVERRIDES]``: what ``retrograde run`` would do, without fitting.
 
 Three checks, in the order a user needs them:
 

@@ -35,9 +35,12 @@ __all__ = ["configure", "parse_order_spec", "read_text", "run"]
 
 def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument(
-        "file", type=Path, nargs="?", help="a UTF-8 text file (one document); omit with --dir"
+        "file",
+        type=Path,
+        nargs="?",
+        help="a UTF-8 text file (one document); without it, check the host repository here",
     )
-    # Host mode (retrograde.hostcheck): `check --dir HOST [OVERRIDES]` checks the composed
+    # Host mode (retrograde.hostcheck): `check [--dir HOST] [OVERRIDES]` checks the composed
     # config of a host repository; positional words are then Hydra overrides.
     parser.add_argument(
         "--dir", default=None, metavar="HOST", help="check a host's composed config"
@@ -227,12 +230,15 @@ def _verdicts(
 
 
 def run(args: argparse.Namespace) -> int:
-    if args.dir is not None:
+    # Host mode without --dir too: plain `retrograde check [OVERRIDES]` inside a host repo
+    # (a word with "=" that is not a file is a Hydra override, not a FILE).
+    looks_like_override = args.file is not None and "=" in str(args.file) and not args.file.exists()
+    if args.dir is not None or args.file is None or looks_like_override:
         from ..hostcheck import run_host_check
 
         words = [*([] if args.file is None else [str(args.file)]), *args.overrides]
-        return run_host_check(args.dir, words, as_json=args.json)
-    if args.file is None or args.overrides:
+        return run_host_check(args.dir or ".", words, as_json=args.json)
+    if args.overrides:
         raise ConfigError("check: give one FILE, or --dir HOST [OVERRIDES] for a host repository")
     if args.max_vocab is not None:
         check_int(f"tokenizer {args.tokenizer!r}", "max_vocab", args.max_vocab, low=2)
