@@ -11,7 +11,7 @@ from pathlib import Path
 import pytest
 import yaml
 
-from _host_fixtures import dvc_events, new_host, sh, snapshot
+from _host_fixtures import DVC, dvc_events, new_host, sh, snapshot
 from retrograde.cli import main
 from retrograde.hostrepo import find_host
 from retrograde.scaffold import IGNORE_RULES, install, planned_files, source_config
@@ -174,11 +174,30 @@ def test_source_paths_are_taken_relative_to_the_current_folder(host, capsys, mon
     assert corpus["params"]["files"] == ["data/corpus.txt"]
 
 
+def test_outputs_of_nested_stage_files_count_from_their_wdir(host, capsys):
+    nested = host / "stages" / "prep"
+    nested.mkdir(parents=True)
+    (nested / "dvc.yaml").write_text(
+        "stages:\n  make:\n    wdir: ../..\n    cmd: python make.py\n"
+        "    outs:\n      - data/made.txt:\n          cache: true\n"
+    )
+    assert _init(capsys, "--source", "data/made.txt")[0] == 0
+
+
+def test_data_tracked_by_dvc_add_but_not_pulled_is_a_valid_source(host, capsys):
+    (host / "data" / "big.txt").write_text("a corpus tracked by DVC\n")
+    sh([*DVC, "add", "-q", "data/big.txt"], host)
+    (host / "data" / "big.txt").unlink()  # as in a fresh clone before `dvc pull`
+    assert _init(capsys, "--source", "data/big.txt")[0] == 0
+    corpus = yaml.safe_load((host / "conf/retrograde/source/corpus.yaml").read_text())
+    assert corpus["deps"] == ["data/big.txt"]
+
+
 def test_a_missing_source_that_no_host_stage_writes_is_refused_in_one_line(host, capsys):
     before = snapshot(host)
     status, _, err = _init(capsys, "--source", "data/typo.txt")
     assert status == 2 and err.count("\n") == 1
-    assert "source 'data/typo.txt' does not exist" in err and "no stage" in err
+    assert "source 'data/typo.txt' does not exist" in err and "no stage or .dvc file" in err
     assert snapshot(host) == before
 
 

@@ -141,35 +141,56 @@ def _leading_comments(lines: Iterable[str]) -> Iterable[str]:
 
 
 def host_stage_outputs(host: HostRepo) -> list[PurePosixPath]:
-    """Host-relative outputs declared by the host's own stage files (not retrograde's).
+    """Host-relative outputs declared by the host's own DVC files (not retrograde's).
 
-    Reads every ``dvc.yaml`` git knows about (tracked or untracked, not ignored), outside
-    ``pipelines/retrograde/``. Templated outputs (``${...}``) are skipped: they cannot be
-    matched to a path without DVC's interpolation.
+    Reads every ``dvc.yaml`` (stage outputs and metrics) and every ``.dvc`` file (data
+    tracked with ``dvc add``, possibly not pulled yet) that git knows about, tracked or
+    untracked but not ignored, outside ``pipelines/retrograde/``. Templated outputs
+    (``${...}``) are skipped: they cannot be matched to a path without DVC's interpolation.
     """
     from .hostrepo import run_git
 
     listed = run_git(
-        host.root, ["ls-files", "--cached", "--others", "--exclude-standard", "--", "*dvc.yaml"]
+        host.root,
+        ["ls-files", "--cached", "--others", "--exclude-standard", "--", "*dvc.yaml", "*.dvc"],
     ).stdout.splitlines()
     outputs: list[PurePosixPath] = []
     for name in sorted(set(listed)):
-        stage_file = PurePosixPath(name)
-        if stage_file.name != "dvc.yaml" or _is_below(stage_file, PIPELINE_DIR):
+        dvc_file = PurePosixPath(name)
+        is_dvc_file = dvc_file.name == "dvc.yaml" or dvc_file.suffix == ".dvc"
+        if not is_dvc_file or _is_below(dvc_file, PIPELINE_DIR):
             continue
         try:
-            data = yaml.safe_load((host.root / stage_file).read_text(encoding="utf-8")) or {}
+            data = yaml.safe_load((host.root / dvc_file).read_text(encoding="utf-8")) or {}
         except (OSError, yaml.YAMLError):
-            continue  # DVC itself reports a broken host stage file; it is not ours to judge
-        for stage in (data.get("stages") or {}).values():
+            continue  # DVC itself reports a broken host file; it is not ours to judge
+        if not isinstance(data, dict):
+            continue
+        # A .dvc file is shaped like a single stage; a dvc.yaml holds named stages.
+        stages = [data] if dvc_file.suffix == ".dvc" else list((data.get("stages") or {}).values())
+        for stage in stages:
             if not isinstance(stage, dict):
                 continue
-            wdir = stage_file.parent / str(stage.get("wdir", "."))
+            wdir = dvc_file.parent / str(stage.get("wdir", "."))
             for out in [*(stage.get("outs") or []), *(stage.get("metrics") or [])]:
-                path = next(iter(out)) if isinstance(out, dict) else out
-                if isinstance(path, str) and "${" not in path:
+                path = _out_path(out)
+                if path is not None and "${" not in path:
                     outputs.append(_normalize(wdir / path))
     return outputs
+
+
+def _out_path(out: Any) -> str | None:
+    """The path of one ``outs`` entry: ``"p"``, ``{"p": {...}}`` (dvc.yaml) or
+    ``{"path": "p", "md5": ...}`` (.dvc files and dvc.lock style)."""
+    if isinstance(out, str):
+        return out
+    if isinstance(out, dict):
+        if isinstance(out.get("path"), str):
+            return str(out["path"])
+        if len(out) == 1:
+            key = next(iter(out))
+            return key if isinstance(key, str) else None
+    return None
 
 
 def resolve_sources(host: HostRepo, paths: Sequence[str], *, cwd: Path) -> list[str]:
@@ -204,8 +225,8 @@ def resolve_sources(host: HostRepo, paths: Sequence[str], *, cwd: Path) -> list[
             outputs = host_stage_outputs(host) if outputs is None else outputs
             if not any(relative == out or _is_below(relative, out) for out in outputs):
                 raise DataError(
-                    f"source {given!r} does not exist in {root} and no stage in the host's "
-                    "dvc.yaml files writes it; check the path, or add the stage that "
+                    f"source {given!r} does not exist in {root} and no stage or .dvc file "
+                    "of the host declares it; check the path, or add the stage that "
                     "produces it first"
                 )
         resolved.append(relative.as_posix())
