@@ -48,6 +48,7 @@ __all__ = [
 LOG_DIR = PIPELINE_DIR / "logs"
 
 _UNSAFE_FILE_CHARS = re.compile(r"[^A-Za-z0-9@._=+-]")
+_STAGE_ERROR = re.compile(r"^retrograde \w+: error: (.*)$", re.M)
 
 
 def log_path_for(host: Path, stage_name: str) -> Path:
@@ -135,13 +136,28 @@ def run_stages_in_parallel(
     if failures:
         first = failures[0]
         result = results[first]
-        reason = last_error_line(f"{result.stdout}\n{result.stderr}")
+        reason = _failure_reason(f"{result.stdout}\n{result.stderr}")
         not_started = len(names) - len(results)
         raise FitError(
             f"stage {first!r} failed with exit status {result.returncode} "
             f"({len(failures)} of {len(results)} finished stages failed, "
             f"{not_started} not started): {reason}; see {log_path_for(host, first)}"
         )
+
+
+def _failure_reason(output: str) -> str:
+    """The stage's own one-line error (retrograde stages print ``retrograde <stage>: error:
+    ...``) when there is one, else DVC's last error line.
+
+    Examples
+    --------
+    >>> _failure_reason("retrograde fit: error: cell x diverged; see fit.log\\nERROR: failed")
+    'cell x diverged; see fit.log'
+    >>> _failure_reason("ERROR: failed to reproduce 'x': exited with 3")
+    "ERROR: failed to reproduce 'x': exited with 3"
+    """
+    ours = _STAGE_ERROR.findall(output)
+    return ours[-1].strip() if ours else last_error_line(output)
 
 
 def _repro_one(repo: HostRepo, name: str, pull: bool) -> CompletedProcess[str]:
