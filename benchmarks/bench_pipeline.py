@@ -23,6 +23,9 @@ printing the table). **DVC's share** = (``dvc repro`` wall - stage commands' wal
 DVC's start-up, hashing, lock files, cache checkouts. A stage's wall includes its own
 interpreter start-up and imports, counted as ours.
 
+Which stages ran is read from DVC's own ``Running stage`` lines, which ``run`` keeps in
+``pipelines/retrograde/logs/run.log``.
+
 Run: ``python benchmarks/bench_pipeline.py [--quick] [--out PATH]``.
 """
 
@@ -38,6 +41,8 @@ from pathlib import Path
 from typing import Any
 
 import _common
+
+from retrograde.commands.run import parse_repro_line
 
 CORPUS_BYTES = 300_000
 STUDY = """\
@@ -122,9 +127,10 @@ def timed_run(host: Path, shim: Path, log: Path, overrides: list[str]) -> dict[s
     seconds = split_log(log.read_text().splitlines())
     dvc_total = seconds.pop("dvc", 0.0)
     stages = sum(seconds.values())
-    ran = [
-        line.split()[1] for line in result.stderr.splitlines() if line.strip().startswith("ran ")
-    ]
+    # What ran, from DVC's own "Running stage" lines, which `run` keeps in logs/run.log.
+    repro_log = host / "pipelines" / "retrograde" / "logs" / "run.log"
+    events = [parse_repro_line(line) for line in repro_log.read_text().splitlines()]
+    ran = [event[1] for event in events if event is not None and event[0] == "ran"]
     return {
         "total_seconds": total,
         "dvc_repro_seconds": dvc_total,
