@@ -22,6 +22,7 @@ on, and :func:`render_dvc_yaml`, which writes the per-source ``units`` stages.
 from __future__ import annotations
 
 import argparse
+import json
 import os
 import re
 import sys
@@ -146,8 +147,6 @@ def _quote_path_line(line: str) -> str:
     # A dependency path may hold spaces or YAML punctuation; JSON quoting is valid YAML.
     match = re.match(r"^(      - )(.+)$", line)
     if match and not re.fullmatch(r"[A-Za-z0-9_./-]+", match.group(2)):
-        import json
-
         return match.group(1) + json.dumps(match.group(2))
     return line
 
