@@ -58,3 +58,14 @@ def test_ragged_sums_positions_and_row_ids():
     assert r.sums().tolist() == [3.0, 0.0, 3.0]
     assert r.positions().tolist() == [0, 1, 0]
     assert r.row_ids().tolist() == [0, 0, 2]
+
+
+def test_write_npz_is_byte_identical_and_loads_without_pickle(tmp_path):
+    from retrograde._io import write_npz
+
+    arrays = {"b": np.arange(3), "a": np.ones((2, 2))}
+    write_npz(tmp_path / "one.npz", arrays)
+    write_npz(tmp_path / "two.npz", dict(reversed(list(arrays.items()))))
+    assert (tmp_path / "one.npz").read_bytes() == (tmp_path / "two.npz").read_bytes()
+    with np.load(tmp_path / "one.npz", allow_pickle=False) as data:
+        assert sorted(data.files) == ["a", "b"] and data["b"].tolist() == [0, 1, 2]

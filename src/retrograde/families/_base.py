@@ -24,7 +24,7 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from .._io import atomic_dir
+from .._io import atomic_dir, write_npz
 from ..errors import DataError, FitError
 from ..sequences import Ragged, SequenceSet
 
@@ -96,7 +96,7 @@ class Family(ABC):
         raise NotImplementedError
 
     def _save_state(self, folder: Path) -> None:
-        np.savez(folder / "state.npz", **self._get_state())  # type: ignore[arg-type]
+        write_npz(folder / "state.npz", self._get_state())
 
     def _load_state(self, folder: Path) -> None:
         with np.load(folder / "state.npz", allow_pickle=False) as data:

@@ -38,6 +38,7 @@ from typing import Any, ClassVar
 
 import numpy as np
 
+from .._io import write_npz
 from .._validation import check_float
 from ..sequences import Ragged, SequenceSet
 from . import registry
@@ -201,7 +202,7 @@ class CommandFamily(Family):
             for split, units in (("train", self.train_), ("valid", self.valid_)):
                 state[f"{split}_tokens"] = units.tokens
                 state[f"{split}_offsets"] = units.offsets
-        np.savez(folder / "state.npz", **state)  # type: ignore[arg-type]
+        write_npz(folder / "state.npz", state)
 
     def _load_state(self, folder: Path) -> None:
         with np.load(folder / "state.npz", allow_pickle=False) as data:

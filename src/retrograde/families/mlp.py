@@ -17,11 +17,10 @@ from __future__ import annotations
 
 import math
 from collections.abc import Iterator, Sequence
-from typing import Any, ClassVar
+from typing import TYPE_CHECKING, Any, ClassVar
 
 import numpy as np
 import scipy.sparse
-from sklearn.neural_network import MLPClassifier
 from threadpoolctl import threadpool_limits
 from tqdm.auto import tqdm
 
@@ -31,6 +30,9 @@ from ..sequences import Ragged, SequenceSet
 from . import registry
 from ._base import Family
 from ._events import unit_events
+
+if TYPE_CHECKING:  # scikit-learn takes ~3 s to import: only fit() needs it
+    from sklearn.neural_network import MLPClassifier
 
 __all__ = ["MLP", "PROBABILITY_FLOOR"]
 
@@ -162,6 +164,8 @@ class MLP(Family):
             self._check_units(valid)
             valid_features, valid_outcomes, _ = self._features(valid)
             valid_data = (valid_features, valid_outcomes, len(valid.tokens))
+        from sklearn.neural_network import MLPClassifier
+
         classifier = MLPClassifier(
             hidden_layer_sizes=(self.hidden,) * self.layers,
             learning_rate_init=self.lr,
