@@ -411,3 +411,29 @@ def test_on_sparse_linear_gf2_forward_nears_the_floor_while_reverse_stays_clearl
         excess[name] = nll.mean() / floor.mean() - 1
     assert excess["forward"] < GF2_FORWARD_EXCESS_AT_MOST, excess
     assert excess["reverse"] > excess["forward"] + GF2_GAP_AT_LEAST, excess
+
+
+@needs_torch
+def test_context_and_capacity_sweeps_expand_into_valid_torch_models_that_fit():
+    from retrograde._plugin_checks import _check_models
+    from retrograde.config import expand_sweeps
+
+    small = {"epochs": 1, "batch_size": 8, "progress": False}
+    study = {
+        "models": {
+            "tf": {"family": "transformer", "params": {"width": 8, "heads": 2, **small}},
+            "rnn": {"family": "gru", "params": {"embedding": 4, **small}},
+        },
+        "sweeps": {
+            "context": {"model": "tf", "parameter": "context", "values": [2, 6]},
+            "capacity": {"model": "rnn", "parameter": "hidden", "values": [4, 16]},
+        },
+    }
+    models = expand_sweeps(study)["models"]
+    _check_models(models)  # the compose-time checks of every expanded model
+    train = _units(20, 3, 9, 0)
+    for name, value, attribute in (("tf_context2", 2, "context"), ("rnn_hidden16", 16, "hidden")):
+        entry = models[name]
+        model = families.make(entry["family"], **entry["params"]).fit(train, seed=0)
+        assert getattr(model, attribute) == value
+        assert len(model.logprobs(train)[0]) == len(train[0]) + 1
