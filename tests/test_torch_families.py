@@ -20,12 +20,12 @@ import retrograde.families as families
 from retrograde.errors import ConfigError, MissingDependencyError
 from retrograde.families import _torch_common
 from retrograde.families._torch_common import (
+    TRAINING_DEFAULTS,
     learning_rate,
     make_stream,
     make_windows,
     prediction_windows,
 )
-from retrograde.families._torch_family import TRAINING_DEFAULTS
 from retrograde.sequences import SequenceSet
 
 TORCH_FAMILIES = ["gru", "lstm", "transformer"]

@@ -28,6 +28,7 @@ A network sees at most ``context`` positions at once.
 from __future__ import annotations
 
 import contextlib
+import copy
 import math
 from collections.abc import Iterator
 from dataclasses import dataclass
@@ -41,6 +42,8 @@ from ..sequences import SequenceSet
 
 __all__ = [
     "Stream",
+    "TRAINING_DEFAULTS",
+    "TrainingRun",
     "Windows",
     "batches",
     "import_torch",
@@ -52,6 +55,24 @@ __all__ = [
 ]
 
 TORCH_HINT = "pip install torch==2.13.0 && pip install 'retrograde[torch]'"
+
+#: training parameters shared by every torch family, with their defaults
+TRAINING_DEFAULTS: dict[str, Any] = {
+    "context": 128,  # positions a network sees at once
+    "stride": None,  # scoring stride in positions; None means context // 2
+    "batch_size": 32,  # windows per optimizer step
+    "epochs": 20,  # most passes over the training windows (ignored with token_budget)
+    "lr": 3e-3,  # peak learning rate
+    "weight_decay": 0.01,
+    "warmup": 0.05,  # fraction of the planned steps spent warming up
+    "min_lr_ratio": 0.1,  # cosine decay ends at min_lr_ratio * lr
+    "grad_clip": 1.0,  # largest global gradient norm
+    "patience": 3,  # epochs without validation gain before stopping; 0 never stops
+    "token_budget": None,  # train on exactly this many target positions
+    "threads": 1,
+    "bf16": False,
+    "progress": True,  # tqdm bar on a terminal, with tokens/s
+}
 
 
 def import_torch(family: str) -> ModuleType:
@@ -232,10 +253,31 @@ def learning_rate(
     return peak * (min_ratio + (1.0 - min_ratio) * 0.5 * (1.0 + math.cos(math.pi * progress)))
 
 
-def check_threads_and_bf16(torch: ModuleType, owner: str, bf16: Any) -> None:
+def check_bf16(torch: ModuleType, owner: str, bf16: Any) -> None:
     """bf16 autocast is refused (one line) on CPUs without native bfloat16 support."""
     if bf16 and not bf16_supported(torch):
         raise ConfigError(
             f"{owner}: parameter bf16=True is invalid on this CPU (no native bfloat16 "
             "support: needs AVX512-BF16 or AMX); allowed: False"
         )
+
+
+@dataclass
+class TrainingRun:
+    """Mutable state of one fit: optimizer, schedule, counters, best validation weights."""
+
+    optimizer: Any
+    total_steps: int
+    warmup_steps: int
+    step: int = 0
+    tokens_seen: int = 0  # target positions trained on so far
+    best_valid: float = math.inf
+    best_state: dict[str, Any] | None = None
+    stale_epochs: int = 0
+
+    def remember_if_best(self, valid_bits: float, network: Any) -> None:
+        if valid_bits < self.best_valid:
+            self.best_valid, self.stale_epochs = valid_bits, 0
+            self.best_state = copy.deepcopy(network.state_dict())
+        else:
+            self.stale_epochs += 1

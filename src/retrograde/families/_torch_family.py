@@ -8,7 +8,6 @@ threads, bf16 autocast and the window scheme of :mod:`._torch_common` — lives 
 
 from __future__ import annotations
 
-import copy
 import math
 import time
 from collections.abc import Iterator, Sequence
@@ -25,9 +24,10 @@ from ..sequences import Ragged, SequenceSet
 from ._base import Family
 from ._torch_common import (
     Stream,
+    TrainingRun,
     Windows,
     batches,
-    check_threads_and_bf16,
+    check_bf16,
     import_torch,
     learning_rate,
     make_stream,
@@ -36,25 +36,7 @@ from ._torch_common import (
     torch_session,
 )
 
-__all__ = ["TRAINING_DEFAULTS", "TorchFamily"]
-
-#: training parameters shared by every torch family, with their defaults
-TRAINING_DEFAULTS: dict[str, Any] = {
-    "context": 128,  # positions a network sees at once
-    "stride": None,  # scoring stride in positions; None means context // 2
-    "batch_size": 32,  # windows per optimizer step
-    "epochs": 20,  # most passes over the training windows (ignored with token_budget)
-    "lr": 3e-3,  # peak learning rate
-    "weight_decay": 0.01,
-    "warmup": 0.05,  # fraction of the planned steps spent warming up
-    "min_lr_ratio": 0.1,  # cosine decay ends at min_lr_ratio * lr
-    "grad_clip": 1.0,  # largest global gradient norm
-    "patience": 3,  # epochs without validation gain before stopping; 0 never stops
-    "token_budget": None,  # train on exactly this many target positions
-    "threads": 1,
-    "bf16": False,
-    "progress": True,  # tqdm bar on a terminal, with tokens/s
-}
+__all__ = ["TorchFamily"]
 
 # Scoring batches are capped so a batch's logits stay near 2**24 numbers (128 MB as float64).
 _LOGIT_BUDGET = 2**24
@@ -104,7 +86,7 @@ class TorchFamily(Family):
         for key in ("bf16", "progress"):
             if not isinstance(p[key], bool):
                 raise invalid(owner, key, p[key], "True or False")
-        check_threads_and_bf16(import_torch(self.name), owner, p["bf16"])
+        check_bf16(import_torch(self.name), owner, p["bf16"])
         self._validate_network(owner, p)
 
     def _validate_network(self, owner: str, params: dict[str, Any]) -> None:
@@ -136,6 +118,15 @@ class TorchFamily(Family):
             self._train(torch, train, valid, np.random.default_rng(seed))
         return self
 
+    def _plan(self, n_windows: int, n_positions: int) -> tuple[int, int]:
+        """(planned optimizer steps, most epochs) for the schedule and the epoch loop."""
+        steps_per_epoch = math.ceil(n_windows / int(self.batch_size))
+        if self.token_budget is None:
+            return int(self.epochs) * steps_per_epoch, int(self.epochs)
+        # Forward and reverse splits have the same window lengths, hence the same plan.
+        epochs_needed = self.token_budget / n_positions
+        return math.ceil(epochs_needed * steps_per_epoch), math.ceil(epochs_needed)
+
     def _train(
         self,
         torch: ModuleType,
@@ -144,96 +135,89 @@ class TorchFamily(Family):
         rng: np.random.Generator,
     ) -> None:
         stream = make_stream(train, self.vocab_size_)
-        windows = make_windows(
-            np.diff(stream.offsets), context=int(self.context), stride=int(self.context)
-        )
-        steps_per_epoch = math.ceil(len(windows) / int(self.batch_size))
-        budget = self.token_budget
-        if budget is None:
-            total_steps, max_epochs = int(self.epochs) * steps_per_epoch, int(self.epochs)
-        else:
-            # Forward and reverse splits have the same window lengths, hence the same plan.
-            epochs_needed = budget / stream.n_positions
-            total_steps, max_epochs = (
-                math.ceil(epochs_needed * steps_per_epoch),
-                math.ceil(epochs_needed),
-            )
-        warmup_steps = round(float(self.warmup) * total_steps)
-        network = self.network_
-        optimizer = torch.optim.AdamW(
-            network.parameters(), lr=float(self.lr), weight_decay=float(self.weight_decay)
+        context = int(self.context)
+        windows = make_windows(np.diff(stream.offsets), context=context, stride=context)
+        total_steps, max_epochs = self._plan(len(windows), stream.n_positions)
+        run = TrainingRun(
+            optimizer=torch.optim.AdamW(
+                self.network_.parameters(), lr=float(self.lr), weight_decay=float(self.weight_decay)
+            ),
+            total_steps=total_steps,
+            warmup_steps=round(float(self.warmup) * total_steps),
         )
         self.learning_curve_ = []
-        best_valid, best_state, stale_epochs, step, tokens_seen = math.inf, None, 0, 0, 0
         started = time.perf_counter()
         bar = tqdm(
-            total=budget or max_epochs * stream.n_positions,
+            total=self.token_budget or max_epochs * stream.n_positions,
             unit="tok",
             unit_scale=True,
             desc=f"{self.name} fit",
             disable=None if self.progress else True,
         )
         for epoch in range(1, max_epochs + 1):
-            network.train()
-            order = rng.permutation(len(windows))
-            epoch_nats, epoch_positions = 0.0, 0
-            for first in range(0, len(order), int(self.batch_size)):
-                inputs, targets, _, owned = batches(
-                    stream, windows, order[first : first + int(self.batch_size)]
-                )
-                if budget is not None and tokens_seen + int(owned.sum()) > budget:
-                    # Keep exactly the positions the budget has left, in row-major order.
-                    owned &= np.cumsum(owned).reshape(owned.shape) <= budget - tokens_seen
-                step += 1
-                for group in optimizer.param_groups:
-                    group["lr"] = learning_rate(
-                        step,
-                        total_steps=total_steps,
-                        peak=float(self.lr),
-                        warmup_steps=warmup_steps,
-                        min_ratio=float(self.min_lr_ratio),
-                    )
-                nats = self._train_step(torch, optimizer, inputs, targets, owned)
-                n_owned = int(owned.sum())
-                epoch_nats, epoch_positions, tokens_seen = (
-                    epoch_nats + nats,
-                    epoch_positions + n_owned,
-                    tokens_seen + n_owned,
-                )
-                bar.update(n_owned)
-                if budget is not None and tokens_seen >= budget:
-                    break
+            train_nats, train_positions = self._train_epoch(
+                torch, run, stream, windows, rng.permutation(len(windows)), bar
+            )
             record = {
                 "epoch": epoch,
-                "train_nats_per_position": epoch_nats / max(epoch_positions, 1),
-                "tokens_seen": tokens_seen,
-                "lr": optimizer.param_groups[0]["lr"],
+                "train_nats_per_position": train_nats / max(train_positions, 1),
+                "tokens_seen": run.tokens_seen,
+                "lr": run.optimizer.param_groups[0]["lr"],
             }
             if valid is not None:
-                valid_bits = self._bits_per_token(valid)
-                record["valid_bits_per_token"] = valid_bits
-                bar.set_postfix(valid_bits_per_token=f"{valid_bits:.4f}")
-                if valid_bits < best_valid:
-                    best_valid, best_state, stale_epochs = (
-                        valid_bits,
-                        copy.deepcopy(network.state_dict()),
-                        0,
-                    )
-                else:
-                    stale_epochs += 1
+                record["valid_bits_per_token"] = self._bits_per_token(valid)
+                bar.set_postfix(valid_bits_per_token=f"{record['valid_bits_per_token']:.4f}")
+                run.remember_if_best(record["valid_bits_per_token"], self.network_)
             self.learning_curve_.append(record)
-            if budget is not None and tokens_seen >= budget:
+            if self.token_budget is not None and run.tokens_seen >= self.token_budget:
                 break
             # Early stopping would end runs after unequal compute, so a budget disables it.
-            if budget is None and int(self.patience) and stale_epochs >= int(self.patience):
+            if self.token_budget is None and 0 < int(self.patience) <= run.stale_epochs:
                 break
         bar.close()
-        if best_state is not None:
-            network.load_state_dict(best_state)
+        if run.best_state is not None:
+            self.network_.load_state_dict(run.best_state)
         # Wall-clock figures stay out of learning_curve_, which must be deterministic.
         self.fit_seconds_ = time.perf_counter() - started
-        self.tokens_per_second_ = tokens_seen / max(self.fit_seconds_, 1e-9)
-        self.tokens_seen_ = tokens_seen
+        self.tokens_per_second_ = run.tokens_seen / max(self.fit_seconds_, 1e-9)
+        self.tokens_seen_ = run.tokens_seen
+
+    def _train_epoch(
+        self,
+        torch: ModuleType,
+        run: TrainingRun,
+        stream: Stream,
+        windows: Windows,
+        order: np.ndarray,
+        bar: Any,
+    ) -> tuple[float, int]:
+        """One pass over the windows in ``order``; returns (summed nats, positions trained)."""
+        self.network_.train()
+        epoch_nats, epoch_positions = 0.0, 0
+        budget = self.token_budget
+        for first in range(0, len(order), int(self.batch_size)):
+            chosen = order[first : first + int(self.batch_size)]
+            inputs, targets, _, owned = batches(stream, windows, chosen)
+            if budget is not None and run.tokens_seen + int(owned.sum()) > budget:
+                # Keep exactly the positions the budget has left, in row-major order.
+                owned &= np.cumsum(owned).reshape(owned.shape) <= budget - run.tokens_seen
+            run.step += 1
+            for group in run.optimizer.param_groups:
+                group["lr"] = learning_rate(
+                    run.step,
+                    total_steps=run.total_steps,
+                    peak=float(self.lr),
+                    warmup_steps=run.warmup_steps,
+                    min_ratio=float(self.min_lr_ratio),
+                )
+            epoch_nats += self._train_step(torch, run.optimizer, inputs, targets, owned)
+            n_owned = int(owned.sum())
+            epoch_positions += n_owned
+            run.tokens_seen += n_owned
+            bar.update(n_owned)
+            if budget is not None and run.tokens_seen >= budget:
+                break
+        return epoch_nats, epoch_positions
 
     def _train_step(
         self,
