@@ -225,13 +225,18 @@ def test_sinusoidal_positions_follow_the_published_formula():
 # ---------------------------------------------------------------------------- training
 @needs_torch
 @pytest.mark.parametrize("name", TORCH_FAMILIES)
-def test_two_fits_with_the_same_seed_and_threads_give_identical_scores(name):
+def test_two_fits_with_the_same_seed_and_threads_give_identical_scores_and_files(name, tmp_path):
     train, test = _units(40, 4, 12, 0), _units(10, 4, 12, 1)
-    first = _small(name, dropout=0.1, threads=2).fit(train, test, seed=7).logprobs(test)
-    second = _small(name, dropout=0.1, threads=2).fit(train, test, seed=7).logprobs(test)
-    other_seed = _small(name, dropout=0.1, threads=2).fit(train, test, seed=8).logprobs(test)
+    models = [_small(name, dropout=0.1, threads=2).fit(train, test, seed=s) for s in (7, 7, 8)]
+    first, second, other_seed = (model.logprobs(test) for model in models)
     np.testing.assert_array_equal(first.values, second.values)
     assert not np.array_equal(first.values, other_seed.values)
+    for index in (0, 1):
+        models[index].save(tmp_path / str(index))
+    for file_name in ("weights.pt", "family.json"):  # DVC sees an unchanged output
+        assert (tmp_path / "0" / file_name).read_bytes() == (
+            tmp_path / "1" / file_name
+        ).read_bytes()
 
 
 @needs_torch
