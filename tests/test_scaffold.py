@@ -84,6 +84,20 @@ def test_git_itself_ignores_the_parallel_logs_but_not_the_stage_file(host, capsy
     assert result.returncode == 1  # git check-ignore's documented status for "not ignored"
 
 
+def test_dvc_itself_leaves_the_gitignore_files_it_writes_out_of_folder_hashes(host, capsys):
+    _init(capsys)
+    written_by_dvc = "pipelines/retrograde/data/corpus/orders/.gitignore"
+    # Outside reference: DVC's own `dvc check-ignore` (exit 0 and the path when ignored).
+    assert sh([*DVC, "check-ignore", written_by_dvc], host).strip() == written_by_dvc
+    result = subprocess.run(
+        [*DVC, "check-ignore", "pipelines/retrograde/data/corpus/orders/reverse"],
+        cwd=host,
+        capture_output=True,
+        check=False,
+    )
+    assert result.returncode == 1  # the outputs themselves are still seen
+
+
 def test_init_twice_writes_nothing_the_second_time(host, capsys):
     _init(capsys)
     before = snapshot(host)
@@ -224,8 +238,8 @@ def test_install_reports_written_and_unchanged_paths(host):
     files = planned_files()
     first = install(find_host(host), files)
     second = install(find_host(host), files)
-    assert len(first.written) == len(files) + 1  # + the ignore file
-    assert second.written == [] and len(second.unchanged) == len(files) + 1
+    assert len(first.written) == len(files) + 2  # + .gitignore and .dvcignore
+    assert second.written == [] and len(second.unchanged) == len(files) + 2
 
 
 def test_source_config_keeps_the_package_header_and_other_keys():

@@ -33,11 +33,12 @@ from tqdm import tqdm
 from ._io import atomic_write_text
 from ._validation import check_int
 from .errors import FitError
-from .hostrepo import PIPELINE_DIR, HostRepo, dvc_argv, last_error_line, run_tool
+from .hostrepo import DVC_FILE, PIPELINE_DIR, HostRepo, dvc_argv, last_error_line, run_dvc, run_tool
 
 __all__ = [
     "LOG_DIR",
     "log_path_for",
+    "normalize_lock_order",
     "order_lock_entries",
     "ordered_keys",
     "repro_argv",
@@ -190,6 +191,24 @@ def ordered_keys(keys: Sequence[str], names: Sequence[str]) -> list[str]:
             out.extend(wanted)  # the first moved key's slot takes the whole group
             wanted = []
     return out
+
+
+def normalize_lock_order(host: Path) -> None:
+    """Put every entry of ``pipelines/retrograde/dvc.lock`` in the stage file's order.
+
+    DVC records stages in the order it happens to run them, which depends on the targets it
+    was given (``run --jobs`` reproduces ``reorder`` first, then the fits, then the rest) and
+    is not promised to be stable. Ordering the entries as ``dvc stage list`` lists the stages
+    (declaration order, matrix items in matrix order) makes ``dvc.lock`` the same bytes
+    whatever ``jobs`` was. Entries for stages no longer declared stay where they are.
+    """
+    repo = HostRepo(root=Path(host), git_root=Path(host))
+    lock_path = repo.dvc_file.with_name("dvc.lock")
+    if not lock_path.is_file():
+        return
+    listed = run_dvc(repo.root, ["stage", "list", "--name-only", DVC_FILE.as_posix()])
+    names = [line.strip().rpartition(":")[2] for line in listed.stdout.splitlines()]
+    order_lock_entries(lock_path, [name for name in names if name])
 
 
 def order_lock_entries(lock_path: Path, names: Sequence[str]) -> None:

@@ -11,8 +11,9 @@ function of the package data and the ``--source`` paths; :func:`install` then wr
 - an existing file with identical content is left alone, so running ``init`` twice is a
   no-op; an existing file with other content stops everything, before anything is written,
   unless ``force`` is given;
-- ignore rules are *added* to ``pipelines/retrograde/.gitignore`` (DVC appends its own
-  entries to the same file, so it is merged line by line, never compared whole).
+- ignore rules are *added* to ``pipelines/retrograde/.gitignore`` and ``.dvcignore``
+  (DVC appends its own entries to the first, a user may add to either, so they are merged
+  line by line, never compared whole).
 
 The region of the stage file between ``# >>>`` and ``# <<<`` marker lines belongs to
 ``retrograde run`` (it writes one ``units`` stage per source there), so a stage file that
@@ -37,6 +38,8 @@ from .errors import HostRepoError
 from .hostrepo import CONF_DIR, DVC_FILE, PIPELINE_DIR, HostRepo
 
 __all__ = [
+    "DVCIGNORE",
+    "DVCIGNORE_RULES",
     "GITIGNORE",
     "IGNORE_RULES",
     "SOURCE_CONFIG",
@@ -53,6 +56,23 @@ GITIGNORE = PIPELINE_DIR / ".gitignore"
 #: Lines init makes sure are in :data:`GITIGNORE`: per-stage logs of ``run --jobs`` and
 #: leftovers of interrupted atomic writes (``.name.XXXX.tmp``, ``.name.old``).
 IGNORE_RULES = ("/logs/", ".*.tmp", ".*.old")
+#: DVC's ignore file for the pipeline folder, relative to the host root.
+DVCIGNORE = PIPELINE_DIR / ".dvcignore"
+#: Lines init makes sure are in :data:`DVCIGNORE`. DVC writes a ``.gitignore`` next to each
+#: output, one line per output in the order stages finish; the ``table`` stage hashes the
+#: whole ``data/`` and ``cells/`` folders, so without this rule its recorded inputs (and
+#: ``dvc.lock``) would depend on ``run --jobs`` timing (measured with DVC 3.67.1).
+DVCIGNORE_RULES = (".gitignore",)
+
+#: (file, rules, comment) for every file init merges lines into rather than replaces.
+_MERGED = (
+    (
+        GITIGNORE,
+        IGNORE_RULES,
+        "# retrograde: logs of `run --jobs` and leftovers of interrupted writes",
+    ),
+    (DVCIGNORE, DVCIGNORE_RULES, "# retrograde: keep DVC's .gitignore files out of folder hashes"),
+)
 
 #: The packaged source config that ``--source`` paths are written into (the default source).
 SOURCE_CONFIG = CONF_DIR / "source" / "corpus.yaml"
@@ -170,30 +190,36 @@ def install(
                     "written; rerun with --force to overwrite it (and every other changed file)"
                 )
         to_write[relative] = content
-    ignore_target = _checked_target(root, GITIGNORE)
-    existing = ignore_target.read_bytes() if ignore_target.is_file() else None
-    merged = _merge_ignore(existing)
-    if merged != existing:
-        to_write[GITIGNORE] = merged
-    else:
-        result.unchanged.append(GITIGNORE)
+    for relative, rules, comment in _MERGED:
+        target = _checked_target(root, relative)
+        existing = target.read_bytes() if target.is_file() else None
+        merged = _merge_lines(existing, rules, comment)
+        if merged != existing:
+            to_write[relative] = merged
+        else:
+            result.unchanged.append(relative)
     for relative, content in to_write.items():
         atomic_write_bytes(root / relative, content)
         result.written.append(relative)
     return result
 
 
-def _merge_ignore(existing: bytes | None) -> bytes:
-    """``existing`` with every rule of :data:`IGNORE_RULES` it lacks appended."""
+def _merge_lines(existing: bytes | None, rules: Sequence[str], comment: str) -> bytes:
+    """``existing`` with every line of ``rules`` it lacks appended under ``comment``.
+
+    Examples
+    --------
+    >>> _merge_lines(b"/plots", ("/logs/", "/plots"), "# ours").decode()
+    '/plots\\n# ours\\n/logs/\\n'
+    """
     text = "" if existing is None else existing.decode("utf-8")
     have = {line.strip() for line in text.splitlines()}
-    missing = [rule for rule in IGNORE_RULES if rule not in have]
+    missing = [rule for rule in rules if rule not in have]
     if not missing:
         return text.encode("utf-8")
     if text and not text.endswith("\n"):
         text += "\n"
-    block = "# retrograde: logs of `run --jobs` and leftovers of interrupted writes\n"
-    return (text + block + "".join(f"{rule}\n" for rule in missing)).encode("utf-8")
+    return (text + comment + "\n" + "".join(f"{rule}\n" for rule in missing)).encode("utf-8")
 
 
 def _same(relative: PurePosixPath, existing: bytes, planned: bytes) -> bool:

@@ -203,6 +203,9 @@ def run(args: argparse.Namespace) -> int:
             names = [fit_stage_name(*cell) for cell in cells]
             run_stages_in_parallel(host.root, names, jobs, pull=args.pull)
         events = _repro(host, target, pull=args.pull, total=total)
+    from ..parallel import normalize_lock_order
+
+    normalize_lock_order(host.root)  # dvc.lock in stage-file order, whatever --jobs was
     print(
         f"retrograde: {len(events['ran'])} stages ran, {len(events['restored'])} restored "
         f"from the run-cache, {len(events['unchanged'])} unchanged",
