@@ -33,6 +33,7 @@ def test_find_host_from_a_subfolder_returns_the_folder_dvc_itself_calls_root(tmp
     assert (sub / sh([*DVC, "root"], sub).strip()).resolve() == found.root
 
 
+@pytest.mark.slow  # two DVC inits from scratch
 def test_a_folder_above_a_dvc_subdir_project_is_not_a_host(tmp_path):
     monorepo = tmp_path / "mono"
     git_init(monorepo)
@@ -43,6 +44,7 @@ def test_a_folder_above_a_dvc_subdir_project_is_not_a_host(tmp_path):
         find_host(project.parent)
 
 
+@pytest.mark.slow  # two DVC inits from scratch
 def test_find_host_inside_a_dvc_subdir_project_stops_at_that_project(tmp_path):
     monorepo = tmp_path / "mono"
     git_init(monorepo)
