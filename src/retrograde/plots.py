@@ -8,15 +8,15 @@ files hold the plotted numbers in long form for ``dvc plots``.
 
 from __future__ import annotations
 
-import csv
-import io
-from collections.abc import Mapping, Sequence
+from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 from matplotlib.ticker import MaxNLocator
+
+from ._plot_data import csv_text, curve_rows, gap_rows, profile_rows, scored, sweep_rows
 
 __all__ = [
     "curve_rows",
@@ -58,24 +58,6 @@ def _grid(n_panels: int, width: float = 5.0, height: float = 3.6) -> tuple[Figur
 
 
 # ----------------------------------------------------------------------- gaps
-
-
-def gap_rows(table: Mapping[str, Any]) -> list[dict[str, Any]]:
-    """Long-form rows: source, model, order, gap_pct, gap_pct_low, gap_pct_high, bits."""
-    return [
-        {
-            "source": source,
-            "model": model,
-            "order": order,
-            "gap_pct": leaf["gap_pct"],
-            "gap_pct_low": leaf["gap_pct_low"],
-            "gap_pct_high": leaf["gap_pct_high"],
-            "bits_per_token": leaf["bits_per_token"],
-        }
-        for source, models in table.items()
-        for model, orders in models.items()
-        for order, leaf in orders.items()
-    ]
 
 
 def gap_figure(table: Mapping[str, Any]) -> Figure:
@@ -132,33 +114,6 @@ def gap_figure(table: Mapping[str, Any]) -> Figure:
 # ------------------------------------------------------------ learning curves
 
 
-def curve_rows(curves: Mapping[str, Any]) -> list[dict[str, Any]]:
-    """Long-form rows: source, model, order, seed (index), epoch, valid_bits_per_token."""
-    return [
-        {
-            "source": source,
-            "model": model,
-            "order": order,
-            "seed": seed_index,
-            "epoch": point["epoch"],
-            "valid_bits_per_token": point["valid_bits_per_token"],
-        }
-        for source, models in curves.items()
-        for model, orders in models.items()
-        for order, per_seed in orders.items()
-        for seed_index, curve in enumerate(per_seed)
-        for point in _scored(curve)
-    ]
-
-
-def _scored(curve: Sequence[Mapping[str, Any]]) -> list[Mapping[str, Any]]:
-    """The epochs of a learning curve that have a validation score (fits without a validation
-    split, or epochs that skipped it, have none)."""
-    return [
-        p for p in curve if p.get("epoch") is not None and p.get("valid_bits_per_token") is not None
-    ]
-
-
 def learning_curve_figure(curves: Mapping[str, Any]) -> Figure:
     """One panel per (source, model): validation bits per token per epoch, a style per order."""
     panels = [(s, m, orders) for s, models in curves.items() for m, orders in models.items()]
@@ -167,7 +122,7 @@ def learning_curve_figure(curves: Mapping[str, Any]) -> Figure:
         for index, (order, per_seed) in enumerate(orders.items()):
             style = _style(index)
             for seed_index, all_epochs in enumerate(per_seed):
-                curve = _scored(all_epochs)
+                curve = scored(all_epochs)
                 ax.plot(
                     [p["epoch"] for p in curve],
                     [p["valid_bits_per_token"] for p in curve],
@@ -187,26 +142,6 @@ def learning_curve_figure(curves: Mapping[str, Any]) -> Figure:
 
 
 # ----------------------------------------------------------- position profile
-
-
-def profile_rows(profiles: Mapping[str, Any]) -> list[dict[str, Any]]:
-    """Long-form rows: source, model, order, position, bits, diff_bits (None if empty)."""
-    return [
-        {
-            "source": source,
-            "model": model,
-            "order": order,
-            "position": x,
-            "bits": bits,
-            "diff_bits": diff,
-        }
-        for source, models in profiles.items()
-        for model, profile in models.items()
-        for order in profile["bits"]
-        for x, bits, diff in zip(
-            profile["x"], profile["bits"][order], profile["diff_bits"][order], strict=True
-        )
-    ]
 
 
 def profile_figure(profiles: Mapping[str, Any]) -> Figure:
@@ -236,29 +171,6 @@ def profile_figure(profiles: Mapping[str, Any]) -> Figure:
 
 
 # --------------------------------------------------------------------- sweeps
-
-
-def sweep_rows(sweep: Mapping[str, Any], table: Mapping[str, Any]) -> list[dict[str, Any]]:
-    """Long-form rows of one sweep: parameter, value, model, order, gap_pct, low, high.
-
-    The swept parameter's name goes in its own column: it may itself be called ``order``
-    (an n-gram order), which must not collide with the order column.
-    """
-    models = table[sweep["source"]]
-    return [
-        {
-            "parameter": sweep["parameter"],
-            "value": value,
-            "model": model,
-            "order": order,
-            "gap_pct": leaf["gap_pct"],
-            "gap_pct_low": leaf["gap_pct_low"],
-            "gap_pct_high": leaf["gap_pct_high"],
-        }
-        for model, value in sorted(sweep["models"].items(), key=lambda kv: (kv[1], kv[0]))
-        if model in models
-        for order, leaf in models[model].items()
-    ]
 
 
 def sweep_figure(name: str, sweep: Mapping[str, Any], table: Mapping[str, Any]) -> Figure:
@@ -291,14 +203,6 @@ def sweep_figure(name: str, sweep: Mapping[str, Any], table: Mapping[str, Any]) 
 # ---------------------------------------------------------------------- files
 
 
-def _csv_text(rows: Sequence[Mapping[str, Any]], fields: Sequence[str]) -> str:
-    buffer = io.StringIO()
-    writer = csv.DictWriter(buffer, list(fields), lineterminator="\n")
-    writer.writeheader()
-    writer.writerows(rows)
-    return buffer.getvalue()
-
-
 def _save(figure: Figure, folder: Path, name: str, written: list[str]) -> None:
     figure.savefig(folder / name, format="png", metadata=_PNG_METADATA)
     written.append(name)
@@ -323,18 +227,18 @@ def write_plots(
         "gap_pct_high",
         "bits_per_token",
     ]
-    (folder / "gaps.csv").write_text(_csv_text(gap_rows(table), fields))
+    (folder / "gaps.csv").write_text(csv_text(gap_rows(table), fields))
     _save(gap_figure(table), folder, "gaps.png", written)
     if curve_rows(curves):  # families without a validation split have no curve to draw
         fields = ["source", "model", "order", "seed", "epoch", "valid_bits_per_token"]
-        (folder / "learning_curves.csv").write_text(_csv_text(curve_rows(curves), fields))
+        (folder / "learning_curves.csv").write_text(csv_text(curve_rows(curves), fields))
         _save(learning_curve_figure(curves), folder, "learning_curves.png", written)
     if any(profiles.values()):
         fields = ["source", "model", "order", "position", "bits", "diff_bits"]
-        (folder / "position_profile.csv").write_text(_csv_text(profile_rows(profiles), fields))
+        (folder / "position_profile.csv").write_text(csv_text(profile_rows(profiles), fields))
         _save(profile_figure(profiles), folder, "position_profile.png", written)
     for name, sweep in sweeps.items():
         fields = ["parameter", "value", "model", "order", "gap_pct", "gap_pct_low", "gap_pct_high"]
-        (folder / f"sweep_{name}.csv").write_text(_csv_text(sweep_rows(sweep, table), fields))
+        (folder / f"sweep_{name}.csv").write_text(csv_text(sweep_rows(sweep, table), fields))
         _save(sweep_figure(name, sweep, table), folder, f"sweep_{name}.png", written)
     return written
