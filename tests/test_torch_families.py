@@ -377,9 +377,10 @@ def test_without_torch_the_package_imports_and_torch_families_fail_in_one_line()
 
 
 # ------------------------------------------------------------------- calibration source
-# Measured with these settings (shared 2-core machine, 2026-12-02): forward excess over the
-# floor 0.30, reverse 0.50; forward learns the sparse parities only after ~6 epochs, so
-# fewer epochs or units leave both orders near 1 bit per token.
+# Measured with these settings (2026-12-02, about 30 s per fit on an idle core): excess over
+# the floor forward 0.30, reverse 0.50 (seed 1: 0.30, 0.60). The model learns the parities
+# of about two bits within this budget; A has 8 such rows, A^-1 only 4. Much shorter or
+# longer schedules change the margin (docs/torch.md), so the thresholds leave room.
 GF2_TRANSFORMER = dict(
     width=64, layers=2, heads=4, context=21, batch_size=16, epochs=15, patience=0, progress=False
 )
@@ -389,7 +390,7 @@ GF2_GAP_AT_LEAST = 0.10
 
 @needs_torch
 @pytest.mark.slow
-def test_on_sparse_linear_gf2_forward_nears_the_floor_while_reverse_stays_clearly_above():
+def test_on_sparse_linear_gf2_forward_ends_within_40pct_of_the_floor_and_reverse_10_points_above():
     import sympy
 
     from retrograde import orders, sources
