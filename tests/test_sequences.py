@@ -69,3 +69,20 @@ def test_write_npz_is_byte_identical_and_loads_without_pickle(tmp_path):
     assert (tmp_path / "one.npz").read_bytes() == (tmp_path / "two.npz").read_bytes()
     with np.load(tmp_path / "one.npz", allow_pickle=False) as data:
         assert sorted(data.files) == ["a", "b"] and data["b"].tolist() == [0, 1, 2]
+
+
+def test_atomic_writes_give_ordinary_permissions(tmp_path):
+    import os
+    import stat
+
+    from retrograde._io import atomic_dir, atomic_write_text
+
+    mask = os.umask(0o022)
+    try:
+        atomic_write_text(tmp_path / "a.txt", "x")
+        with atomic_dir(tmp_path / "d"):
+            pass
+    finally:
+        os.umask(mask)
+    assert stat.S_IMODE((tmp_path / "a.txt").stat().st_mode) == 0o644
+    assert stat.S_IMODE((tmp_path / "d").stat().st_mode) == 0o755

@@ -27,12 +27,20 @@ __all__ = [
 ]
 
 
+def _umask() -> int:
+    mask = os.umask(0)  # reading the umask means setting it; put it back at once
+    os.umask(mask)
+    return mask
+
+
 def atomic_write_bytes(path: str | os.PathLike[str], data: bytes) -> None:
     """Write ``data`` to ``path`` via a temporary file in the same folder and a rename."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
+        # mkstemp makes the file private (0600); give it the mode a plain open() would.
+        os.chmod(tmp, 0o666 & ~_umask())
         with os.fdopen(fd, "wb") as handle:
             handle.write(data)
         os.replace(tmp, path)
@@ -57,6 +65,7 @@ def atomic_dir(path: str | os.PathLike[str]) -> Iterator[Path]:
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent))
+    os.chmod(tmp, 0o777 & ~_umask())  # mkdtemp makes it private (0700)
     try:
         yield tmp
         if path.exists():
