@@ -443,3 +443,36 @@ def test_context_and_capacity_sweeps_expand_into_valid_torch_models_that_fit():
         model = families.make(entry["family"], **entry["params"]).fit(train, seed=0)
         assert getattr(model, attribute) == value
         assert len(model.logprobs(train)[0]) == len(train[0]) + 1
+
+
+@needs_torch
+def test_every_step_clips_the_global_gradient_norm_to_grad_clip(monkeypatch):
+    original = torch.nn.utils.clip_grad_norm_
+    norms_after = []
+
+    def clip_and_measure(parameters, max_norm, *args, **kwargs):
+        parameters = list(parameters)
+        original(parameters, max_norm, *args, **kwargs)
+        norms_after.append(
+            float(torch.linalg.vector_norm(torch.cat([p.grad.flatten() for p in parameters])))
+        )
+
+    monkeypatch.setattr(torch.nn.utils, "clip_grad_norm_", clip_and_measure)
+    train = _units(24, 4, 10, 0)
+    model = _small("lstm", grad_clip=1e-3, batch_size=8, epochs=2).fit(train, seed=0)
+    n_windows = len(make_windows(train.lengths + 1, context=model.context, stride=model.context))
+    assert len(norms_after) == 2 * math.ceil(n_windows / 8)  # one clip per optimizer step
+    assert max(norms_after) <= 1e-3 * (1 + 1e-5)
+    assert model.learning_curve_[-1]["tokens_seen"] == 2 * (len(train.tokens) + len(train))
+
+
+@needs_torch
+def test_the_fit_stage_accepts_a_torch_model_and_returns_its_test_logprobs():
+    from retrograde.stages.fit import fit_cell
+
+    splits = {"train": _units(30, 4, 9, 0), "valid": _units(8, 4, 9, 1), "test": _units(8, 4, 9, 2)}
+    params = {**families.registry.get("gru")._test_params, "progress": False}
+    model, values, curve = fit_cell({"family": "gru", "params": params}, splits, seed=0)
+    assert values.shape == (len(splits["test"].tokens) + len(splits["test"]),)
+    np.testing.assert_array_equal(values, model.logprobs(splits["test"]).values)
+    assert [record["epoch"] for record in curve] == [1, 2]
