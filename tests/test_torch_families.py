@@ -40,7 +40,7 @@ needs_torch = pytest.mark.skipif(torch is None, reason="torch extra not installe
 
 def _small(name: str, **overrides: object) -> families.Family:
     params = dict(families.registry.get(name)._test_params)  # type: ignore[attr-defined]
-    params.update(progress=False, **overrides)
+    params.update({"progress": False, **overrides})
     return families.make(name, **params)
 
 
@@ -476,3 +476,35 @@ def test_the_fit_stage_accepts_a_torch_model_and_returns_its_test_logprobs():
     assert values.shape == (len(splits["test"].tokens) + len(splits["test"]),)
     np.testing.assert_array_equal(values, model.logprobs(splits["test"]).values)
     assert [record["epoch"] for record in curve] == [1, 2]
+
+
+@needs_torch
+@pytest.mark.parametrize(("progress", "disable"), [(True, None), (False, True)])
+def test_the_progress_bar_counts_tokens_and_shows_only_when_asked_on_a_terminal(
+    monkeypatch, progress, disable
+):
+    from retrograde.families import _torch_family
+
+    bars = []
+
+    class RecordingBar:
+        def __init__(self, **kwargs):
+            self.kwargs, self.counted = kwargs, 0
+            bars.append(self)
+
+        def update(self, n):
+            self.counted += n
+
+        def set_postfix(self, **kwargs):
+            pass
+
+        def close(self):
+            pass
+
+    monkeypatch.setattr(_torch_family, "tqdm", RecordingBar)
+    train = _units(10, 3, 6, 0)
+    _small("gru", progress=progress, epochs=1).fit(train, seed=0)
+    (bar,) = bars
+    assert bar.kwargs["unit"] == "tok"  # tqdm then reports tok/s
+    assert bar.kwargs["disable"] is disable  # None: tqdm hides itself off a terminal
+    assert bar.counted == len(train.tokens) + len(train)
