@@ -105,6 +105,7 @@ class TorchFamily(Family):
         self, train: SequenceSet, valid: SequenceSet | None = None, seed: int = 0
     ) -> TorchFamily:
         self._validate_params()
+        check_int(f"family {self.name!r}", "seed", seed, 0)
         torch = import_torch(self.name)
         if len(train) == 0:
             raise DataError(f"family {self.name!r}: the training split has no units")
@@ -253,8 +254,8 @@ class TorchFamily(Family):
     # --------------------------------------------------------------------- scoring
     def _forward_windows(
         self, stream: Stream, windows: Windows
-    ) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray]]:
-        """Yield (flat positions, owned mask, float64 log-softmax of owned outputs) per batch.
+    ) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+        """Yield (flat positions (n_owned,), float64 log-softmax (n_owned, vocab_size + 1)) per batch.
 
         Always float32 without autocast: bf16 only ever affects training.
         """
@@ -271,7 +272,7 @@ class TorchFamily(Family):
                 inputs, _, flat, owned = batches(stream, windows, order[first : first + batch_size])
                 logits = network(torch.from_numpy(inputs))  # (batch, time, vocab_size + 1)
                 owned_logits = logits[torch.from_numpy(owned)].double()  # (n_owned, vocab_size + 1)
-                yield flat[owned], owned, owned_logits.log_softmax(-1).numpy()
+                yield flat[owned], owned_logits.log_softmax(-1).numpy()
 
     def logprobs(self, units: SequenceSet) -> Ragged:
         self._check_fitted()
@@ -283,7 +284,7 @@ class TorchFamily(Family):
         )
         values = np.zeros(stream.n_positions, dtype=np.float64)
         with torch_session(torch, threads=int(self.threads), seed=0):
-            for positions, _, log_softmax in self._forward_windows(stream, windows):
+            for positions, log_softmax in self._forward_windows(stream, windows):
                 values[positions] = log_softmax[
                     np.arange(len(positions)), stream.targets[positions]
                 ]
@@ -299,7 +300,7 @@ class TorchFamily(Family):
         probs = np.zeros((len(units), self.vocab_size_ + 1), dtype=np.float64)
         unit_of_position = np.repeat(np.arange(len(units)), np.diff(stream.offsets))
         with torch_session(torch, threads=int(self.threads), seed=0):
-            for positions, _, log_softmax in self._forward_windows(stream, windows):
+            for positions, log_softmax in self._forward_windows(stream, windows):
                 probs[unit_of_position[positions]] = np.exp(log_softmax)
         return probs / probs.sum(axis=1, keepdims=True)
 
