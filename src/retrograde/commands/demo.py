@@ -1,4 +1,4 @@
-"""``retrograde demo [--dir DIR] [--jobs N] [--quick]``: a real study in a throwaway host.
+"""``retrograde demo [--dir DIR] [--jobs N]``: a real study in a throwaway host.
 
 Creates ``DIR`` (default ``demo-host``) as a git + DVC repository whose *own* pipeline
 writes an INVENTED corpus (the log book of an imaginary maintenance crew), adopts
@@ -24,8 +24,8 @@ __all__ = ["configure", "run"]
 
 #: marks a folder this command created, so a second run may reuse it and nothing else
 MARKER = ".retrograde-demo"
-#: bytes of invented corpus the host stage writes (full demo, --quick)
-CORPUS_BYTES = {False: 60_000, True: 12_000}
+#: bytes of invented corpus the host stage writes (small: the mlp cells dominate the time)
+CORPUS_BYTES = 40_000
 
 
 def configure(parser: argparse.ArgumentParser) -> None:
@@ -33,28 +33,13 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument(
         "--jobs", type=int, default=2, help="fit stages run in parallel (default 2)"
     )
-    parser.add_argument(
-        "--quick",
-        action="store_true",
-        help="a smaller grid for a smoke test (fewer units, 2 seeds)",
-    )
 
 
 def _template(name: str) -> str:
     return (resources.files("retrograde") / "templates" / "demo" / name).read_text(encoding="utf-8")
 
 
-def _quick(text: str) -> str:
-    """The --quick variant: fewer calibration units and epochs, two seeds."""
-    return (
-        text.replace("n_units: 3000", "n_units: 1200")
-        .replace("n_units: 2000", "n_units: 600")
-        .replace("epochs: 10", "epochs: 6")
-        .replace("seeds: [0, 1, 2]", "seeds: [0, 1]")
-    )
-
-
-def _create_host(folder: Path, *, quick: bool) -> None:
+def _create_host(folder: Path) -> None:
     """The host repo before retrograde: git, DVC, and its own corpus-writing stage."""
     folder.mkdir(parents=True)
     run_git(folder, ["init", "-q"])
@@ -62,14 +47,14 @@ def _create_host(folder: Path, *, quick: bool) -> None:
         run_git(folder, ["config", key, value])
     run_dvc(folder, ["init", "-q"])
     run_dvc(folder, ["config", "core.analytics", "false"])
-    host_dvc = _template("host_dvc.yaml").replace("{size_bytes}", str(CORPUS_BYTES[quick]))
+    host_dvc = _template("host_dvc.yaml").replace("{size_bytes}", str(CORPUS_BYTES))
     (folder / "dvc.yaml").write_text(host_dvc, encoding="utf-8")
     (folder / "README.md").write_text(_template("README.md"), encoding="utf-8")
     run_git(folder, ["add", "-A"])
     run_git(folder, ["commit", "-q", "-m", "demo host: its own stage writes an invented corpus"])
 
 
-def _adopt(folder: Path, *, quick: bool) -> None:
+def _adopt(folder: Path) -> None:
     """``retrograde init`` plus the demo study, committed."""
     from ..cli import main
 
@@ -77,11 +62,10 @@ def _adopt(folder: Path, *, quick: bool) -> None:
     if main(["init", "--dir", str(folder), "--source", corpus]) != 0:
         raise ConfigError(f"`retrograde init` did not complete in {folder} (see above)")
     conf = folder / CONF_DIR
-    edit = _quick if quick else (lambda text: text)
     (conf / "config.yaml").write_text(_template("config.yaml"), encoding="utf-8")
-    (conf / "study" / "demo.yaml").write_text(edit(_template("study_demo.yaml")), encoding="utf-8")
+    (conf / "study" / "demo.yaml").write_text(_template("study_demo.yaml"), encoding="utf-8")
     for source in ("linear_gf2", "automaton"):
-        text = edit(_template(f"source_{source}.yaml"))
+        text = _template(f"source_{source}.yaml")
         (conf / "source" / f"{source}.yaml").write_text(text, encoding="utf-8")
     (folder / MARKER).write_text("created by `retrograde demo`; safe to delete\n", encoding="utf-8")
     run_git(folder, ["add", "-A"])
@@ -103,8 +87,8 @@ def run(args: argparse.Namespace) -> int:
     if not (folder / MARKER).exists():
         print(f"retrograde demo: creating a throwaway host repository in {folder}")
         try:
-            _create_host(folder, quick=args.quick)
-            _adopt(folder, quick=args.quick)
+            _create_host(folder)
+            _adopt(folder)
         except BaseException:
             shutil.rmtree(folder, ignore_errors=True)  # nothing half-made is left behind
             raise
