@@ -213,17 +213,39 @@ def pipeline_section(result: dict[str, Any]) -> list[str]:
     ]
 
 
+def _scalar_leaves(value: Any, prefix: str = "") -> list[tuple[str, Any]]:
+    """``(dotted key, value)`` for every scalar leaf, skipping lists and ``machine``."""
+    if isinstance(value, dict):
+        return [
+            leaf
+            for key, item in sorted(value.items())
+            if key != "machine"
+            for leaf in _scalar_leaves(item, f"{prefix}.{key}" if prefix else str(key))
+        ]
+    return [] if isinstance(value, list) else [(prefix, value)]
+
+
+def _figure(value: Any) -> str:
+    if isinstance(value, float):
+        return format(value, ",.0f") if abs(value) >= 1000 else format(value, ".4g")
+    return str(value)
+
+
 def other_sections() -> list[str]:
+    """Results of the scripts other engineers own, as their scalar figures (no reformatting)."""
     lines: list[str] = []
-    torch_loop = _load("torch_loop")
-    if torch_loop is not None:
-        lines += ["### Torch training loop (`bench_torch_loop.py`, owned by the torch engineer)"]
-        lines += ["", "```json", json.dumps(torch_loop, indent=2, sort_keys=True), "```"]
-    for name in ("stats", "coverage"):
+    owners = {"torch_loop": "torch", "stats": "stats", "coverage": "stats"}
+    for name, owner in owners.items():
         result = _load(name)
-        if result is not None:
-            lines += ["", f"### `bench_{name}.py` (owned by the stats engineer)", ""]
-            lines += ["```json", json.dumps(result, indent=2, sort_keys=True), "```"]
+        if result is None:
+            continue
+        lines += ["", f"### `bench_{name}.py` (owned by the {owner} engineer)", ""]
+        machine = result.get("machine")
+        if isinstance(machine, dict) and "date_utc" in machine:
+            load = machine.get("load_average_1min", "?")
+            lines += [f"_Measured {machine['date_utc']}; 1-minute load average {load}._", ""]
+        rows = [[f"`{key}`", _figure(value)] for key, value in _scalar_leaves(result)]
+        lines.append(_table(["figure", "value"], rows))
     return lines
 
 
