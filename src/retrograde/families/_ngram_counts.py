@@ -26,6 +26,8 @@ from typing import Any
 
 import numpy as np
 
+from ._bitset_rank import bitset_rank
+
 __all__ = [
     "FALLBACK_DISCOUNT",
     "KneserNeyTables",
@@ -45,6 +47,9 @@ FALLBACK_DISCOUNT = 0.5
 # Dense rank tables (one int32 slot per possible key) are faster than sorting when the key
 # space is small, as it is for characters or bytes; above this many keys we sort instead.
 _DENSE_KEYS = 1 << 25
+# Above that, a bitset of the key space (space / 4 bytes) ranks keys without sorting when
+# the space is at most this many keys per event (benchmarks/README.md).
+_BITSET_KEYS_PER_EVENT = 32
 # Key tables above this many entries (8 bytes each) no longer fit in a typical L2 cache.
 _CACHE_KEYS = 1 << 16
 
@@ -104,6 +109,8 @@ def rank_pairs(
         rank = np.empty(space, dtype=_index_dtype(len(distinct)))
         rank[distinct] = np.arange(len(distinct))
         return gather(rank, keys), distinct.astype(np.int64)
+    if space <= _BITSET_KEYS_PER_EVENT * len(keys):
+        return bitset_rank(keys, space)  # linear; at most ~8 bytes per event of memory
     order = np.argsort(keys)
     sorted_keys = keys[order]
     del keys
