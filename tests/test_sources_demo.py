@@ -1,7 +1,6 @@
 """The invented demo corpus: deterministic, labelled as invented, with real sequential structure."""
 
 import re
-import time
 from pathlib import Path
 
 import pytest
@@ -40,12 +39,10 @@ def test_the_size_parameter_scales_the_corpus_by_whole_entries():
         assert size <= len(text.encode()) < size + 1_000  # at most one entry more
 
 
-def test_two_megabytes_generate_in_under_two_seconds():
-    start = time.perf_counter()
+def test_default_size_corpus_reaches_two_megabytes():
+    # Speed is measured in benchmarks/, never asserted in a test.
     text = demo.corpus_text(size_bytes=2_000_000, seed=1)
-    elapsed = time.perf_counter() - start
     assert len(text) >= 2_000_000
-    assert elapsed < 2.0, f"{elapsed:.2f} s"
 
 
 def test_entries_carry_causes_before_effects_and_agreeing_distant_parts():
