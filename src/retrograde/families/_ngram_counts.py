@@ -50,6 +50,7 @@ _DENSE_KEYS = 1 << 25
 # Above that, a bitset of the key space (space / 4 bytes) ranks keys without sorting when
 # the space is at most this many keys per event (benchmarks/README.md).
 _BITSET_KEYS_PER_EVENT = 32
+_DENSE_KEYS_PER_EVENT = 8
 # Key tables above this many entries (8 bytes each) no longer fit in a typical L2 cache.
 _CACHE_KEYS = 1 << 16
 
@@ -100,7 +101,10 @@ def rank_pairs(
         keys += low
     else:
         keys = _pair_keys(high, low, n_low, dtype)
-    if space <= _DENSE_KEYS:
+    # A dense table costs ~5 bytes per possible key whatever the number of events: with few
+    # events and a large vocabulary (word tokens) it would dominate, so it also needs the
+    # space to be small next to the events.
+    if space <= min(_DENSE_KEYS, max(1 << 16, _DENSE_KEYS_PER_EVENT * len(keys))):
         present = np.zeros(space, dtype=bool)
         for start in range(0, len(keys), _GATHER_CHUNK):
             present[keys[start : start + _GATHER_CHUNK].astype(np.intp)] = True
