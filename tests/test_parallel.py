@@ -162,3 +162,15 @@ def test_lock_entries_are_put_in_the_given_order_without_changing_content(tmp_pa
         host,
     )
     assert "up to date" in status
+
+
+@pytest.mark.dvc
+def test_a_parallel_run_with_nothing_stale_starts_no_stage_process(tmp_path, capsys):
+    # After a full run, `run --jobs 2` asks `dvc status` once and reproduces nothing.
+    host = new_pipeline_host(tmp_path / "host")
+    assert main(["run", "--dir", str(host), "--jobs", "2", "study=smoke"]) == 0
+    lock = (host / "pipelines/retrograde/dvc.lock").read_bytes()
+    capsys.readouterr()
+    assert main(["run", "--dir", str(host), "--jobs", "2", "study=smoke"]) == 0
+    assert "retrograde: 0 stages ran" in capsys.readouterr().err
+    assert (host / "pipelines/retrograde/dvc.lock").read_bytes() == lock

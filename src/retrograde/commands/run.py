@@ -170,6 +170,28 @@ def _params_text(params: dict[str, Any]) -> str:
     return header + yaml.safe_dump(params, sort_keys=False, default_flow_style=False)
 
 
+def _run_jobs(
+    host: HostRepo, target: str, cells: list[Any], jobs: int, *, pull: bool, total: int
+) -> dict[str, list[str]]:
+    """``dvc repro`` the pipeline; with ``jobs > 1`` the stale fit stages run in parallel."""
+    from ..stages import fit_stage_name
+
+    if jobs == 1:
+        return _repro(host, target, pull=pull, total=total)
+    from ..parallel import run_stages_in_parallel, stale_stages
+
+    # One `dvc status` (host stages upstream included) decides whether anything is stale:
+    # a no-op run then costs seconds, not a DVC process per stage.
+    if not pull and not stale_stages(host.root, None, with_deps=True):
+        return {"ran": [], "unchanged": [], "restored": [], "failed": []}
+    _repro(host, f"{target}:reorder", pull=pull, total=total)  # units, reorder, host upstream
+    names = stale_stages(host.root, [fit_stage_name(*cell) for cell in cells])
+    run_stages_in_parallel(host.root, names, jobs, pull=pull)
+    events = _repro(host, target, pull=pull, total=total)
+    events["ran"] = names + events["ran"]  # the parallel fits (ran or restored)
+    return events
+
+
 def run(args: argparse.Namespace) -> int:
     from ..config import compose
     from ..stages import fit_stage_name, grid_cells, render_dvc_yaml
@@ -195,14 +217,7 @@ def run(args: argparse.Namespace) -> int:
     total = len(study["sources"]) * (1 + len(study["orders"])) + len(cells) + 1
     target = host.dvc_file.relative_to(host.root).as_posix()
     with _stage_python_first():
-        if jobs > 1:
-            from ..parallel import run_stages_in_parallel
-
-            # units, reorder and the host's upstream stages first
-            _repro(host, f"{target}:reorder", pull=args.pull, total=total)
-            names = [fit_stage_name(*cell) for cell in cells]
-            run_stages_in_parallel(host.root, names, jobs, pull=args.pull)
-        events = _repro(host, target, pull=args.pull, total=total)
+        events = _run_jobs(host, target, cells, jobs, pull=args.pull, total=total)
     from ..parallel import normalize_lock_order
 
     normalize_lock_order(host.root)  # dvc.lock in stage-file order, whatever --jobs was
