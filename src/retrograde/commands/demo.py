@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import argparse
 import shutil
+import sys
 from importlib import resources
 from pathlib import Path
 
@@ -100,6 +101,10 @@ def run(args: argparse.Namespace) -> int:
         run_git(folder, ["add", "-A"])
         run_git(folder, ["commit", "-q", "-m", "retrograde demo results"])
     pipeline = folder / PIPELINE_DIR
+    # `make demo` runs .venv/bin/retrograde without activating the environment: name the
+    # command the user can actually type.
+    installed = Path(sys.executable).parent / "retrograde"
+    command = "retrograde" if shutil.which("retrograde") == str(installed) else str(installed)
     print(
         f"""
 The table above is in {pipeline / "report.md"} (with its cautions) and
@@ -108,8 +113,8 @@ learning_curves.png, position_profile.png). The corpus is INVENTED demo data.
 
 Try next, inside {folder}:
   1. edit conf/retrograde/study/demo.yaml (e.g. ngram order: 8 -> 5), then
-     retrograde run            # only the ngram cells and the table rerun
-  2. retrograde compare HEAD   # what changed against the committed results
-  3. retrograde table --format csv"""
+     {command} run            # only the ngram cells and the table rerun
+  2. {command} compare HEAD   # what changed against the committed results
+  3. {command} table --format csv"""
     )
     return 0
