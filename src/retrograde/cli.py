@@ -21,7 +21,10 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "check": ("retrograde.commands.check", "cut, split and tokenize a file; round-trip orders"),
     "init": ("retrograde.commands.init", "install the config and stage file into a git + DVC repo"),
     "plan": ("retrograde.commands.plan", "print (or run) the fit stages of one CI shard"),
-    "run": ("retrograde.commands.run", "compose the config, reproduce the pipeline, print the table"),
+    "run": (
+        "retrograde.commands.run",
+        "compose the config, reproduce the pipeline, print the table",
+    ),
     "table": ("retrograde.commands.table", "print the gap table of the last run"),
     "compare": ("retrograde.commands.compare", "diff the gap table between two git revisions"),
     "demo": ("retrograde.commands.demo", "run a demo study in a throwaway host repository"),
