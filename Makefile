@@ -25,6 +25,7 @@ test: $(STAMP)
 
 lint: $(STAMP)
 	$(BIN)/ruff check src tests benchmarks
+	$(BIN)/ruff format --check src tests benchmarks
 	$(BIN)/mypy
 
 bench: $(STAMP)
