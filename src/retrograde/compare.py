@@ -14,6 +14,7 @@ the edge (:func:`read_table_at`); :func:`compare_tables` is pure.
 
 from __future__ import annotations
 
+import argparse
 import json
 import os
 from collections.abc import Mapping
@@ -29,6 +30,7 @@ __all__ = [
     "METRICS_PATH",
     "STATUSES",
     "CellChange",
+    "add_metrics_arguments",
     "compare_tables",
     "format_changes",
     "read_table_at",
@@ -209,3 +211,16 @@ def read_table_at(
             "commit metrics.json at that revision, or compare other revisions"
         )
     return _parse(shown.stdout, f"{inside} at {revision}")
+
+
+def add_metrics_arguments(parser: argparse.ArgumentParser) -> None:
+    """``--dir`` and ``--path``: where the metrics file is (shared by ``table`` and ``compare``)."""
+    parser.add_argument(
+        "--dir", default=".", metavar="HOST", help="the host repository root (default: here)"
+    )
+    parser.add_argument(
+        "--path",
+        default=str(METRICS_PATH),
+        metavar="FILE",
+        help=f"metrics file relative to --dir (default: {METRICS_PATH})",
+    )

@@ -13,7 +13,7 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-from ..compare import METRICS_PATH, compare_tables, format_changes, read_table_at
+from ..compare import add_metrics_arguments, compare_tables, format_changes, read_table_at
 
 __all__ = ["configure", "run"]
 
@@ -23,15 +23,7 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument(
         "rev_b", metavar="REV_B", nargs="?", default=None, help="default: the working tree"
     )
-    parser.add_argument(
-        "--dir", default=".", metavar="HOST", help="the host repository root (default: here)"
-    )
-    parser.add_argument(
-        "--path",
-        default=str(METRICS_PATH),
-        metavar="FILE",
-        help=f"metrics file relative to --dir (default: {METRICS_PATH})",
-    )
+    add_metrics_arguments(parser)
     parser.add_argument("--all", action="store_true", help="also list identical cells")
     parser.add_argument(
         "--format",

@@ -11,22 +11,14 @@ import argparse
 import sys
 from pathlib import Path
 
-from ..compare import METRICS_PATH, read_table_at
+from ..compare import add_metrics_arguments, read_table_at
 from ..report import FORMATS, format_table, table_warnings
 
 __all__ = ["configure", "run"]
 
 
 def configure(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument(
-        "--dir", default=".", metavar="HOST", help="the host repository root (default: here)"
-    )
-    parser.add_argument(
-        "--path",
-        default=str(METRICS_PATH),
-        metavar="FILE",
-        help=f"metrics file relative to --dir (default: {METRICS_PATH})",
-    )
+    add_metrics_arguments(parser)
     parser.add_argument(
         "--format", default="markdown", choices=FORMATS, help="output format (default: markdown)"
     )

@@ -80,6 +80,21 @@ class FileSource(Source):
         """Yield the documents one at a time; ``doc_id`` counts them from 0."""
 
 
+class EncodedFileSource(FileSource):
+    """Shared by the sources that read UTF-8 files named by ``files`` (paths or globs) with
+    an ``errors`` policy for invalid bytes (``text``, ``jsonl``, ``fasta``)."""
+
+    files: Any
+    errors: str
+
+    def _check_files(self) -> None:
+        check_decode_errors(self._owner, self.errors)
+        expand_files(self._owner, "files", self.files)
+
+    def paths(self) -> list[Path]:
+        return expand_files(self._owner, "files", self.files)
+
+
 class CalibrationSource(Source):
     """A synthetic source with an exact per-unit negative log-likelihood (the floor)."""
 

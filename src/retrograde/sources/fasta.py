@@ -17,13 +17,13 @@ from .._document import Document
 from .._validation import invalid
 from ..errors import DataError
 from . import registry
-from ._base import FileSource, check_decode_errors, expand_files, iter_lines
+from ._base import EncodedFileSource, iter_lines
 
 __all__ = ["FastaSource"]
 
 
 @registry.register("fasta")
-class FastaSource(FileSource):
+class FastaSource(EncodedFileSource):
     """FASTA files.
 
     Parameters
@@ -55,11 +55,7 @@ class FastaSource(FileSource):
     def _validate_params(self) -> None:
         if not isinstance(self.fold_case, bool):
             raise invalid(self._owner, "fold_case", self.fold_case, "true or false")
-        check_decode_errors(self._owner, self.errors)
-        expand_files(self._owner, "files", self.files)
-
-    def paths(self) -> list[Path]:
-        return expand_files(self._owner, "files", self.files)
+        self._check_files()
 
     def documents(self) -> Iterator[Document]:
         doc_id = 0

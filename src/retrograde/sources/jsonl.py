@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import json
 from collections.abc import Iterator
-from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -18,13 +17,13 @@ from .._document import Document
 from .._validation import invalid
 from ..errors import DataError
 from . import registry
-from ._base import FileSource, check_decode_errors, expand_files, iter_lines
+from ._base import EncodedFileSource, iter_lines
 
 __all__ = ["JsonlSource"]
 
 
 @registry.register("jsonl")
-class JsonlSource(FileSource):
+class JsonlSource(EncodedFileSource):
     """JSON Lines files.
 
     Parameters
@@ -56,11 +55,7 @@ class JsonlSource(FileSource):
     def _validate_params(self) -> None:
         if not isinstance(self.field, str) or not self.field:
             raise invalid(self._owner, "field", self.field, "a non-empty key name")
-        check_decode_errors(self._owner, self.errors)
-        expand_files(self._owner, "files", self.files)
-
-    def paths(self) -> list[Path]:
-        return expand_files(self._owner, "files", self.files)
+        self._check_files()
 
     def documents(self) -> Iterator[Document]:
         doc_id = 0

@@ -21,7 +21,7 @@ from .._document import Document
 from .._validation import check_choice
 from ..errors import DataError
 from . import registry
-from ._base import FileSource, check_decode_errors, expand_files, iter_lines
+from ._base import EncodedFileSource, iter_lines
 
 __all__ = ["TextSource"]
 
@@ -29,7 +29,7 @@ SPLITS = ("file", "paragraph", "line")
 
 
 @registry.register("text")
-class TextSource(FileSource):
+class TextSource(EncodedFileSource):
     """UTF-8 text files.
 
     Parameters
@@ -60,11 +60,7 @@ class TextSource(FileSource):
 
     def _validate_params(self) -> None:
         check_choice(self._owner, "split", self.split, SPLITS)
-        check_decode_errors(self._owner, self.errors)
-        expand_files(self._owner, "files", self.files)
-
-    def paths(self) -> list[Path]:
-        return expand_files(self._owner, "files", self.files)
+        self._check_files()
 
     def documents(self) -> Iterator[Document]:
         doc_id = 0
