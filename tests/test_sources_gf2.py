@@ -1,5 +1,6 @@
 """GF(2) linear algebra and the ``linear_gf2`` calibration source."""
 
+import itertools
 import math
 
 import numpy as np
@@ -120,6 +121,11 @@ def test_spans_name_x_and_y_and_refuse_another_length():
             "parameter nonzeros=4 is invalid; allowed: an integer >= 0 and <= 3",
         ),
         ({"matrix_seed": -1}, "parameter matrix_seed=-1 is invalid"),
+        (
+            {"structure": "band"},
+            "parameter structure='band' is invalid; allowed: one of 'lu', 'banded'"
+            " (did you mean 'banded'?)",
+        ),
     ],
 )
 def test_invalid_parameters_are_refused(params, text):
@@ -149,3 +155,100 @@ def test_any_constructed_matrix_is_invertible_and_its_inverse_checks_out(
     identity = np.eye(n, dtype=np.int64)
     assert np.array_equal((matrix.astype(np.int64) @ inverse) % 2, identity)
     assert np.array_equal((inverse.astype(np.int64) @ matrix) % 2, identity)
+
+
+# ----------------------------------------------------------------------- banded structure
+@pytest.mark.parametrize(("n", "nonzeros"), [(1, 0), (7, 1), (12, 3), (9, 8)])
+def test_banded_rows_hold_at_most_one_plus_nonzeros_ones(n, nonzeros):
+    source = make("linear_gf2", n_bits=n, nonzeros=nonzeros, structure="banded", matrix_seed=4)
+    rows = np.arange(n)
+    band = source.factors_["upper"]
+    # Row i of the band has 1 + min(nonzeros, n - 1 - i) ones; P and Q only move them.
+    assert sorted(source.matrix_.sum(axis=1).tolist()) == sorted(
+        (1 + np.minimum(nonzeros, n - 1 - rows)).tolist()
+    )
+    rebuilt = (source.factors_["lower"] @ band)[source.factors_["row_order"]]
+    assert np.array_equal(rebuilt[:, source.factors_["column_order"]], source.matrix_)
+    assert source.metadata()["max_row_ones_matrix"] == 1 + min(nonzeros, n - 1)
+    reference = sympy.Matrix(source.matrix_.astype(int).tolist()).inv_mod(2)
+    assert source.inverse_.astype(int).tolist() == reference.tolist()
+
+
+def test_the_inverse_of_a_one_band_matrix_is_the_full_upper_triangle():
+    # (I + S)^-1 = I + S + ... + S^(n-1) over GF(2) for the nilpotent shift S (Neumann
+    # series; common practice, no source), so every entry on and above the diagonal is 1.
+    # Checked with sympy's inv_mod.
+    band = _gf2.banded_upper(11, 1)
+    reference = np.array(sympy.Matrix(band.astype(int).tolist()).inv_mod(2), dtype=np.int64)
+    assert np.array_equal(reference, np.triu(np.ones((11, 11), dtype=np.int64)))
+    assert np.array_equal(_gf2.inverse(band), reference)
+    source = make("linear_gf2", n_bits=11, nonzeros=1, structure="banded", matrix_seed=0)
+    assert source.metadata()["max_row_ones_inverse"] == 11  # P and Q keep the row weights
+    assert source.metadata()["nonzeros_inverse"] == 11 * 12 // 2
+
+
+def test_structure_changes_the_matrix_but_not_the_units_contract():
+    lu = make("linear_gf2", n_bits=8, nonzeros=1, matrix_seed=3)
+    banded = make("linear_gf2", n_bits=8, nonzeros=1, matrix_seed=3, structure="banded")
+    assert lu.get_params()["structure"] == "lu" and banded.get_params()["structure"] == "banded"
+    assert not np.array_equal(lu.matrix_, banded.matrix_)
+    units = banded.generate(50, seed=0)
+    assert banded.nll(units) == pytest.approx(np.full(50, 8 * math.log(2)))
+
+
+# -------------------------------------------------------------------------- parity weights
+def _fewest_by_brute_force(forms, cap):
+    """The definition: try every subset of the earlier forms, smallest first."""
+    result = []
+    for t, form in enumerate(forms):
+        found = None
+        for k in range(len(forms[:t]) + 1):
+            for subset in itertools.combinations(forms[:t], k):
+                xor = 0
+                for value in subset:
+                    xor ^= value
+                if xor == form:
+                    found = k
+                    break
+            if found is not None:
+                break
+        result.append(-1 if found is None else min(found, cap + 1))
+    return result
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    forms=st.lists(st.integers(0, 2**5 - 1), min_size=1, max_size=11),
+    cap=st.integers(1, 7),
+)
+def test_fewest_xor_terms_matches_trying_every_subset(forms, cap):
+    assert _gf2.fewest_xor_terms(forms, cap) == _fewest_by_brute_force(forms, cap)
+
+
+def test_parity_weights_read_the_rows_of_the_matrix_forwards():
+    source = make("linear_gf2", n_bits=6, nonzeros=1, structure="banded", matrix_seed=2)
+    weights = source.parity_weights()
+    assert weights[:6] == [-1] * 6  # x is uniform: no bit follows from the earlier ones
+    # A y bit is never worse than its row of A, and at least 1.
+    for i, weight in enumerate(weights[6:]):
+        assert 1 <= weight <= int(source.matrix_[i].sum())
+
+
+def test_parity_weights_of_a_permuted_copy_read_backwards_are_all_one():
+    source = make("linear_gf2", n_bits=7, nonzeros=0, matrix_seed=1)
+    weights = source.parity_weights(np.arange(14)[::-1])
+    assert weights == [-1] * 7 + [1] * 7  # y is a shuffle of x: each x bit is one y bit
+
+
+def test_parity_weights_of_a_one_band_matrix_are_heavier_backwards():
+    source = make("linear_gf2", n_bits=10, nonzeros=1, structure="banded", matrix_seed=298)
+    forward = source.parity_weights()
+    backward = source.parity_weights(np.arange(20)[::-1])
+    assert max(forward) == 2
+    assert sorted(backward[10:], reverse=True)[:3] == [7, 4, 4]
+
+
+def test_parity_weights_refuse_a_list_that_is_not_a_permutation():
+    source = make("linear_gf2", n_bits=3, nonzeros=0)
+    with pytest.raises(ValueError, match="permutation of 0..5"):
+        source.parity_weights(np.array([0, 1, 2, 3, 4, 4]))
