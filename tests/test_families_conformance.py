@@ -140,3 +140,22 @@ def test_token_ids_outside_the_fitted_vocabulary_are_refused(fitted):
     _, model = fitted
     with pytest.raises(DataError, match="outside the fitted vocabulary"):
         model.logprobs(SequenceSet.from_list([[0, VOCAB_SIZE + 2]], vocab_size=VOCAB_SIZE + 3))
+
+
+@pytest.mark.parametrize(
+    ("module", "text"),
+    [
+        ("families", "unknown family 'ngrma' (did you mean 'ngram'?); known families: "),
+        ("orders", "unknown order 'revers' (did you mean 'reverse'?); known orders: "),
+        ("sources", "unknown source 'markof' (did you mean 'markov'?); known sources: "),
+    ],
+)
+def test_an_unknown_name_lists_the_known_ones_in_plain_english(module, text):
+    import importlib
+
+    from retrograde.errors import ConfigError
+
+    registry = importlib.import_module(f"retrograde.{module}")
+    with pytest.raises(ConfigError) as info:
+        registry.make(text.split("'")[1])
+    assert text in str(info.value)

@@ -23,8 +23,9 @@ T = TypeVar("T")
 class Registry(Generic[T]):
     """Maps names to factories (usually classes) of one kind of plug-in."""
 
-    def __init__(self, kind: str, group: str) -> None:
+    def __init__(self, kind: str, group: str, plural: str | None = None) -> None:
         self.kind = kind  # "order", "source", "family"
+        self.plural = plural or f"{kind}s"
         self.group = group  # entry-point group, e.g. "retrograde.orders"
         self._factories: dict[str, Callable[..., T]] = {}
         self._entry_points_loaded = False
@@ -67,7 +68,7 @@ class Registry(Generic[T]):
         known = ", ".join(self.names())
         raise ConfigError(
             f"unknown {self.kind} {name!r}{did_you_mean(name, self._factories)}; "
-            f"known {self.kind}s: {known}; or give a dotted path as _target_"
+            f"known {self.plural}: {known}; or give a dotted path as _target_"
         )
 
     def make(self, name: str, **params: Any) -> T:

@@ -13,7 +13,7 @@ from ._base import FAMILY_FORMAT, Family
 
 __all__ = ["Family", "load", "make", "names", "registry"]
 
-registry: Registry[Family] = Registry("family", "retrograde.families")
+registry: Registry[Family] = Registry("family", "retrograde.families", "families")
 
 
 def make(name: str, **params: Any) -> Family:
