@@ -234,7 +234,12 @@ def _figure(value: Any) -> str:
 def other_sections() -> list[str]:
     """Results of the scripts other engineers own, as their scalar figures (no reformatting)."""
     lines: list[str] = []
-    owners = {"torch_loop": "torch", "stats": "stats", "coverage": "stats"}
+    owners = {
+        "torch_loop": "torch",
+        "torch_calibration": "torch",
+        "stats": "stats",
+        "coverage": "stats",
+    }
     for name, owner in owners.items():
         result = _load(name)
         if result is None:

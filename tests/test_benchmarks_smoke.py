@@ -110,3 +110,16 @@ def test_pipeline_benchmark_times_scratch_noop_and_one_model_edit(tmp_path):
     for run in runs.values():
         assert 0 <= run["stage_seconds"] <= run["dvc_repro_seconds"] <= run["total_seconds"]
         assert 0 <= run["dvc_share"] < 1
+
+
+def test_torch_calibration_benchmark_runs_quick_and_records_both_orders(tmp_path):
+    pytest.importorskip("torch")
+    results = _run_quick("bench_torch_calibration.py", tmp_path / "calibration.json")
+    assert [cell["order"] for cell in results["cells"]] == ["forward", "reverse"]
+    weights = results["parity_weights"]
+    # x is uniform: forwards its 10 bits follow from nothing before them; y = A x does.
+    assert weights["forward"][:10] == [-1] * 10 and min(weights["forward"][10:]) >= 1
+    assert weights["reverse"][:10] == [-1] * 10  # y is uniform too (A is invertible)
+    summary = results["summary"]
+    for order in ("forward", "reverse"):
+        assert summary[f"{order}_excess_min"] <= summary[f"{order}_excess_max"]

@@ -69,3 +69,30 @@ def test_quick_start_and_guide_shell_examples_run_in_a_real_host(tmp_path):
 
     (review,) = shell_blocks("docs/guide.md", "retrograde compare main")
     run_all(review, host)
+
+
+YAML = re.compile(r"^```yaml\n(?P<code>.*?)^```", re.MULTILINE | re.DOTALL)
+
+
+def test_the_torch_calibration_recipe_runs_and_the_forward_fit_reaches_the_floor(tmp_path):
+    pytest.importorskip("torch")
+    import json
+
+    host = new_host(tmp_path / "host")
+    subprocess.run([sys.executable, "-m", "retrograde", "init"], cwd=host, check=True)
+    text = (ROOT / "docs/torch.md").read_text()
+    targets = {
+        "# @package study.sources.gf2_banded": "conf/retrograde/source/gf2_banded.yaml",
+        "# @package study\n": "conf/retrograde/study/gf2_torch.yaml",
+    }
+    for match in YAML.finditer(text):
+        for header, path in targets.items():
+            if match["code"].startswith(header):
+                (host / path).write_text(match["code"])
+    assert all((host / path).is_file() for path in targets.values())
+    (block,) = shell_blocks("docs/torch.md", "study=gf2_torch")
+    run_all(block, host)
+    metrics = json.loads((host / "pipelines/retrograde/metrics.json").read_text())
+    cells = metrics["gf2_banded"]["tf128"]
+    assert cells["forward"]["excess_bits_per_token"] < 0.05, cells
+    assert cells["reverse"]["excess_bits_per_token"] > 0.05, cells
