@@ -248,7 +248,9 @@ def test_parity_weights_of_a_one_band_matrix_are_heavier_backwards():
     assert sorted(backward[10:], reverse=True)[:3] == [7, 4, 4]
 
 
-def test_parity_weights_refuse_a_list_that_is_not_a_permutation():
+def test_parity_weights_refuse_a_list_that_is_not_a_permutation_or_a_cap_below_1():
     source = make("linear_gf2", n_bits=3, nonzeros=0)
     with pytest.raises(ValueError, match="permutation of 0..5"):
         source.parity_weights(np.array([0, 1, 2, 3, 4, 4]))
+    with pytest.raises(ValueError, match="cap must be at least 1, got 0"):
+        source.parity_weights(cap=0)

@@ -162,6 +162,8 @@ def fewest_xor_terms(forms: Sequence[int], cap: int = 6) -> list[int]:
     >>> fewest_xor_terms([0b01, 0b10, 0b11, 0b11])
     [-1, -1, 2, 1]
     """
+    if cap < 1:
+        raise ValueError(f"cap must be at least 1, got {cap}")
     half = (cap + 1) // 2
     sizes: dict[int, int] = {0: 0}  # XOR of a subset of the earlier forms -> fewest terms
     basis: dict[int, int] = {}  # leading bit -> reduced vector (Gaussian elimination)
