@@ -15,6 +15,7 @@ from hypothesis import strategies as st
 from retrograde import SequenceSet
 from retrograde.errors import ConfigError, DataError
 from retrograde.sources import make
+from retrograde.units import prepare_units
 
 
 def _texts(source):
@@ -245,6 +246,28 @@ def test_tokens_reads_a_sequence_folder_with_its_byte_counts(tmp_path):
     assert [d.tokens.tolist() for d in documents] == [[1, 2], [3], [0, 0, 5]]
     assert [d.n_bytes for d in documents] == [4, 2, 9]
     assert [d.doc_id for d in documents] == [0, 1, 2]
+
+
+def test_tokens_keeps_the_units_of_one_folder_document_together(tmp_path):
+    first = SequenceSet.from_list([[1], [2], [3], [4]], vocab_size=5, doc_ids=[7, 7, 2, 7])
+    first.save(tmp_path / "a")
+    second = SequenceSet.from_list([[1, 1], [2, 2]], vocab_size=5, doc_ids=[7, 8])
+    second.save(tmp_path / "b")
+    np.save(tmp_path / "c.npy", np.array([[3, 3], [4, 4]], dtype=np.int32))
+    source = make("tokens", files=[str(tmp_path / n) for n in ("a", "b", "c.npy")])
+    documents = list(source.documents())
+    # Folder a's document 7 stays one document; b's 7 is another; .npy rows are one each.
+    assert [d.doc_id for d in documents] == [0, 0, 1, 0, 2, 3, 4, 5]
+    # The units stage carries them through to every split, where the bootstrap reads them.
+    prepared = prepare_units(documents, tokenizer=None, mode="document")
+    groups: dict[int, list[list[int]]] = {}
+    for units in prepared.splits.values():
+        for unit, doc_id in zip(units.to_list(), units.doc_ids.tolist(), strict=True):
+            groups.setdefault(doc_id, []).append(unit.tolist())
+    groups = {doc_id: sorted(members) for doc_id, members in groups.items()}
+    assert sorted(groups.values()) == sorted(
+        [[[1], [2], [4]], [[3]], [[1, 1]], [[2, 2]], [[3, 3]], [[4, 4]]]
+    )
 
 
 def test_tokens_reads_npy_files_one_document_per_1d_array_or_2d_row(tmp_path):

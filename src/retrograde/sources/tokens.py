@@ -4,6 +4,10 @@ Each entry of ``files`` is a :class:`~retrograde.SequenceSet` folder (every unit
 token document, with its ``n_bytes`` when the folder has them) or a ``.npy`` file (a 1-D
 integer array is one document; a 2-D array is one document per row). Globs may match both.
 Arrays are memory-mapped, so a large file is read page by page.
+
+Units of a folder that share a document id (its ``doc_ids.npy``) keep sharing one, so the
+bootstrap resamples them together instead of treating pieces of one document as
+independent; ids are renumbered so that different folders and files never share one.
 """
 
 from __future__ import annotations
@@ -80,12 +84,19 @@ class TokensSource(FileSource):
         return found
 
     def documents(self) -> Iterator[Document]:
-        doc_id = 0
+        next_id = 0
         for path in self.paths():
-            for where, tokens, n_bytes in _read(path):
+            renumbered: dict[int, int] = {}  # this folder's doc id -> ours
+            for where, tokens, n_bytes, group in _read(path):
+                if group is None:
+                    doc_id, next_id = next_id, next_id + 1
+                elif group in renumbered:
+                    doc_id = renumbered[group]
+                else:
+                    doc_id = renumbered[group] = next_id
+                    next_id += 1
                 yield Document(doc_id, where, tokens=tokens, n_bytes=n_bytes)
-                doc_id += 1
-        if doc_id == 0:
+        if next_id == 0:
             raise DataError(f"{self._owner}: the files hold no units; check {self.files!r}")
 
 
@@ -95,13 +106,17 @@ def _is_input(path: Path) -> bool:
     return path.is_file() and path.suffix == ".npy"
 
 
-def _read(path: Path) -> Iterator[tuple[str, np.ndarray, int | None]]:
-    """``(where, tokens, n_bytes)`` per document of one folder or ``.npy`` file."""
+def _read(path: Path) -> Iterator[tuple[str, np.ndarray, int | None, int | None]]:
+    """``(where, tokens, n_bytes, group)`` per document of one folder or ``.npy`` file.
+
+    ``group`` is the folder's own document id of the unit, None when it has none.
+    """
     if path.is_dir():
         units = SequenceSet.load(path, mmap=True)
         for index in range(len(units)):
             n_bytes = None if units.n_bytes is None else int(units.n_bytes[index])
-            yield f"{path}:unit {index}", units[index], n_bytes
+            group = None if units.doc_ids is None else int(units.doc_ids[index])
+            yield f"{path}:unit {index}", units[index], n_bytes, group
         return
     try:
         array = np.load(path, mmap_mode="r", allow_pickle=False)
@@ -119,4 +134,4 @@ def _read(path: Path) -> Iterator[tuple[str, np.ndarray, int | None]]:
     rows = [array] if array.ndim == 1 else array
     for index, row in enumerate(rows):
         where = str(path) if array.ndim == 1 else f"{path}:row {index}"
-        yield where, row, None
+        yield where, row, None, None
