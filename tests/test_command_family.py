@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 from retrograde import SequenceSet
-from retrograde.errors import ConfigError, FitError
+from retrograde.errors import ConfigError, DataError, FitError
 from retrograde.families import load, make
 
 TOY = str(Path(__file__).resolve().parents[1] / "examples" / "toy_trainer.py")
@@ -86,6 +86,43 @@ def test_with_a_score_command_the_fitted_trainer_folder_is_reused_saved_and_relo
     np.testing.assert_allclose(
         scores, np.concatenate(add_k_bigram_logprobs(TRAIN, TEST)), rtol=1e-12
     )
+
+
+def _counting(tmp_path, command):
+    """``command`` behind a wrapper that appends one line to a file per trainer run."""
+    runs = tmp_path / "runs.txt"
+    wrapper = tmp_path / "count_runs.py"
+    wrapper.write_text(
+        "import runpy, sys\n"
+        f"with open({str(runs)!r}, 'a') as f:\n    f.write('run\\n')\n"
+        "sys.argv = sys.argv[1:]\n"
+        "runpy.run_path(sys.argv[0], run_name='__main__')\n"
+    )
+    return [sys.executable, str(wrapper), *command[1:]], runs
+
+
+def test_fit_logprobs_without_a_score_command_trains_once(tmp_path):
+    command, runs = _counting(tmp_path, FIT)
+    twice = make("command", command=command).fit(TRAIN, VALID, seed=1)
+    expected = twice.logprobs(TEST).values
+    assert runs.read_text().count("run") == 2  # fit on valid, then again for test
+    runs.unlink()
+    once = make("command", command=command)
+    rows = once.fit_logprobs(TRAIN, VALID, TEST, seed=1)
+    assert runs.read_text().count("run") == 1
+    np.testing.assert_array_equal(rows.values, expected)
+    assert rows.lengths.tolist() == (TEST.lengths + 1).tolist()
+    assert once.learning_curve_ == twice.learning_curve_  # from the trainer's curve.json
+    # Outside reference: the add-k bigram written out by hand.
+    np.testing.assert_allclose(rows.values, np.concatenate(add_k_bigram_logprobs(TRAIN, TEST)))
+
+
+def test_fit_logprobs_refuses_test_ids_outside_the_training_vocabulary(tmp_path):
+    command, runs = _counting(tmp_path, FIT)
+    wide = SequenceSet.from_list([[1, 7]], vocab_size=8)
+    with pytest.raises(DataError, match="token id 7 is outside the fitted vocabulary of 4"):
+        make("command", command=command).fit_logprobs(TRAIN, VALID, wide, seed=0)
+    assert not runs.exists()  # refused before the trainer ran
 
 
 def test_full_distributions_from_the_trainer_sum_to_one():

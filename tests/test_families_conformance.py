@@ -104,6 +104,15 @@ def test_fitting_twice_with_the_same_seed_gives_identical_scores(fitted):
     np.testing.assert_array_equal(again.logprobs(TEST).values, model.logprobs(TEST).values)
 
 
+def test_fit_logprobs_gives_the_scores_and_model_of_fit_then_logprobs(fitted):
+    name, model = fitted
+    fresh = build(name)
+    rows = fresh.fit_logprobs(TRAIN, VALID, TEST, seed=0)
+    np.testing.assert_array_equal(rows.offsets, model.logprobs(TEST).offsets)
+    np.testing.assert_allclose(rows.values, model.logprobs(TEST).values, rtol=0, atol=1e-12)
+    np.testing.assert_allclose(fresh.logprobs(VALID).values, model.logprobs(VALID).values)
+
+
 def test_save_then_load_gives_the_same_scores_params_and_curve(fitted, tmp_path):
     name, model = fitted
     model.save(tmp_path / "model")

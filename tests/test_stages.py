@@ -217,6 +217,30 @@ def test_fit_cell_returns_a_json_ready_learning_curve_for_an_epoch_based_family(
     assert values.shape == (len(splits["test"].tokens) + len(splits["test"]),)
 
 
+def test_fit_cell_runs_a_command_trainer_once_per_cell(tmp_path):
+    import sys
+
+    toy = Path(__file__).resolve().parents[1] / "examples" / "toy_trainer.py"
+    runs = tmp_path / "runs.txt"
+    wrapper = tmp_path / "count_runs.py"  # one line per trainer run, then the toy trainer
+    wrapper.write_text(
+        f"import runpy, sys\nwith open({str(runs)!r}, 'a') as f:\n    f.write('run\\n')\n"
+        f"sys.argv = [{str(toy)!r}, *sys.argv[1:]]\n"
+        f"runpy.run_path({str(toy)!r}, run_name='__main__')\n"
+    )
+    command = [sys.executable, str(wrapper), "fit", "--train", "{train}", "--valid", "{valid}"]
+    command += ["--test", "{test}", "--out", "{out}", "--seed", "{seed}"]
+    rows = [[0, 1, 2], [2, 1], [1, 1, 0, 2]]
+    splits = {
+        name: SequenceSet.from_list(rows, vocab_size=3) for name in ("train", "valid", "test")
+    }
+    _, values, curve = fit_cell(
+        {"family": "command", "params": {"command": command}}, splits, seed=0
+    )
+    assert runs.read_text().splitlines() == ["run"]
+    assert values.shape == (9 + 3,) and len(curve) == 1
+
+
 def test_fit_crash_names_the_cell_and_keeps_its_log(pipeline, tmp_path, capsys):
     wdir = tmp_path / "wdir"
     shutil.copytree(pipeline / "data", wdir / "data")

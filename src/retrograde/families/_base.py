@@ -61,6 +61,22 @@ class Family(ABC):
     def logprobs(self, units: SequenceSet) -> Ragged:
         """Per-position natural-log probabilities: row i has ``len(units[i]) + 1`` values."""
 
+    def fit_logprobs(
+        self,
+        train: SequenceSet,
+        valid: SequenceSet | None,
+        test: SequenceSet,
+        seed: int = 0,
+    ) -> Ragged:
+        """``fit(train, valid, seed)``, then ``logprobs(test)``: what a pipeline cell needs.
+
+        Override it when one training run can also score ``test`` (the ``command`` family
+        without a ``score_command`` would otherwise train twice); the result and the
+        fitted model must be those of ``fit`` followed by ``logprobs``.
+        """
+        self.fit(train, valid, seed=seed)
+        return self.logprobs(test)
+
     @abstractmethod
     def next_token_probs(self, contexts: Sequence[np.ndarray]) -> np.ndarray:
         """(n_contexts, vocab_size + 1) full next-outcome distributions after each context."""

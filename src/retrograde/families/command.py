@@ -21,6 +21,10 @@ early and the learning curve exists). ``logprobs`` then needs the trainer again:
 - without it, ``command`` runs again from scratch (train and valid units are kept, and
   saved with the model), so a deterministic trainer gives the same scores.
 
+The pipeline's fit stage calls ``fit_logprobs(train, valid, test, seed)`` instead: without
+``score_command`` that is one run with ``{test}`` = the test units, so the trainer trains
+once per cell.
+
 Relative paths in the arguments are resolved from the current working directory (the DVC
 stage folder in a pipeline). A non-zero exit, a timeout, or output of the wrong length,
 non-finite or positive values raise :class:`~retrograde.errors.FitError` with the tail of
@@ -102,16 +106,49 @@ class CommandFamily(Family):
         self, train: SequenceSet, valid: SequenceSet | None = None, seed: int = 0
     ) -> CommandFamily:
         """Run ``command`` with ``{test}`` = the validation units; keep what scoring needs."""
+        self._fit(train, valid, seed, test=None)
+        return self
+
+    def fit_logprobs(
+        self,
+        train: SequenceSet,
+        valid: SequenceSet | None,
+        test: SequenceSet,
+        seed: int = 0,
+    ) -> Ragged:
+        """Without ``score_command``: one trainer run, with ``{test}`` = ``test``.
+
+        ``fit`` then ``logprobs`` would run the trainer twice (once on the validation
+        units, once more from scratch on ``test``); the scores are the same for a
+        deterministic trainer. The learning curve then comes from ``curve.json`` only.
+        With ``score_command`` this is ``fit`` then ``logprobs``.
+        """
+        if self.score_command is not None:
+            return super().fit_logprobs(train, valid, test, seed)
+        values = self._fit(train, valid, seed, test=test)
+        return Ragged(values, test.offsets + np.arange(len(test) + 1))
+
+    def _fit(
+        self,
+        train: SequenceSet,
+        valid: SequenceSet | None,
+        seed: int,
+        test: SequenceSet | None,
+    ) -> np.ndarray:
+        """Run ``command`` once, scoring ``test`` (the validation units when None)."""
         self._validate_params()
         self.vocab_size_ = train.effective_vocab_size()
         self.seed_ = int(seed)
         empty = SequenceSet.from_list([], vocab_size=self.vocab_size_)
         self.train_ = _with_vocab(train, self.vocab_size_)
         self.valid_ = _with_vocab(valid if valid is not None else empty, self.vocab_size_)
+        if test is not None:
+            self._check_units(test)
+        scored = self.valid_ if test is None else _with_vocab(test, self.vocab_size_)
         workdir = Path(tempfile.mkdtemp(prefix="retrograde-command-"))
         out = workdir / "out"
         try:
-            values = self._run_fit_command(self.valid_, workdir, out)
+            values = self._run_fit_command(scored, workdir, out)
             self.learning_curve_ = read_curve(out / "curve.json")
         except BaseException:
             shutil.rmtree(workdir, ignore_errors=True)
@@ -126,10 +163,10 @@ class CommandFamily(Family):
         else:
             self.model_dir_ = None
             shutil.rmtree(workdir, ignore_errors=True)
-        if not self.learning_curve_ and len(self.valid_):
+        if not self.learning_curve_ and test is None and len(self.valid_):
             bits = -values.sum() / np.log(2) / max(len(self.valid_.tokens), 1)
             self.learning_curve_ = [{"epoch": 1, "valid_bits_per_token": float(bits)}]
-        return self
+        return values
 
     def _run_fit_command(self, test: SequenceSet, workdir: Path, out: Path) -> np.ndarray:
         for split, units in (("train", self.train_), ("valid", self.valid_), ("test", test)):

@@ -61,7 +61,8 @@ def fit_cell(
     note(
         f"train {len(train)} units / {len(train.tokens)} tokens; valid {len(valid)}; test {len(test)}"
     )
-    model.fit(train, valid if len(valid) else None, seed=seed)
+    # One call, so a family whose training run scores the test units trains only once.
+    logprobs = model.fit_logprobs(train, valid if len(valid) else None, test, seed=seed)
     # Plain Python numbers only: curve.json must load anywhere (numpy ints are not JSON).
     curve = [
         {str(key): _plain(value) for key, value in epoch.items()}
@@ -69,7 +70,6 @@ def fit_cell(
     ]
     for epoch in curve:
         note(f"epoch {epoch}")
-    logprobs = model.logprobs(test)
     values = np.asarray(logprobs.values, dtype=np.float64)
     expected = len(test.tokens) + len(test)
     if values.shape != (expected,) or not np.array_equal(logprobs.lengths, test.lengths + 1):
