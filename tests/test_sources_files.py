@@ -270,6 +270,33 @@ def test_tokens_keeps_the_units_of_one_folder_document_together(tmp_path):
     )
 
 
+def test_tokens_vocabulary_is_the_declared_one_not_only_the_ids_seen(tmp_path):
+    SequenceSet.from_list([[1, 2], [3]], vocab_size=50).save(tmp_path / "small")
+    SequenceSet.from_list([[4]], vocab_size=70).save(tmp_path / "large")
+    np.save(tmp_path / "ids.npy", np.array([5, 6], dtype=np.int32))
+    folders = make("tokens", files=[str(tmp_path / "small"), str(tmp_path / "large")])
+    assert folders.declared_vocab_size() == 70  # the largest a folder declares
+    assert make("tokens", files=str(tmp_path / "ids.npy")).declared_vocab_size() is None
+    given = make("tokens", files=str(tmp_path / "ids.npy"), vocab_size=100)
+    assert given.declared_vocab_size() == 100
+    prepared = prepare_units(
+        given.documents(), tokenizer=None, mode="document", vocab_size=given.declared_vocab_size()
+    )
+    assert {units.vocab_size for units in prepared.splits.values()} == {100}
+    undeclared = make("tokens", files=str(tmp_path / "ids.npy"))
+    prepared = prepare_units(undeclared.documents(), tokenizer=None, mode="document")
+    assert prepared.vocab_size == 7  # the largest id + 1
+
+
+def test_tokens_refuses_an_id_at_or_above_the_given_vocab_size(tmp_path):
+    np.save(tmp_path / "ids.npy", np.array([[1, 2], [3, 9]], dtype=np.int32))
+    source = make("tokens", files=str(tmp_path / "ids.npy"), vocab_size=9)
+    with pytest.raises(DataError, match=r"ids.npy:row 1: token id 9 is not below source 'tokens'"):
+        list(source.documents())
+    with pytest.raises(ConfigError, match="parameter vocab_size=0 is invalid"):
+        make("tokens", files=str(tmp_path / "ids.npy"), vocab_size=0)
+
+
 def test_tokens_reads_npy_files_one_document_per_1d_array_or_2d_row(tmp_path):
     np.save(tmp_path / "a.npy", np.array([5, 6, 7], dtype=np.int64))
     np.save(tmp_path / "b.npy", np.array([[1, 2], [3, 4]], dtype=np.int32))

@@ -132,24 +132,21 @@ def test_units_stage_for_a_calibration_source_writes_exact_floors(tmp_path):
     assert info["kind"] == "calibration" and sum(info["n_units"].values()) == 60
 
 
-def test_units_stage_cuts_token_arrays_into_windows_in_natural_order(tmp_path):
+def test_units_stage_cuts_token_arrays_into_windows_and_keeps_a_declared_vocabulary(tmp_path):
     root = tmp_path / "host"
     wdir = _host(root, [])
     stream = np.random.default_rng(0).integers(0, 50, size=1003).astype(np.int32)
     np.save(root / "data" / "ids.npy", stream)
-    params = compose(
-        root,
-        [
-            "study.sources.corpus.name=tokens",
-            "study.sources.corpus.params.files=[data/ids.npy]",
-            "~study.sources.corpus.params.split",
-            "study.sources.corpus.deps=[data/ids.npy]",
-            "study.sources.corpus.tokenizer=null",
-            "study.sources.corpus.units.mode=window",
-            "study.sources.corpus.units.window=10",
-        ],
-    )
-    _write_params(wdir, params)
+    overrides = [
+        "study.sources.corpus.name=tokens",
+        "study.sources.corpus.params.files=[data/ids.npy]",
+        "~study.sources.corpus.params.split",
+        "study.sources.corpus.deps=[data/ids.npy]",
+        "study.sources.corpus.tokenizer=null",
+        "study.sources.corpus.units.mode=window",
+        "study.sources.corpus.units.window=10",
+    ]
+    _write_params(wdir, compose(root, overrides))
     assert units_stage.main(["--params", str(wdir), "--source", "corpus"]) == 0
     folder = wdir / "data/corpus/units"
     rows = [
@@ -162,6 +159,11 @@ def test_units_stage_cuts_token_arrays_into_windows_in_natural_order(tmp_path):
     assert sorted(rows) == sorted(expected)
     assert not (folder / "tokenizer.json").exists()
     assert SequenceSet.load(folder / "train").vocab_size == int(stream[:1000].max()) + 1
+
+    # With the tokenizer's vocabulary size declared, every split carries it.
+    _write_params(wdir, compose(root, [*overrides, "+study.sources.corpus.params.vocab_size=64"]))
+    assert units_stage.main(["--params", str(wdir), "--source", "corpus"]) == 0
+    assert {SequenceSet.load(folder / name).vocab_size for name in ("train", "test")} == {64}
 
 
 # ------------------------------------------------------------------------------- reorder

@@ -260,6 +260,7 @@ def prepare_units(
     fractions: Sequence[float] = (0.8, 0.1, 0.1),
     salt: str = "retrograde",
     remainder: str = "drop",
+    vocab_size: int | None = None,
 ) -> PreparedUnits:
     """Cut, split, fit the vocabulary on train, and encode (see the module docstring).
 
@@ -278,6 +279,9 @@ def prepare_units(
         Changing the salt draws a different (equally valid) split.
     remainder : {"drop", "keep"}
         What to do with each document's last partial window.
+    vocab_size : int or None
+        Token documents only: the vocabulary size they declare; the result's is the larger
+        of it and the largest id + 1. Ignored for text (the tokenizer's vocabulary counts).
 
     Examples
     --------
@@ -328,7 +332,7 @@ def prepare_units(
         n_bytes: np.ndarray | None = np.fromiter((len(k) for k in keys), np.int64, len(keys))
     else:
         tokens = np.concatenate(contents)
-        vocab_size = int(tokens.max()) + 1
+        vocab_size = max(int(tokens.max()) + 1, vocab_size or 0)
         n_bytes = None
 
     corpus = SequenceSet(

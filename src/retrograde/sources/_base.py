@@ -77,7 +77,12 @@ class FileSource(Source):
 
     @abstractmethod
     def documents(self) -> Iterator[Document]:
-        """Yield the documents one at a time; ``doc_id`` counts them from 0."""
+        """Yield the documents one at a time; ``doc_id`` numbers them from 0 (pieces of one
+        document, such as the units of one folder document for ``tokens``, share one)."""
+
+    def declared_vocab_size(self) -> int | None:
+        """The vocabulary size token documents declare (None: the largest id + 1)."""
+        return None
 
 
 class EncodedFileSource(FileSource):

@@ -5,6 +5,10 @@ token document, with its ``n_bytes`` when the folder has them) or a ``.npy`` fil
 integer array is one document; a 2-D array is one document per row). Globs may match both.
 Arrays are memory-mapped, so a large file is read page by page.
 
+The vocabulary size is ``vocab_size`` when given (every id must lie below it), else the
+largest ``vocab_size`` the folders' ``meta.json`` declare, else the largest id + 1: a
+model's distributions then cover the team's whole vocabulary, not only the ids seen.
+
 Units of a folder that share a document id (its ``doc_ids.npy``) keep sharing one, so the
 bootstrap resamples them together instead of treating pieces of one document as
 independent; ids are renumbered so that different folders and files never share one.
@@ -20,6 +24,7 @@ from typing import Any
 import numpy as np
 
 from .._document import Document
+from .._validation import check_int
 from ..errors import DataError
 from ..sequences import SequenceSet
 from . import registry
@@ -36,6 +41,9 @@ class TokensSource(FileSource):
     ----------
     files : str or list of str
         Folders written by ``SequenceSet.save``, ``.npy`` files, or globs over them.
+    vocab_size : int or None, default None
+        The tokenizer's vocabulary size; ``None`` takes the folders' own (or the largest
+        id + 1).
 
     Examples
     --------
@@ -49,12 +57,25 @@ class TokensSource(FileSource):
 
     name = "tokens"
 
-    def __init__(self, *, files: Any) -> None:
+    def __init__(self, *, files: Any, vocab_size: int | None = None) -> None:
         self.files = files
+        self.vocab_size = vocab_size
         self._validate_params()
 
     def _validate_params(self) -> None:
+        if self.vocab_size is not None:
+            check_int(self._owner, "vocab_size", self.vocab_size, 1)
         self.paths()
+
+    def declared_vocab_size(self) -> int | None:
+        """``vocab_size`` if given, else the largest one the folders declare, else None."""
+        if self.vocab_size is not None:
+            return int(self.vocab_size)
+        declared = [
+            SequenceSet.load(path, mmap=True).vocab_size for path in self.paths() if path.is_dir()
+        ]
+        sizes = [int(size) for size in declared if size is not None]
+        return max(sizes) if sizes else None
 
     def paths(self) -> list[Path]:
         """The ``.npy`` files and folders read; a folder's own files are listed inside it."""
@@ -95,6 +116,13 @@ class TokensSource(FileSource):
                 else:
                     doc_id = renumbered[group] = next_id
                     next_id += 1
+                if self.vocab_size is not None and len(tokens):
+                    largest = int(np.max(tokens))
+                    if largest >= self.vocab_size:
+                        raise DataError(
+                            f"{where}: token id {largest} is not below {self._owner}'s "
+                            f"vocab_size={self.vocab_size}; raise vocab_size or check the ids"
+                        )
                 yield Document(doc_id, where, tokens=tokens, n_bytes=n_bytes)
         if next_id == 0:
             raise DataError(f"{self._owner}: the files hold no units; check {self.files!r}")

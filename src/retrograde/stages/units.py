@@ -137,6 +137,7 @@ def _file_units(name: str, source: Any, spec: dict[str, Any]) -> tuple[dict[str,
         fractions=tuple(split["fractions"]),
         salt=split["salt"],
         remainder=units_spec["remainder"],
+        vocab_size=source.declared_vocab_size(),
     )
     return dict(prepared.splits), prepared
 
