@@ -3,18 +3,15 @@
 import math
 import sys
 from collections import Counter
-from pathlib import Path
 
 import numpy as np
 import pytest
 
+from _trainers import FIT, TOY, counting_fit_command
 from retrograde import SequenceSet
 from retrograde.errors import ConfigError, DataError, FitError
 from retrograde.families import load, make
 
-TOY = str(Path(__file__).resolve().parents[1] / "examples" / "toy_trainer.py")
-FIT = [sys.executable, TOY, "fit", "--train", "{train}", "--valid", "{valid}"]
-FIT += ["--test", "{test}", "--out", "{out}", "--seed", "{seed}"]
 SCORE = [sys.executable, TOY, "score", "--model", "{model}", "--test", "{test}", "--out", "{out}"]
 
 TRAIN = SequenceSet.from_list([[0, 1, 2, 1], [2, 2, 0], [1], [0, 1, 2, 2, 1]], vocab_size=4)
@@ -88,21 +85,8 @@ def test_with_a_score_command_the_fitted_trainer_folder_is_reused_saved_and_relo
     )
 
 
-def _counting(tmp_path, command):
-    """``command`` behind a wrapper that appends one line to a file per trainer run."""
-    runs = tmp_path / "runs.txt"
-    wrapper = tmp_path / "count_runs.py"
-    wrapper.write_text(
-        "import runpy, sys\n"
-        f"with open({str(runs)!r}, 'a') as f:\n    f.write('run\\n')\n"
-        "sys.argv = sys.argv[1:]\n"
-        "runpy.run_path(sys.argv[0], run_name='__main__')\n"
-    )
-    return [sys.executable, str(wrapper), *command[1:]], runs
-
-
 def test_fit_logprobs_without_a_score_command_trains_once(tmp_path):
-    command, runs = _counting(tmp_path, FIT)
+    command, runs = counting_fit_command(tmp_path)
     twice = make("command", command=command).fit(TRAIN, VALID, seed=1)
     expected = twice.logprobs(TEST).values
     assert runs.read_text().count("run") == 2  # fit on valid, then again for test
@@ -118,7 +102,7 @@ def test_fit_logprobs_without_a_score_command_trains_once(tmp_path):
 
 
 def test_fit_logprobs_refuses_test_ids_outside_the_training_vocabulary(tmp_path):
-    command, runs = _counting(tmp_path, FIT)
+    command, runs = counting_fit_command(tmp_path)
     wide = SequenceSet.from_list([[1, 7]], vocab_size=8)
     with pytest.raises(DataError, match="token id 7 is outside the fitted vocabulary of 4"):
         make("command", command=command).fit_logprobs(TRAIN, VALID, wide, seed=0)

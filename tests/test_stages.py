@@ -220,18 +220,9 @@ def test_fit_cell_returns_a_json_ready_learning_curve_for_an_epoch_based_family(
 
 
 def test_fit_cell_runs_a_command_trainer_once_per_cell(tmp_path):
-    import sys
+    from _trainers import counting_fit_command
 
-    toy = Path(__file__).resolve().parents[1] / "examples" / "toy_trainer.py"
-    runs = tmp_path / "runs.txt"
-    wrapper = tmp_path / "count_runs.py"  # one line per trainer run, then the toy trainer
-    wrapper.write_text(
-        f"import runpy, sys\nwith open({str(runs)!r}, 'a') as f:\n    f.write('run\\n')\n"
-        f"sys.argv = [{str(toy)!r}, *sys.argv[1:]]\n"
-        f"runpy.run_path({str(toy)!r}, run_name='__main__')\n"
-    )
-    command = [sys.executable, str(wrapper), "fit", "--train", "{train}", "--valid", "{valid}"]
-    command += ["--test", "{test}", "--out", "{out}", "--seed", "{seed}"]
+    command, runs = counting_fit_command(tmp_path)
     rows = [[0, 1, 2], [2, 1], [1, 1, 0, 2]]
     splits = {
         name: SequenceSet.from_list(rows, vocab_size=3) for name in ("train", "valid", "test")
