@@ -129,6 +129,8 @@ def _file_units(name: str, source: Any, spec: dict[str, Any]) -> tuple[dict[str,
         else tokenize.make(tokenizer_spec["name"], **tokenizer_spec["params"])
     )
     units_spec, split = spec["units"], spec["split"]
+    # Optional for plug-in sources that only implement paths() and documents().
+    declared = getattr(source, "declared_vocab_size", None)
     prepared = prepare_units(
         source.documents(),
         tokenizer=tokenizer,
@@ -137,7 +139,7 @@ def _file_units(name: str, source: Any, spec: dict[str, Any]) -> tuple[dict[str,
         fractions=tuple(split["fractions"]),
         salt=split["salt"],
         remainder=units_spec["remainder"],
-        vocab_size=source.declared_vocab_size(),
+        vocab_size=declared() if callable(declared) else None,
     )
     return dict(prepared.splits), prepared
 
