@@ -1,13 +1,16 @@
-"""The shell examples of README.md's quick start and the user guide run as written.
+"""The shell examples of README.md's quick start, the user guide and the torch calibration
+recipe (docs/torch.md) run as written.
 
 They run in order in one real git + DVC host (with a small invented corpus), as a user
 would type them: README's quick start, then the guide's `retrograde run` variants, then
-its review commands. Each line must exit 0 (`--fail-on-change` may exit 1: that is its
+its review commands. The torch recipe runs in a host of its own, with its two YAML files
+saved where the page says. Each line must exit 0 (`--fail-on-change` may exit 1: that is its
 documented answer when a gap moved).
 """
 
 from __future__ import annotations
 
+import json
 import re
 import shlex
 import subprocess
@@ -76,8 +79,6 @@ YAML = re.compile(r"^```yaml\n(?P<code>.*?)^```", re.MULTILINE | re.DOTALL)
 
 def test_the_torch_calibration_recipe_runs_and_the_forward_fit_reaches_the_floor(tmp_path):
     pytest.importorskip("torch")
-    import json
-
     host = new_host(tmp_path / "host")
     subprocess.run([sys.executable, "-m", "retrograde", "init"], cwd=host, check=True)
     text = (ROOT / "docs/torch.md").read_text()
