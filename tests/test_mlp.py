@@ -107,3 +107,21 @@ def test_without_validation_units_all_epochs_run_and_the_training_loss_is_record
 def test_invalid_parameters_are_refused_naming_key_value_and_range(params, message):
     with pytest.raises(ConfigError, match=r"family 'mlp': parameter " + message):
         small_mlp(**params).fit(chain_units(2, 5, seed=0))
+
+
+def test_one_hot_columns_stay_exact_where_window_times_vocabulary_passes_two_to_the_31():
+    # 127 slots x (2**24 + 2**20 + 1) symbols = 2.26e9 feature columns: the column index of
+    # a symbol in the last slot must not wrap in int32.
+    model = make("mlp", window=127)
+    vocab_size = (1 << 24) + (1 << 20)
+    model.vocab_size_ = vocab_size
+    units = SequenceSet.from_list([[vocab_size - 1, 3]], vocab_size=vocab_size)
+    features, outcomes, _ = model._features(units)
+    n_symbols = vocab_size + 1
+    assert features.shape == (3, 127 * n_symbols)
+    last_event = features[2].indices.astype(np.int64)  # predicting the end marker
+    expected = {3, n_symbols + vocab_size - 1} | {
+        lag * n_symbols + vocab_size for lag in range(2, 127)
+    }
+    assert set(last_event.tolist()) == expected
+    assert outcomes.tolist() == [vocab_size - 1, 3, vocab_size]

@@ -86,3 +86,27 @@ def test_atomic_writes_give_ordinary_permissions(tmp_path):
         os.umask(mask)
     assert stat.S_IMODE((tmp_path / "a.txt").stat().st_mode) == 0o644
     assert stat.S_IMODE((tmp_path / "d").stat().st_mode) == 0o755
+
+
+def test_token_ids_that_do_not_fit_int32_are_refused_not_wrapped():
+    # An int64 row holding 2**32 + 5 would wrap to 5 in a plain int32 cast.
+    with pytest.raises(ValueError, match="token ids"):
+        SequenceSet.from_list([np.array([1, 2**32 + 5], dtype=np.int64)])
+    with pytest.raises(ValueError, match="token ids"):
+        SequenceSet(np.array([2**31], dtype=np.int64), np.array([0, 1]))
+    with pytest.raises(ValueError, match="vocab_size"):
+        SequenceSet.from_list([[1]], vocab_size=2**31)
+
+
+def test_a_vocabulary_of_two_to_the_24_ids_round_trips_through_the_folder_format(tmp_path):
+    top = (1 << 24) - 1
+    s = SequenceSet.from_list([[top, 0, top - 1]], vocab_size=1 << 24)
+    s.save(tmp_path / "set")
+    assert SequenceSet.load(tmp_path / "set")[0].tolist() == [top, 0, top - 1]
+
+
+def test_row_sums_do_not_lose_precision_after_a_large_running_total():
+    # A running-total difference gives (1e15 + 0.1 + 0.2) - 1e15 = 0.25; each row summed on
+    # its own gives 0.1 + 0.2 exactly as Python does (math.fsum rounds to the same double).
+    rows = Ragged.from_list([[1e15], [], [0.1, 0.2]])
+    assert rows.sums().tolist() == [1e15, 0.0, 0.1 + 0.2]

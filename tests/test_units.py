@@ -236,3 +236,9 @@ def test_split_is_fast_on_100k_units():
     text = "\n".join(f"unit {i} with some words" for i in range(100_000))
     prepared = prepare_units([text_doc(text)], tokenizer=tokenize.make("chars"), mode="line")
     assert sum(len(s) for s in prepared.splits.values()) == 100_000
+
+
+def test_token_ids_too_large_for_int32_are_refused_naming_the_document():
+    documents = [Document(doc_id=0, where="ids.npy:row 3", tokens=np.array([1, 2**31], np.int64))]
+    with pytest.raises(DataError, match=r"ids.npy:row 3: token id 2147483648 is too large"):
+        prepare_units(documents, tokenizer=None, mode="document")

@@ -28,9 +28,26 @@ import numpy as np
 from ._io import atomic_dir
 from .errors import DataError
 
-__all__ = ["FORMAT", "Ragged", "SequenceSet"]
+__all__ = ["FORMAT", "INT32_LIMIT", "MAX_VOCAB_SIZE", "Ragged", "SequenceSet", "index_dtype"]
 
 FORMAT = "retrograde.sequences/1"
+
+#: Counts and indices below this fit int32. Index arrays use int32 below it to halve their
+#: memory and int64 from it on (:func:`index_dtype`); tests lower it to run the int64 paths.
+INT32_LIMIT = 1 << 31
+#: Token ids are stored as int32 and the end marker takes id ``vocab_size``, so a vocabulary
+#: may hold at most ``2**31 - 1`` ids.
+MAX_VOCAB_SIZE = (1 << 31) - 1
+
+
+def index_dtype(largest: int) -> type[np.signedinteger[Any]]:
+    """``np.int32`` when every value up to ``largest`` fits it (below :data:`INT32_LIMIT`), else
+    ``np.int64``.
+
+    >>> index_dtype(10), index_dtype(2**31)
+    (<class 'numpy.int32'>, <class 'numpy.int64'>)
+    """
+    return np.int32 if largest < INT32_LIMIT else np.int64
 
 
 class Ragged:
@@ -84,9 +101,19 @@ class Ragged:
         )
 
     def sums(self) -> np.ndarray:
-        """(n_rows,) sum of each row (0 for empty rows)."""
-        cumulative = np.concatenate([[0], np.cumsum(self.values, dtype=np.float64)])
-        return cumulative[self.offsets[1:]] - cumulative[self.offsets[:-1]]
+        """(n_rows,) float64 sum of each row (0 for empty rows).
+
+        Each row is summed on its own (``np.add.reduceat``), not as a difference of running
+        totals, whose rounding error grows with everything before the row (at 10**9
+        log-probabilities a running total reaches ~5e9 nats and loses ~1e-6 nats per row).
+        """
+        out = np.zeros(len(self), dtype=np.float64)
+        filled = self.lengths > 0
+        if filled.any():
+            values = np.asarray(self.values, dtype=np.float64)
+            # Starts of the non-empty rows delimit exactly those rows (empty rows add nothing).
+            out[filled] = np.add.reduceat(values, self.offsets[:-1][filled])
+        return out
 
     def to_list(self) -> list[np.ndarray]:
         return [np.array(row) for row in self]
@@ -126,11 +153,12 @@ class SequenceSet(Ragged):
         for name, arr in (("doc_ids", self.doc_ids), ("n_bytes", self.n_bytes)):
             if arr is not None and arr.shape != (n,):
                 raise ValueError(f"{name} must have one entry per unit ({n}), got {arr.shape}")
-        if len(tokens) and (
-            tokens.min() < 0 or (vocab_size is not None and tokens.max() >= vocab_size)
-        ):
+        if vocab_size is not None and not 0 <= int(vocab_size) <= MAX_VOCAB_SIZE:
+            raise ValueError(f"vocab_size must lie in [0, {MAX_VOCAB_SIZE}], got {vocab_size}")
+        limit = MAX_VOCAB_SIZE if vocab_size is None else int(vocab_size)
+        if len(tokens) and (tokens.min() < 0 or tokens.max() >= limit):
             raise ValueError(
-                f"token ids must lie in [0, {vocab_size}); got {tokens.min()}..{tokens.max()}"
+                f"token ids must lie in [0, {limit}); got {tokens.min()}..{tokens.max()}"
             )
 
     @property
@@ -146,7 +174,12 @@ class SequenceSet(Ragged):
         doc_ids: Any = None,
         n_bytes: Any = None,
     ) -> SequenceSet:
-        ragged = Ragged.from_list(rows, dtype=np.int32)
+        # Rows are read as int64 first: a direct int32 cast would wrap ids >= 2**31 silently;
+        # the range check in __init__ then refuses them.
+        ragged = Ragged.from_list(rows, dtype=np.int64)
+        values = ragged.values
+        if not len(values) or (values.min() >= 0 and values.max() <= MAX_VOCAB_SIZE):
+            ragged = Ragged(values.astype(np.int32), ragged.offsets)
         return cls(
             ragged.values, ragged.offsets, vocab_size=vocab_size, doc_ids=doc_ids, n_bytes=n_bytes
         )

@@ -39,7 +39,7 @@ import numpy as np
 from ._document import Document
 from ._validation import check_choice, check_float, check_int, invalid
 from .errors import ConfigError, DataError
-from .sequences import SequenceSet
+from .sequences import MAX_VOCAB_SIZE, SequenceSet
 from .tokenize import ByteTokenizer, CharTokenizer, Tokenizer
 
 __all__ = ["MODES", "SPLITS", "PreparedUnits", "assign_splits", "check_fractions", "prepare_units"]
@@ -232,6 +232,11 @@ def _cut(
             tokens = np.asarray(document.tokens).astype(np.int64).reshape(-1)
             if len(tokens) and tokens.min() < 0:
                 raise DataError(f"{document.where}: token ids must be >= 0, found {tokens.min()}")
+            if len(tokens) and tokens.max() >= MAX_VOCAB_SIZE:
+                raise DataError(
+                    f"{document.where}: token id {tokens.max()} is too large; ids are stored as "
+                    f"int32, so they must lie below {MAX_VOCAB_SIZE} (renumber the vocabulary)"
+                )
             texts_or_tokens: list[Any] = [tokens]
         else:
             text, text_tokenizer = document.text, tokenizer

@@ -12,6 +12,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..sequences import index_dtype
+
 __all__ = ["bitset_rank", "popcount64"]
 
 _ONE = np.uint64(1)
@@ -53,12 +55,12 @@ def bitset_rank(keys: np.ndarray, space: int) -> tuple[np.ndarray, np.ndarray]:
         np.bitwise_or.at(words, chunk >> 6, np.left_shift(_ONE, (chunk & 63).astype(np.uint64)))
     counts = popcount64(words)
     n_distinct = int(counts.sum())
-    index_dtype = np.int32 if n_distinct < (1 << 31) else np.int64
+    dtype = index_dtype(n_distinct)
     # (n_words,) how many distinct keys lie in the words before each word.
-    before = np.zeros(len(words), dtype=index_dtype)
+    before = np.zeros(len(words), dtype=dtype)
     np.cumsum(counts[:-1], out=before[1:])
     del counts
-    ids = np.empty(len(keys), dtype=index_dtype)
+    ids = np.empty(len(keys), dtype=dtype)
     for start in range(0, len(keys), _CHUNK):
         chunk = keys[start : start + _CHUNK].astype(np.int64)
         word = chunk >> 6

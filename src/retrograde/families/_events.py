@@ -12,7 +12,7 @@ from collections.abc import Callable
 
 import numpy as np
 
-from ..sequences import SequenceSet
+from ..sequences import SequenceSet, index_dtype
 from ._ngram_counts import gather
 
 __all__ = ["unit_events"]
@@ -31,13 +31,13 @@ def unit_events(units: SequenceSet) -> tuple[Callable[[int], np.ndarray], np.nda
     event_offsets = units.offsets + np.arange(n_units + 1, dtype=np.int64)
     n_events = int(event_offsets[-1])
     # int32 halves the memory of these (n_events,) arrays at 25 M tokens.
-    index_dtype = np.int32 if n_events < (1 << 31) else np.int64
-    unit_of_event: np.ndarray = np.repeat(np.arange(n_units, dtype=index_dtype), lengths + 1)
+    dtype = index_dtype(n_events)
+    unit_of_event: np.ndarray = np.repeat(np.arange(n_units, dtype=dtype), lengths + 1)
     # Flat token index of each event's own position (== next unit's start for end markers).
-    token_index = np.arange(n_events, dtype=index_dtype) - unit_of_event
+    token_index = np.arange(n_events, dtype=dtype) - unit_of_event
     # Position inside the unit, capped: only "is it at least lag?" is asked, lag <= 127.
-    # Computed in place in index_dtype: int64 temporaries here were the fit's memory peak.
-    starts = gather(units.offsets[:-1].astype(index_dtype), unit_of_event)
+    # Computed in place in that dtype: int64 temporaries here were the fit's memory peak.
+    starts = gather(units.offsets[:-1].astype(dtype), unit_of_event)
     del unit_of_event
     np.subtract(token_index, starts, out=starts)
     np.minimum(starts, 127, out=starts)

@@ -26,6 +26,7 @@ from typing import Any
 
 import numpy as np
 
+from ..sequences import index_dtype
 from ._bitset_rank import bitset_rank
 
 __all__ = [
@@ -71,10 +72,6 @@ def gather(values: np.ndarray, index: np.ndarray, offset: int = 0) -> np.ndarray
     return out
 
 
-def _index_dtype(n: int) -> type[np.signedinteger[Any]]:
-    return np.int32 if n < (1 << 31) else np.int64
-
-
 def rank_pairs(
     high: np.ndarray, low: np.ndarray, n_low: int, *, overwrite_high: bool = False
 ) -> tuple[np.ndarray, np.ndarray]:
@@ -94,7 +91,7 @@ def rank_pairs(
     if n_high * n_low >= 1 << 62:
         raise OverflowError(f"n-gram key space {n_high} x {n_low} does not fit in 63 bits")
     space = n_high * n_low
-    dtype = np.int32 if space < (1 << 31) else np.int64
+    dtype = index_dtype(space)
     if overwrite_high and high.dtype == dtype:
         keys = high
         keys *= n_low
@@ -110,7 +107,7 @@ def rank_pairs(
             present[keys[start : start + _GATHER_CHUNK].astype(np.intp)] = True
         distinct = np.flatnonzero(present)
         del present
-        rank = np.empty(space, dtype=_index_dtype(len(distinct)))
+        rank = np.empty(space, dtype=index_dtype(len(distinct)))
         rank[distinct] = np.arange(len(distinct))
         return gather(rank, keys), distinct.astype(np.int64)
     if space <= _BITSET_KEYS_PER_EVENT * len(keys):
@@ -121,7 +118,7 @@ def rank_pairs(
     is_new = np.empty(len(sorted_keys), dtype=bool)
     is_new[:1] = True
     np.not_equal(sorted_keys[1:], sorted_keys[:-1], out=is_new[1:])
-    ids = np.empty(len(order), dtype=_index_dtype(len(order)))
+    ids = np.empty(len(order), dtype=index_dtype(len(order)))
     ids[order] = np.cumsum(is_new, dtype=ids.dtype) - 1
     return ids, sorted_keys[is_new].astype(np.int64)
 
@@ -142,18 +139,22 @@ def distinct_counts(keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 def lookup(sorted_keys: np.ndarray, keys: np.ndarray) -> np.ndarray:
-    """Index of each key in ``sorted_keys``, or ``-1`` where it is absent.
+    """(len(keys),) int64 index of each key in ``sorted_keys``, or ``-1`` where it is absent.
 
     A dense table (one slot per possible key) replaces the binary search when the key space
-    is small next to the number of queries: random binary searches miss the cache.
+    is small next to the number of queries: random binary searches miss the cache. The
+    result is int64 on every path: callers build the next level's keys as
+    ``id * n_symbols + symbol``, which passes 2**31 once ``id`` passes ``2**31 / n_symbols``
+    (46,340 ids at a vocabulary of 46,340), and numpy keeps an int32 array's dtype.
     """
     if len(sorted_keys) == 0:
         return np.full(len(keys), -1, dtype=np.int64)
     space = int(sorted_keys[-1]) + 1
     if space <= min(_DENSE_KEYS, max(1 << 16, 4 * len(keys))):
-        table = np.full(space + 1, -1, dtype=_index_dtype(len(sorted_keys)))
+        table = np.full(space + 1, -1, dtype=index_dtype(len(sorted_keys)))
         table[sorted_keys] = np.arange(len(sorted_keys))
-        return table[np.minimum(keys, space)]  # keys >= space are absent (slot ``space``)
+        # keys >= space are absent (slot ``space``)
+        return table[np.minimum(keys, space)].astype(np.int64, copy=False)
     if len(sorted_keys) > _CACHE_KEYS and len(keys) > 1024:
         # Sorted queries let each binary search start where the last one ended, which
         # keeps a table larger than the CPU cache from missing on every step.
@@ -284,15 +285,18 @@ def interpolated_probs(
     """
     n_symbols = tables.n_symbols
     probs = np.full(len(outcomes), 1.0 / n_symbols)
+    # Ids and keys stay int64 throughout: ``id * n_symbols`` passes 2**31 at large
+    # vocabularies, and an int32 operand would wrap silently (numpy keeps array dtypes).
     context_ids = np.zeros(len(outcomes), dtype=np.int64)
     for k in range(1, tables.order + 1):
         if k > 1:
             # Extend the context by one symbol; once unseen (-1), it stays unseen.
-            keys = np.maximum(context_ids, 0) * n_symbols + symbol_at_lag(k - 1)
-            context_ids = np.where(context_ids >= 0, lookup(tables.context_keys[k - 1], keys), -1)
+            keys = np.maximum(context_ids, 0) * n_symbols + symbol_at_lag(k - 1).astype(np.int64)
+            found = lookup(tables.context_keys[k - 1], keys)
+            context_ids = np.where(context_ids >= 0, found, np.int64(-1))
         seen = context_ids >= 0
         seen_ids = context_ids[seen]
-        where = lookup(tables.type_keys[k], seen_ids * n_symbols + outcomes[seen])
+        where = lookup(tables.type_keys[k], seen_ids * n_symbols + outcomes[seen].astype(np.int64))
         alpha = np.where(where >= 0, tables.alphas[k][np.maximum(where, 0)], 0.0)
         probs[seen] = alpha + tables.gammas[k][seen_ids] * probs[seen]
     return probs

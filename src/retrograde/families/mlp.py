@@ -26,7 +26,7 @@ from tqdm.auto import tqdm
 
 from .._validation import check_float, check_int, invalid
 from ..errors import DataError
-from ..sequences import Ragged, SequenceSet
+from ..sequences import Ragged, SequenceSet, index_dtype
 from . import registry
 from ._base import Family
 from ._events import unit_events
@@ -138,11 +138,11 @@ class MLP(Family):
         n_symbols = self.vocab_size_ + 1
         # (n_events, window): column j holds the feature index of the symbol j + 1 back.
         n_features = self.window * n_symbols
-        columns = np.empty(
-            (len(outcomes), self.window), dtype=np.int32 if n_features < 2**31 else np.int64
-        )
+        columns = np.empty((len(outcomes), self.window), dtype=index_dtype(n_features))
         for lag in range(1, self.window + 1):
-            columns[:, lag - 1] = (lag - 1) * n_symbols + symbol_at_lag(lag)
+            # In the columns' dtype: an int32 symbol plus (lag - 1) * n_symbols may pass 2**31.
+            symbols = symbol_at_lag(lag).astype(columns.dtype, copy=False)
+            columns[:, lag - 1] = symbols + (lag - 1) * n_symbols
         return _one_hot(columns, n_features), outcomes, event_offsets
 
     # ------------------------------------------------------------------ learning
@@ -299,10 +299,10 @@ def _one_hot(columns: np.ndarray, n_features: int) -> scipy.sparse.csr_matrix:
     """CSR matrix with a 1 at ``columns[e, j]`` for every row ``e`` (one per window slot)."""
     n_rows, per_row = columns.shape
     # int32 indices halve the index memory; scipy needs int64 past 2**31 entries.
-    index_dtype = np.int32 if max(n_rows * per_row, n_features) < 2**31 else np.int64
-    indptr = np.arange(0, n_rows * per_row + 1, per_row, dtype=index_dtype)
+    dtype = index_dtype(max(n_rows * per_row, n_features))
+    indptr = np.arange(0, n_rows * per_row + 1, per_row, dtype=dtype)
     data = np.ones(n_rows * per_row, dtype=np.float64)
-    indices = columns.ravel().astype(index_dtype, copy=False)
+    indices = columns.ravel().astype(dtype, copy=False)
     return scipy.sparse.csr_matrix((data, indices, indptr), shape=(n_rows, n_features))
 
 
