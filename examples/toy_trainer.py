@@ -9,9 +9,11 @@ a team's own trainer would) and writes the files the ``command`` family expects:
 
 ``fit`` trains, saves ``{out}/model.npz``, writes ``{out}/curve.json`` (validation bits per
 token) and ``{out}/logprobs.npy`` for the test units; ``score`` reloads ``model.npz`` and
-scores. Log-probabilities follow the protocol: per test unit, ``len + 1`` natural logs (each
-token, then the end marker, outcome ``vocab_size``); the begin marker ``vocab_size`` pads
-the context before the first token.
+scores. Log-probabilities follow the protocol (``docs/trainers.md``): per test unit,
+``len + 1`` natural logs (each token, then the end marker, outcome ``vocab_size``); the
+begin marker ``vocab_size`` pads the context before the first token. For the normalization
+probe, ``{test}/probe.npy`` lists ``(unit, position)`` pairs and ``{out}/probe_logprobs.npy``
+gets the whole distribution at each: ``vocab_size + 1`` natural logs that sum to 1.
 
 The model: ``p(w | c) = (n(c, w) + k) / (n(c) + k (V + 1))`` with ``k`` add-k smoothing
 (Laplace's rule for ``k = 1``). The seed is unused (counting is exact); it is accepted
@@ -60,6 +62,19 @@ def logprobs(table: np.ndarray, folder: str) -> tuple[np.ndarray, int]:
     return np.log(table[previous, outcome]), len(tokens)
 
 
+def write_scores(table: np.ndarray, test: str, out: str) -> None:
+    """``{out}/logprobs.npy`` for the test units, and the probe's full distributions."""
+    np.save(Path(out) / "logprobs.npy", logprobs(table, test)[0])
+    probe_path = Path(test) / "probe.npy"
+    if probe_path.is_file():
+        tokens, offsets, vocab_size = read_units(test)
+        unit, position = np.load(probe_path, allow_pickle=False).reshape(-1, 2).T
+        # The symbol before each probed position: the previous token, or the begin marker.
+        padded = np.append(tokens, 0)
+        previous = np.where(position > 0, padded[offsets[unit] + position - 1], vocab_size)
+        np.save(Path(out) / "probe_logprobs.npy", np.log(table[previous]))  # (k, V + 1)
+
+
 def fit(args: argparse.Namespace) -> None:
     tokens, offsets, vocab_size = read_units(args.train)
     previous, outcome = bigram_events(tokens, offsets, vocab_size)
@@ -74,14 +89,14 @@ def fit(args: argparse.Namespace) -> None:
         bits = -valid_logprobs.sum() / math.log(2) / valid_tokens
         curve = [{"epoch": 1, "valid_bits_per_token": float(bits)}]
         (out / "curve.json").write_text(json.dumps(curve))
-    np.save(out / "logprobs.npy", logprobs(table, args.test)[0])
+    write_scores(table, args.test, args.out)
     print(f"toy_trainer: fitted add-{args.k} bigram, seed {args.seed}", file=sys.stderr)
 
 
 def score(args: argparse.Namespace) -> None:
     with np.load(Path(args.model) / "model.npz", allow_pickle=False) as data:
         table = data["table"]
-    np.save(Path(args.out) / "logprobs.npy", logprobs(table, args.test)[0])
+    write_scores(table, args.test, args.out)
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -205,3 +205,62 @@ def test_no_temporary_folders_are_left_behind_after_a_fit_or_a_failure(tmp_path,
     with pytest.raises(FitError):
         failing_trainer(tmp_path, "sys.exit(3)\n").fit(TRAIN, VALID)
     assert list(scratch.iterdir()) == []
+
+
+# ------------------------------------------------------------------ normalization probe
+# A trainer that claims log p = -1e-9 for every token reports 0.0000 bits/token; only the
+# probe (full distributions at sampled positions, docs/trainers.md) shows it is no model.
+_PROBE_HEAD = (
+    "probe = np.load(Path(args['test'], 'probe.npy'))\n"
+    "V = meta['vocab_size']\n"
+    "probe_out = Path(args['out'], 'probe_logprobs.npy')\n"
+)
+
+
+def test_a_trainer_that_claims_near_certainty_without_a_probe_is_refused(tmp_path):
+    model = failing_trainer(tmp_path, "np.save(out, np.full(n, -1e-9))\n")
+    with pytest.raises(FitError, match=r"wrote no \{out\}/probe_logprobs.npy.*docs/trainers.md"):
+        model.fit_logprobs(TRAIN, VALID, TEST)
+
+
+def test_a_probe_whose_probabilities_do_not_sum_to_one_is_refused(tmp_path):
+    body = _PROBE_HEAD + (
+        "np.save(out, np.full(n, -1e-9))\n"
+        "np.save(probe_out, np.full((len(probe), V + 1), -1e-9))\n"  # every outcome ~certain
+    )
+    model = failing_trainer(tmp_path, body)
+    with pytest.raises(FitError, match=r"position \d+ sum to 5, not 1"):
+        model.fit_logprobs(TRAIN, VALID, TEST)
+
+
+def test_a_probe_that_disagrees_with_the_per_token_values_is_refused(tmp_path):
+    # A proper uniform distribution in the probe, but -1e-9 claimed for every token.
+    body = _PROBE_HEAD + (
+        "np.save(out, np.full(n, -1e-9))\n"
+        "np.save(probe_out, np.full((len(probe), V + 1), -np.log(V + 1)))\n"
+    )
+    model = failing_trainer(tmp_path, body)
+    with pytest.raises(FitError, match=r"reported log-probability -1e-09 disagrees"):
+        model.fit_logprobs(TRAIN, VALID, TEST)
+
+
+def test_a_probe_of_the_wrong_shape_is_refused(tmp_path):
+    body = _PROBE_HEAD + (
+        "np.save(out, np.full(n, -np.log(V + 1)))\n"
+        "np.save(probe_out, np.full((len(probe), V), -np.log(V)))\n"  # end marker left out
+    )
+    model = failing_trainer(tmp_path, body)
+    with pytest.raises(FitError, match=r"expected float64 \(\d+, 5\)"):
+        model.fit_logprobs(TRAIN, VALID, TEST)
+
+
+def test_the_example_trainer_writes_probes_that_match_its_scores():
+    from retrograde.families._probe import check_probe, probe_positions
+
+    model = make("command", command=FIT)
+    values = model.fit_logprobs(TRAIN, VALID, TEST, seed=3).values
+    positions = probe_positions(TEST, 16, seed=3)
+    distributions = model.probe_logprobs(TEST, positions)
+    check_probe("toy", TEST, values, positions, distributions)  # raises when wrong
+    # All 8 test events (6 tokens + 3 end markers, fewer than 16) are probed.
+    assert len(positions) == len(TEST.tokens) + len(TEST)

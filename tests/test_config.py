@@ -11,6 +11,7 @@ import pytest
 import yaml
 from omegaconf import OmegaConf
 
+from retrograde import __version__
 from retrograde.config import (
     RetrogradeConfig,
     check_schema,
@@ -49,16 +50,34 @@ def _one_line_error(host: Path, overrides: list[str], kind: type[RetrogradeError
 def test_default_config_composes_into_the_documented_shape(host):
     params = compose(host)
     study = params["study"]
-    assert list(params) == ["study", "stats"]
+    assert list(params) == ["study", "stats", "fits"]
     corpus = study["sources"]["corpus"]
     assert corpus["kind"] == "file" and corpus["deps"] == ["data/corpus.txt"]
-    assert corpus["tokenizer"] == {"name": "chars", "params": {}}
+    assert corpus["tokenizer"] == {"name": "chars", "params": {"max_vocab": None, "min_count": 1}}
     assert corpus["units"]["mode"] == "line"
+    assert corpus["package_version"] == __version__
+    # Every entry holds its full parameters (defaults included) and the versions of the
+    # code that computes with it, so a changed default or new code reruns its stages.
     assert study["orders"] == {
-        "forward": {"name": "forward", "params": {}},
-        "reverse": {"name": "reverse", "params": {}},
+        "forward": {"name": "forward", "params": {}, "package_version": __version__},
+        "reverse": {"name": "reverse", "params": {}, "package_version": __version__},
     }
-    assert study["models"] == {"ngram": {"family": "ngram", "params": {"order": 3}}}
+    assert study["models"] == {
+        "ngram": {
+            "family": "ngram",
+            "params": {"order": 3, "discount": None},
+            "code": None,
+            "numerics_version": 2,
+            "package_version": __version__,
+        }
+    }
+    assert params["fits"]["corpus-ngram-reverse-2"] == {
+        "source": "corpus",
+        "model": "ngram",
+        "order": "reverse",
+        "seed": 2,
+        "code": "data/corpus/units",
+    }
     assert study["seeds"] == [0, 1, 2] and study["reference_order"] == "forward"
     assert params["stats"] == {"level": 0.95, "n_boot": 2000, "seed": 0, "position_buckets": 50}
 
@@ -76,7 +95,7 @@ def test_overrides_use_hydra_grammar_and_compose_is_deterministic(host):
     first, second = compose(host, overrides), compose(host, overrides)
     assert first == second
     assert first["study"]["seeds"] == [7, 8]
-    assert first["study"]["orders"]["blocks"] == {"name": "block_reverse", "params": {}}
+    assert first["study"]["orders"]["blocks"]["params"] == {"size": 4}
 
 
 def test_several_sources_including_a_calibration_source(host):
@@ -103,7 +122,7 @@ def test_sweep_expands_into_named_models_with_only_the_swept_value_changed(host)
     )
     models = params["study"]["models"]
     assert sorted(models) == ["ngram", "ngram_order1", "ngram_order2", "ngram_order4"]
-    assert models["ngram_order4"] == {"family": "ngram", "params": {"order": 4}}
+    assert models["ngram_order4"]["params"] == {"order": 4, "discount": None}
     assert params["study"]["sweeps"]["context"]["models"] == {
         "ngram_order1": 1,
         "ngram_order2": 2,
@@ -145,10 +164,8 @@ def test_an_order_given_by_target_is_built_and_checked_at_compose_time(host):
     params = compose(
         host, ["+study.orders.blocks={_target_: retrograde.orders.BlockReverse, size: 2}"]
     )
-    assert params["study"]["orders"]["blocks"] == {
-        "name": "retrograde.orders.BlockReverse",
-        "params": {"size": 2},
-    }
+    assert params["study"]["orders"]["blocks"]["name"] == "retrograde.orders.BlockReverse"
+    assert params["study"]["orders"]["blocks"]["params"] == {"size": 2}
     message = _one_line_error(
         host, ["+study.orders.blocks={_target_: retrograde.orders.BlockReverse, size: 0}"]
     )

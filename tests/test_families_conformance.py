@@ -70,6 +70,17 @@ def test_full_distributions_sum_to_one_over_tokens_and_the_end_marker(fitted):
     np.testing.assert_allclose(probs.sum(axis=1), 1.0, rtol=0, atol=tolerance)
 
 
+def test_every_family_passes_the_normalization_probe_the_fit_stage_applies(fitted):
+    # The same check refuses a cell in the pipeline (families/_probe.py): full
+    # distributions at sampled test positions sum to 1 and agree with logprobs.
+    from retrograde.families._probe import check_probe, probe_positions
+
+    name, model = fitted
+    values = model.logprobs(TEST).values
+    positions = probe_positions(TEST, 16, seed=0)
+    check_probe(f"family {name!r}", TEST, values, positions, model.probe_logprobs(TEST, positions))
+
+
 def test_logprobs_give_each_unit_one_value_per_token_plus_the_end_marker(fitted):
     _, model = fitted
     scores = model.logprobs(TEST)

@@ -392,3 +392,35 @@ def test_run_refuses_a_host_without_dvc_or_without_init_naming_the_fix(tmp_path,
     err = capsys.readouterr().err
     assert len(err.strip().splitlines()) == 1 and "run `retrograde init --dir" in err
     assert sorted(p.name for p in host.iterdir()) == [".dvc", ".git"]  # nothing written
+
+
+def test_table_refuses_a_cell_that_scores_below_the_exact_floor(tmp_path, capsys):
+    # No model beats the true distribution on average (Gibbs' inequality: the expected
+    # NLL - floor is a KL divergence >= 0; Cover & Thomas, Elements of Information Theory,
+    # Thm 2.6.3). Half the floor on every unit can only be a leak or an unnormalized model.
+    wdir = _host(
+        tmp_path / "host",
+        [
+            "source=[markov]",
+            "study=smoke",
+            "study.seeds=[0]",
+            "study.models.ngram.params.order=2",
+            "stats.n_boot=50",
+        ],
+    )
+    assert units_stage.main(["--params", str(wdir), "--source", "markov"]) == 0
+    for order in ("forward", "reverse"):
+        assert (
+            reorder_stage.main(["--params", str(wdir), "--source", "markov", "--order", order]) == 0
+        )
+        argv = ["--source", "markov", "--model", "ngram", "--order", order, "--seed", "0"]
+        assert fit_stage.main(["--params", str(wdir), *argv]) == 0
+    assert table_stage.main(["--params", str(wdir)]) == 0  # honest cells pass
+    test = SequenceSet.load(wdir / "data/markov/units/test")
+    floors = np.load(wdir / "data/markov/units/floors.npy")
+    cheat = np.repeat(-floors / 2 / (test.lengths + 1), test.lengths + 1)
+    np.save(wdir / "cells/markov/ngram/reverse/seed0/test_logprobs.npy", cheat)
+    assert table_stage.main(["--params", str(wdir)]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1
+    assert "cell markov/ngram/reverse/seed0 scores" in err[0] and "below the exact floor" in err[0]

@@ -462,3 +462,18 @@ def test_gaps_ignore_unit_order_and_the_unit_of_loss(n_units, n_seeds, scale, se
         assert moved[order]["gap_pct"] == approx(base[order]["gap_pct"], abs=1e-9)
         assert moved[order]["bits_per_token"] == approx(base[order]["bits_per_token"] * scale)
         assert 0.0 < moved[order]["p_value"] <= 1.0
+
+
+def test_below_floor_accepts_the_true_model_and_chance_dips_but_not_a_leak():
+    from retrograde.stats import below_floor
+
+    rng = np.random.default_rng(0)
+    floors = rng.gamma(20.0, 1.0, 500)  # nats per unit
+    assert below_floor(floors.copy(), floors) is None  # the true distribution itself
+    # A model a hair worse than the truth on average, whose test-set mean dips below the
+    # floor by chance (about one standard error): consistent with the floor, accepted.
+    near = floors + rng.normal(0.001, 0.05, 500)
+    near -= near.mean() - floors.mean() + 0.05 / np.sqrt(500)
+    assert below_floor(near, floors) is None
+    # 5% under the floor on every unit: no model can do that.
+    assert below_floor(floors * 0.95, floors) == pytest.approx(-0.05 * floors.mean())

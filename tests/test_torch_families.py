@@ -10,6 +10,7 @@ import math
 import subprocess
 import sys
 import zipfile
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -455,7 +456,7 @@ def test_context_and_capacity_sweeps_expand_into_valid_torch_models_that_fit():
         },
     }
     models = expand_sweeps(study)["models"]
-    _check_models(models)  # the compose-time checks of every expanded model
+    _check_models(models, Path.cwd())  # the compose-time checks of every expanded model
     train = _units(20, 3, 9, 0)
     for name, value, attribute in (("tf_context2", 2, "context"), ("rnn_hidden16", 16, "hidden")):
         entry = models[name]

@@ -106,6 +106,9 @@ class OrderConfig:
 class ModelConfig:
     family: str = "ngram"
     params: dict[str, Any] = field(default_factory=dict)
+    #: a ``command`` model's trainer: a file or folder relative to the host root, a DVC
+    #: dependency of its cells; found in the command when null (``python train.py``)
+    code: str | None = None
 
 
 @dataclass
@@ -172,7 +175,7 @@ def normalize(raw: dict[str, Any]) -> dict[str, Any]:
         return out
     for group, name_key, keep in (
         ("orders", "name", set()),
-        ("models", "family", set()),
+        ("models", "family", {"code"}),
         ("sources", "name", _SOURCE_KEYS),
     ):
         entries = study.get(group)
@@ -281,7 +284,7 @@ def expand_sweeps(study: dict[str, Any]) -> dict[str, Any]:
                     "rename the model or drop the duplicate value"
                 )
             params = {**study["models"][base]["params"], sweep["parameter"]: value}
-            models[name] = {"family": study["models"][base]["family"], "params": params}
+            models[name] = {**copy.deepcopy(study["models"][base]), "params": params}
             expanded[name] = value
         sweep["models"] = expanded
     return out
@@ -295,9 +298,12 @@ def compose(
     Raises :class:`~retrograde.errors.ConfigError` (one line) on any bad key or value.
     """
     from ._plugin_checks import check_plugins
+    from .stages import fit_entries
 
     root = Path(root).resolve()
     raw = compose_raw(conf_dir or root / "conf" / "retrograde", overrides)
     checked = check_schema(normalize(raw))
     checked["study"] = expand_sweeps(checked["study"])
-    return check_plugins(checked, root)
+    composed = check_plugins(checked, root)
+    composed["fits"] = fit_entries(composed["study"])
+    return composed

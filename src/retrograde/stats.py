@@ -48,6 +48,7 @@ __all__ = [
     "grouping_warning",
     "SIGNIFICANT_DIGITS",
     "adjust_holm",
+    "below_floor",
     "bootstrap_pvalue",
     "position_profile",
     "rounded",
@@ -77,6 +78,34 @@ def rounded(value: float, digits: int = SIGNIFICANT_DIGITS) -> float:
     """
     result = float(f"{float(value):.{digits}g}")
     return 0.0 if result == 0 else result  # no "-0.0" in the JSON
+
+
+#: how many standard errors below the exact floor a model may score before it is refused
+FLOOR_Z = 4.0
+
+
+def below_floor(unit_nll: np.ndarray, floors: np.ndarray, z: float = FLOOR_Z) -> float | None:
+    """The mean per-unit excess (nats) when a model scores below the exact floor beyond noise.
+
+    No model can beat the true distribution on average: per unit, ``NLL - floor`` has mean
+    ``KL >= 0``. On a finite test set the mean difference can still dip below 0 by chance,
+    by about one standard error; a mean more than ``z`` standard errors below 0 (and below
+    0 at all when every difference is equal) means the numbers are wrong: test units leaked
+    into training, or the model's probabilities do not sum to 1. Returns that mean, or
+    ``None`` when the model is consistent with the floor.
+
+    Examples
+    --------
+    >>> below_floor(np.array([2.0, 2.1, 1.9]), np.array([2.0, 2.0, 2.0])) is None
+    True
+    >>> round(below_floor(np.array([1.0, 1.1, 0.9]), np.array([2.0, 2.0, 2.0])), 6)
+    -1.0
+    """
+    differences = np.asarray(unit_nll, dtype=np.float64) - np.asarray(floors, dtype=np.float64)
+    mean = float(differences.mean())
+    spread = float(differences.std(ddof=1)) if len(differences) > 1 else 0.0
+    standard_error = spread / math.sqrt(len(differences))
+    return mean if mean + z * standard_error < 0 else None
 
 
 def seed_warning(n_seeds: int) -> str | None:

@@ -38,6 +38,10 @@ class Family(ABC):
 
     #: registry name, set by each subclass
     name: ClassVar[str] = ""
+    #: Version of this family's numbers: raise it whenever a change of code (not of
+    #: parameters) changes what ``fit`` or ``logprobs`` return. The composed params record
+    #: it for every model, so a raise reruns exactly that family's cells.
+    numerics_version: ClassVar[int] = 1
 
     def __init__(self, **params: Any) -> None:
         self._params = dict(params)
@@ -80,6 +84,17 @@ class Family(ABC):
     @abstractmethod
     def next_token_probs(self, contexts: Sequence[np.ndarray]) -> np.ndarray:
         """(n_contexts, vocab_size + 1) full next-outcome distributions after each context."""
+
+    def probe_logprobs(self, units: SequenceSet, positions: np.ndarray) -> np.ndarray:
+        """(k, vocab_size + 1) natural-log distributions at ``positions`` of ``units``.
+
+        ``positions`` are ``(unit, position)`` pairs (``retrograde.families._probe``). The
+        fit stage checks that each row sums to 1 and agrees with :meth:`logprobs`.
+        """
+        from ._probe import probe_contexts
+
+        with np.errstate(divide="ignore"):  # a zero probability is a log of -inf, allowed
+            return np.log(self.next_token_probs(probe_contexts(units, positions)))
 
     #: validation curve; one dict per epoch: {"epoch": int, "valid_bits_per_token": float, ...}
     learning_curve_: list[dict[str, float]]

@@ -17,6 +17,7 @@ import numpy as np
 from .._validation import invalid
 from ..errors import FitError
 from ..sequences import SequenceSet
+from ._probe import PROBE_FILE, PROBE_OUTPUT, check_probe
 
 __all__ = ["check_arguments", "read_curve", "run_trainer"]
 
@@ -52,8 +53,13 @@ def run_trainer(
     test: SequenceSet,
     timeout: float,
     key: str,
-) -> np.ndarray:
-    """Run the trainer (no shell), then read and check ``out/logprobs.npy``."""
+    probe: np.ndarray,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Run the trainer (no shell); read and check ``out/logprobs.npy`` and the probe.
+
+    ``probe`` holds the ``(unit, position)`` pairs written to ``{test}/probe.npy``. Returns
+    the flat log-probabilities and the probe's ``(k, vocab_size + 1)`` distributions.
+    """
     argv = _substitute(arguments, places)
     shown = " ".join(arguments)
     try:
@@ -101,7 +107,28 @@ def run_trainer(
             f"and <= 0 (first at flat index {bad[0]}: {float(values[bad[0]])!r}); every outcome needs "
             f"a probability in (0, 1]; stderr tail: {tail}"
         )
-    return values
+    return values, _read_probe(out, test, values, probe, f"family 'command': {key} output")
+
+
+def _read_probe(
+    out: Path, test: SequenceSet, values: np.ndarray, probe: np.ndarray, owner: str
+) -> np.ndarray:
+    """The trainer's ``{out}/probe_logprobs.npy``, checked (see ``_probe.check_probe``)."""
+    path = out / PROBE_OUTPUT
+    if not path.is_file():
+        if len(probe) == 0:
+            return np.zeros((0, test.effective_vocab_size() + 1))
+        raise FitError(
+            f"{owner} wrote no {{out}}/{PROBE_OUTPUT}; for each (unit, position) row of "
+            f"{{test}}/{PROBE_FILE} write the full distribution (vocab_size + 1 natural logs: "
+            "every token id, then the end marker) there; see docs/trainers.md"
+        )
+    try:
+        distributions = np.load(path, allow_pickle=False)
+    except ValueError as exc:
+        raise FitError(f"{owner}: {PROBE_OUTPUT} is not a plain .npy array ({exc})") from exc
+    check_probe(owner, test, values, probe, distributions)
+    return np.asarray(distributions, dtype=np.float64)
 
 
 def _tail(stderr: bytes | str | None) -> str:

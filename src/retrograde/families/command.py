@@ -33,6 +33,7 @@ the trainer's stderr.
 
 from __future__ import annotations
 
+import hashlib
 import shutil
 import tempfile
 import weakref
@@ -48,6 +49,7 @@ from ..sequences import Ragged, SequenceSet
 from . import registry
 from ._base import Family
 from ._command_run import check_arguments, read_curve, run_trainer
+from ._probe import PROBE_FILE, probe_positions, probe_size
 
 __all__ = ["CommandFamily"]
 
@@ -168,67 +170,82 @@ class CommandFamily(Family):
             self.learning_curve_ = [{"epoch": 1, "valid_bits_per_token": float(bits)}]
         return values
 
-    def _run_fit_command(self, test: SequenceSet, workdir: Path, out: Path) -> np.ndarray:
+    def _run_fit_command(
+        self, test: SequenceSet, workdir: Path, out: Path, probe: np.ndarray | None = None
+    ) -> np.ndarray:
         for split, units in (("train", self.train_), ("valid", self.valid_), ("test", test)):
             units.save(workdir / split)
         out.mkdir()
         places = {key: str(workdir / key) for key in ("train", "valid", "test", "out")}
         places["seed"] = str(self.seed_)
-        return run_trainer(self.command, places, out, test, self.timeout, "command")
+        return self._run(self.command, places, test, "command", probe)
+
+    def _run(
+        self,
+        arguments: list[str],
+        places: dict[str, str],
+        test: SequenceSet,
+        key: str,
+        probe: np.ndarray | None,
+    ) -> np.ndarray:
+        """Write ``{test}/probe.npy``, run the trainer, keep its probe; the log-probabilities."""
+        if probe is None:
+            probe = probe_positions(test, probe_size(self.vocab_size_), self.seed_)
+        np.save(Path(places["test"]) / PROBE_FILE, probe)
+        values, distributions = run_trainer(
+            arguments, places, Path(places["out"]), test, self.timeout, key, probe
+        )
+        self.probe_ = (_digest(test), probe, distributions)
+        return values
 
     # ------------------------------------------------------------------- scoring
     def logprobs(self, units: SequenceSet) -> Ragged:
         """Row ``i``: ``len(units[i]) + 1`` natural-log probabilities from the trainer."""
+        return Ragged(self._score(units), units.offsets + np.arange(len(units) + 1))
+
+    def _score(self, units: SequenceSet, probe: np.ndarray | None = None) -> np.ndarray:
         self._check_fitted()
         self._check_units(units)
         units = _with_vocab(units, self.vocab_size_)
         with tempfile.TemporaryDirectory(prefix="retrograde-command-") as tmp:
             workdir = Path(tmp)
             if self.score_command is None or self.model_dir_ is None:
-                values = self._run_fit_command(units, workdir, workdir / "out")
-            else:
-                units.save(workdir / "test")
-                (workdir / "out").mkdir()
-                places = {
-                    "model": str(self.model_dir_),
-                    "test": str(workdir / "test"),
-                    "out": str(workdir / "out"),
-                    "seed": str(self.seed_),
-                }
-                values = run_trainer(
-                    self.score_command,
-                    places,
-                    workdir / "out",
-                    units,
-                    self.timeout,
-                    "score_command",
-                )
-        return Ragged(values, units.offsets + np.arange(len(units) + 1))
+                return self._run_fit_command(units, workdir, workdir / "out", probe)
+            units.save(workdir / "test")
+            (workdir / "out").mkdir()
+            places = {
+                "model": str(self.model_dir_),
+                "test": str(workdir / "test"),
+                "out": str(workdir / "out"),
+                "seed": str(self.seed_),
+            }
+            return self._run(self.score_command, places, units, "score_command", probe)
+
+    def probe_logprobs(self, units: SequenceSet, positions: np.ndarray) -> np.ndarray:
+        """The distributions the trainer wrote for ``positions`` in its last run.
+
+        The fit stage probes the positions the trainer was given (the same seeded sample);
+        other positions need another trainer run.
+        """
+        stored = getattr(self, "probe_", None)
+        if (
+            stored is not None
+            and stored[0] == _digest(units)
+            and np.array_equal(stored[1], positions)
+        ):
+            return stored[2]
+        self._score(units, positions)
+        return self.probe_[2]
 
     def next_token_probs(self, contexts: Sequence[np.ndarray]) -> np.ndarray:
-        """(n_contexts, vocab_size + 1): each context extended by every outcome, then scored.
+        """(n_contexts, vocab_size + 1): the trainer's probe of each context's next outcome.
 
-        The trainer only reports observed log-probabilities, so each context is extended
-        by every outcome (``vocab_size + 1`` test units per context); this is for checks on
-        small vocabularies, not for bulk use.
+        One trainer run scores the contexts as units and writes the full distribution at
+        each context's end (the position of the end marker, ``len(context)``).
         """
-        self._check_fitted()
-        n_outcomes = self.vocab_size_ + 1
-        rows = []
-        for context in contexts:
-            context = np.asarray(context, dtype=np.int32)
-            rows += [np.append(context, token) for token in range(self.vocab_size_)]
-            rows.append(context)  # outcome vocab_size: the end marker right after the context
-        scores = self.logprobs(SequenceSet.from_list(rows, vocab_size=self.vocab_size_))
-        probs = np.empty((len(contexts), n_outcomes))
-        for index in range(len(contexts)):
-            for outcome in range(n_outcomes):
-                row = scores[index * n_outcomes + outcome]
-                # Position len(context) holds the outcome (a token, or the end marker).
-                probs[index, outcome] = np.exp(
-                    row[len(row) - 2 if outcome < self.vocab_size_ else -1]
-                )
-        return probs
+        units = SequenceSet.from_list(list(contexts), vocab_size=self.vocab_size_)
+        probe = np.column_stack([np.arange(len(units)), units.lengths]).astype(np.int64)
+        return np.exp(self.probe_logprobs(units, probe))
 
     # --------------------------------------------------------------- persistence
     def _save_state(self, folder: Path) -> None:
@@ -255,6 +272,14 @@ class CommandFamily(Family):
         self.train_, self.valid_ = sets.get("train"), sets.get("valid")  # type: ignore[assignment]
         trainer = folder / "trainer"
         self.model_dir_ = trainer.resolve() if trainer.is_dir() else None
+
+
+def _digest(units: SequenceSet) -> str:
+    """A fingerprint of the units' content, to match a stored probe to its units."""
+    digest = hashlib.blake2b(digest_size=16)
+    digest.update(np.ascontiguousarray(units.tokens, dtype="<i8").tobytes())
+    digest.update(np.ascontiguousarray(units.offsets, dtype="<i8").tobytes())
+    return digest.hexdigest()
 
 
 def _as_list(arguments: Any) -> Any:

@@ -54,6 +54,8 @@ class NGram(Family):
     """
 
     name: ClassVar[str] = "ngram"
+    #: 2: context ids and keys in int64 on every look-up path (vocabularies above ~46 k)
+    numerics_version: ClassVar[int] = 2
     #: small, fast parameters for the conformance test
     _test_params: ClassVar[dict[str, Any]] = {"order": 3}
 

@@ -37,6 +37,7 @@ __all__ = [
     "UNITS_END",
     "Cell",
     "cell_dir",
+    "fit_entries",
     "fit_stage_name",
     "grid_cells",
     "order_dir",
@@ -50,6 +51,8 @@ __all__ = [
 
 UNITS_BEGIN = "  # >>> units stages: written by `retrograde run` from params.yaml >>>"
 UNITS_END = "  # <<< units stages <<<"
+#: the host root seen from the pipeline folder (the stages' working folder)
+WDIR_TO_ROOT = "../.."
 
 #: one fit: (source, model, order, seed)
 Cell = tuple[str, str, str, int]
@@ -81,15 +84,36 @@ def fit_stage_name(source: str, model: str, order: str, seed: int) -> str:
     return f"fit@{source}-{model}-{order}-{seed}"
 
 
+def fit_entries(study: dict[str, Any]) -> dict[str, dict[str, Any]]:
+    """The fit cells of a composed study, as the ``fits`` block of ``params.yaml``.
+
+    Keys are what DVC appends to ``fit@`` (``source-model-order-seed``), in the order
+    source, model, order, seed. Each entry names the cell and its ``code`` dependency (seen
+    from the pipeline folder): a ``command`` model's trainer files, or else the source's
+    units, which every cell depends on anyway.
+    """
+    fits: dict[str, dict[str, Any]] = {}
+    for source in study["sources"]:
+        for model, spec in study["models"].items():
+            code = spec.get("code")
+            code_dep = f"{WDIR_TO_ROOT}/{code}" if code else str(units_dir(source))
+            for order in study["orders"]:
+                for seed in study["seeds"]:
+                    fits[f"{source}-{model}-{order}-{seed}"] = {
+                        "source": source,
+                        "model": model,
+                        "order": order,
+                        "seed": int(seed),
+                        "code": code_dep,
+                    }
+    return fits
+
+
 def grid_cells(params: dict[str, Any]) -> list[Cell]:
-    """Every cell the composed params name, in matrix order (source, model, order, seed)."""
-    study = params["study"]
+    """Every cell the composed params name, in stage order (source, model, order, seed)."""
     return [
-        (source, model, order, int(seed))
-        for source in study["sources"]
-        for model in study["models"]
-        for order in study["orders"]
-        for seed in study["seeds"]
+        (entry["source"], entry["model"], entry["order"], int(entry["seed"]))
+        for entry in params["fits"].values()
     ]
 
 
@@ -125,7 +149,7 @@ def _units_block(params: dict[str, Any], wdir_to_root: str) -> list[str]:
     return lines
 
 
-def render_dvc_yaml(text: str, params: dict[str, Any], wdir_to_root: str = "../..") -> str:
+def render_dvc_yaml(text: str, params: dict[str, Any], wdir_to_root: str = WDIR_TO_ROOT) -> str:
     """``text`` (the pipeline's dvc.yaml) with the units block rewritten for ``params``.
 
     Dependency paths are the sources' ``deps`` (relative to the host root) seen from the

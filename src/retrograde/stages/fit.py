@@ -50,6 +50,7 @@ def fit_cell(
     of the test units' log-probabilities (``len + 1`` per unit, end marker last).
     """
     from .. import families
+    from ..families._probe import check_probe, probe_positions, probe_size
 
     def note(line: str) -> None:
         if log is not None:
@@ -82,6 +83,11 @@ def fit_cell(
             f"family {model_spec['family']!r} returned log-probabilities that are not finite "
             "and <= 0; every outcome needs a probability above 0"
         )
+    # The normalization probe (families/_probe.py): whole distributions at a few positions.
+    positions = probe_positions(test, probe_size(model.vocab_size), seed)
+    distributions = model.probe_logprobs(test, positions)
+    check_probe(f"family {model_spec['family']!r}", test, values, positions, distributions)
+    note(f"probe: {len(positions)} test positions score distributions that sum to 1")
     note(f"test nats {-values.sum():.6f} over {len(test.tokens)} tokens")
     return model, values, curve
 

@@ -77,6 +77,30 @@ def _order_losses(
     return np.stack(unit_nll), natural, curves
 
 
+def _check_floor(
+    unit_nll: np.ndarray,
+    floors: np.ndarray,
+    where: tuple[str, str, str],
+    seeds: list[int],
+    test: SequenceSet,
+) -> None:
+    """Refuse a cell that scores below the exact floor by more than noise."""
+    from ..stats import FLOOR_Z, below_floor
+
+    n_tokens = max(int(len(test.tokens)), 1)
+    for row, seed in enumerate(seeds):
+        excess = below_floor(unit_nll[row], floors)
+        if excess is not None:
+            bits = float(unit_nll[row].sum()) / np.log(2) / n_tokens
+            floor_bits = float(floors.sum()) / np.log(2) / n_tokens
+            raise DataError(
+                f"cell {'/'.join(where)}/seed{seed} scores {bits:.4f} bits/token, below the "
+                f"exact floor {floor_bits:.4f} by more than noise (mean {excess:+.4g} nats per "
+                f"unit, over {FLOOR_Z:g} standard errors); no model beats the true distribution: "
+                "test units leaked into training, or the probabilities do not sum to 1"
+            )
+
+
 def collect(wdir: Path, params: dict[str, Any]) -> dict[str, Any]:
     """The keyword arguments of :func:`retrograde.report.write_all` for this grid."""
     from .. import stats
@@ -103,6 +127,8 @@ def collect(wdir: Path, params: dict[str, Any]) -> dict[str, Any]:
                 unit_nll[order], natural[order], curves[source][model][order] = _order_losses(
                     wdir, (source, model, order), seeds, test
                 )
+                if floors is not None:
+                    _check_floor(unit_nll[order], floors, (source, model, order), seeds, test)
             table[source][model] = stats.summarize_model(
                 unit_nll,
                 reference_order=reference,
