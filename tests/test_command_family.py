@@ -255,7 +255,7 @@ def test_a_probe_of_the_wrong_shape_is_refused(tmp_path):
 
 
 def test_the_example_trainer_writes_probes_that_match_its_scores():
-    from retrograde.families._probe import check_probe, probe_positions
+    from retrograde.families import check_probe, probe_positions
 
     model = make("command", command=FIT)
     values = model.fit_logprobs(TRAIN, VALID, TEST, seed=3).values

@@ -8,7 +8,7 @@ import subprocess
 import pytest
 
 from retrograde.cli import main
-from retrograde.compare import compare_tables, format_changes
+from retrograde.report import compare_tables, format_changes
 
 METRICS = "pipelines/retrograde/metrics.json"
 

@@ -13,15 +13,17 @@ from omegaconf import OmegaConf
 
 from retrograde import __version__
 from retrograde.config import (
+    ModelConfig,
     RetrogradeConfig,
-    check_schema,
+    StudyConfig,
+    SweepConfig,
     compose,
     expand_sweeps,
     normalize,
+    parse,
     register_configs,
 )
 from retrograde.errors import ConfigError, DataError, RetrogradeError
-from retrograde.stages import grid_cells
 
 CORPUS = "first line of text\nsecond line of text\nthird one\n" * 20
 
@@ -38,6 +40,11 @@ def host(tmp_path: Path) -> Path:
     return root
 
 
+def composed(host: Path, overrides=()) -> dict:
+    """The composed config as the plain dict written to params.yaml."""
+    return compose(host, list(overrides)).to_dict()
+
+
 def _one_line_error(host: Path, overrides: list[str], kind: type[RetrogradeError] = ConfigError):
     with pytest.raises(kind) as info:
         compose(host, overrides)
@@ -48,11 +55,11 @@ def _one_line_error(host: Path, overrides: list[str], kind: type[RetrogradeError
 
 # ------------------------------------------------------------------------------ the shape
 def test_default_config_composes_into_the_documented_shape(host):
-    params = compose(host)
+    params = composed(host)
     study = params["study"]
     assert list(params) == ["study", "stats", "fits"]
     corpus = study["sources"]["corpus"]
-    assert corpus["kind"] == "file" and corpus["deps"] == ["data/corpus.txt"]
+    assert corpus["deps"] == ["data/corpus.txt"] and corpus["calibration"] is None
     assert corpus["tokenizer"] == {"name": "chars", "params": {"max_vocab": None, "min_count": 1}}
     assert corpus["units"]["mode"] == "line"
     assert corpus["package_version"] == __version__
@@ -69,6 +76,7 @@ def test_default_config_composes_into_the_documented_shape(host):
             "code": None,
             "numerics_version": 2,
             "package_version": __version__,
+            "trainer_sha256": None,
         }
     }
     assert params["fits"]["corpus-ngram-reverse-2"] == {
@@ -84,7 +92,7 @@ def test_default_config_composes_into_the_documented_shape(host):
 
 def test_composed_params_read_back_identically_with_pyyaml_and_omegaconf(host):
     # DVC reads params.yaml with its own YAML parser: the dict must survive plain YAML.
-    params = compose(host, ["study.seeds=[4,5]"])
+    params = composed(host, ["study.seeds=[4,5]"])
     text = yaml.safe_dump(params, sort_keys=False)
     assert yaml.safe_load(text) == params
     assert OmegaConf.to_container(OmegaConf.create(text)) == params
@@ -92,32 +100,33 @@ def test_composed_params_read_back_identically_with_pyyaml_and_omegaconf(host):
 
 def test_overrides_use_hydra_grammar_and_compose_is_deterministic(host):
     overrides = ["study.seeds=[7,8]", "+study.orders.blocks={name: block_reverse}"]
-    first, second = compose(host, overrides), compose(host, overrides)
+    first, second = composed(host, overrides), composed(host, overrides)
     assert first == second
     assert first["study"]["seeds"] == [7, 8]
     assert first["study"]["orders"]["blocks"]["params"] == {"size": 4}
 
 
 def test_several_sources_including_a_calibration_source(host):
-    params = compose(host, ["source=[corpus,markov]"])
+    params = composed(host, ["source=[corpus,markov]"])
     markov = params["study"]["sources"]["markov"]
-    assert markov["kind"] == "calibration" and markov["deps"] == []
+    assert markov["units"] is None and markov["deps"] == []
     assert markov["tokenizer"] is None and markov["calibration"] == {"n_units": 1000, "seed": 0}
     assert list(params["study"]["sources"]) == ["corpus", "markov"]
 
 
 def test_grid_has_one_cell_per_source_model_order_seed(host):
-    params = compose(host, ["source=[corpus,markov]", "study.seeds=[0,1]"])
+    params = composed(host, ["source=[corpus,markov]", "study.seeds=[0,1]"])
     study = params["study"]
     expected = list(
         itertools.product(study["sources"], study["models"], study["orders"], study["seeds"])
     )
-    assert grid_cells(params) == expected and len(expected) == 2 * 1 * 2 * 2
+    assert compose(host, ["source=[corpus,markov]", "study.seeds=[0,1]"]).cells() == expected
+    assert len(expected) == 2 * 1 * 2 * 2
 
 
 # ------------------------------------------------------------------------------- sweeps
 def test_sweep_expands_into_named_models_with_only_the_swept_value_changed(host):
-    params = compose(
+    params = composed(
         host, ["+study.sweeps.context={model: ngram, parameter: order, values: [1, 2, 4]}"]
     )
     models = params["study"]["models"]
@@ -131,11 +140,12 @@ def test_sweep_expands_into_named_models_with_only_the_swept_value_changed(host)
 
 
 def test_sweep_value_names_stay_safe_for_dvc_stage_names():
-    study = {
-        "models": {"mlp": {"family": "mlp", "params": {}}},
-        "sweeps": {"lr": {"model": "mlp", "parameter": "rate", "values": [0.5, "a-b"]}},
-    }
-    assert sorted(expand_sweeps(study)["models"]) == ["mlp", "mlp_rate0p5", "mlp_ratea_b"]
+    study = StudyConfig(
+        models={"mlp": ModelConfig(family="mlp")},
+        sweeps={"lr": SweepConfig(model="mlp", parameter="rate", values=[0.5, "a-b"])},
+    )
+    expand_sweeps(study)
+    assert sorted(study.models) == ["mlp", "mlp_rate0p5", "mlp_ratea_b"]
 
 
 def test_sweep_over_an_unknown_model_names_the_sweep_and_the_models(host):
@@ -161,7 +171,7 @@ def test_target_entries_become_name_and_params():
 
 
 def test_an_order_given_by_target_is_built_and_checked_at_compose_time(host):
-    params = compose(
+    params = composed(
         host, ["+study.orders.blocks={_target_: retrograde.orders.BlockReverse, size: 2}"]
     )
     assert params["study"]["orders"]["blocks"]["name"] == "retrograde.orders.BlockReverse"
@@ -247,7 +257,7 @@ def test_source_file_outside_the_host_repository_is_refused(host):
 def test_missing_corpus_is_fine_when_deps_name_it_but_not_otherwise(host):
     # A host stage may write the corpus later: declared deps are enough to compose.
     (host / "data" / "corpus.txt").unlink()
-    params = compose(host)
+    params = composed(host)
     assert params["study"]["sources"]["corpus"]["deps"] == ["data/corpus.txt"]
     message = _one_line_error(host, ["study.sources.corpus.deps=null"], DataError)
     assert "list them under study.sources.corpus.deps" in message
@@ -257,7 +267,7 @@ def test_files_read_but_not_listed_as_deps_are_refused(host):
     (host / "data" / "more.txt").write_text(CORPUS)
     message = _one_line_error(host, ["study.sources.corpus.params.files=[data/*.txt]"])
     assert "reads 'data/more.txt'" in message and "deps does not list it" in message
-    params = compose(
+    params = composed(
         host, ["study.sources.corpus.params.files=[data/*.txt]", "~study.sources.corpus.deps"]
     )
     assert params["study"]["sources"]["corpus"]["deps"] == ["data/corpus.txt", "data/more.txt"]
@@ -270,9 +280,9 @@ def test_missing_config_folder_says_to_run_init(tmp_path):
 
 # ------------------------------------------------------------------------------ schemas
 def test_schema_fills_defaults_for_keys_a_config_leaves_out():
-    checked = check_schema({"study": {"orders": {"r": {"name": "reverse"}}}})
-    assert checked["study"]["orders"]["r"] == {"name": "reverse", "params": {}}
-    assert checked["stats"]["n_boot"] == 2000
+    checked = parse({"study": {"orders": {"r": {"name": "reverse"}}}})
+    assert checked.study.orders["r"].name == "reverse" and checked.study.orders["r"].params == {}
+    assert checked.stats.n_boot == 2000
 
 
 def test_register_configs_stores_the_schema_in_hydra_config_store():
@@ -288,16 +298,18 @@ def test_register_configs_stores_the_schema_in_hydra_config_store():
 def test_docstring_examples_of_the_pipeline_modules_run():
     import doctest
 
-    import retrograde.commands.run
-    import retrograde.config
-    import retrograde.stages
+    import retrograde.config._grid
+    import retrograde.config._schema
+    import retrograde.host._driver
+    import retrograde.host._plan
     import retrograde.stages.reorder
 
     for module in (
-        retrograde.config,
-        retrograde.stages,
+        retrograde.config._grid,
+        retrograde.config._schema,
         retrograde.stages.reorder,
-        retrograde.commands.run,
+        retrograde.host._driver,
+        retrograde.host._plan,
     ):
         failures, _ = doctest.testmod(module, optionflags=doctest.ELLIPSIS)
         assert failures == 0, module.__name__
@@ -312,7 +324,8 @@ SHIPPED_SOURCES = sorted(
 
 @pytest.mark.parametrize("source", SHIPPED_SOURCES)
 def test_every_shipped_source_config_composes_and_builds(host, source):
-    params = compose(host, [f"source=[{source}]"])
+    params = composed(host, [f"source=[{source}]"])
     spec = params["study"]["sources"][source]
-    assert spec["kind"] in ("file", "calibration")
-    assert (spec["kind"] == "calibration") == (spec["deps"] == [])
+    # A calibration source reads no files and cuts no units (it generates them).
+    assert (spec["calibration"] is not None) == (spec["deps"] == [])
+    assert (spec["calibration"] is None) == (spec["units"] is not None)

@@ -11,7 +11,7 @@ import pytest
 
 from _host_fixtures import DVC, dvc_events, new_host, new_pipeline_host, sh, snapshot
 from retrograde.cli import main
-from retrograde.hostcheck import format_host_check
+from retrograde.host import format_host_check
 
 pytestmark = pytest.mark.dvc
 

@@ -9,7 +9,7 @@ import pytest
 
 from _host_fixtures import DVC, dvc_init, git_init, new_host, sh
 from retrograde.errors import HostRepoError
-from retrograde.hostrepo import (
+from retrograde.host import (
     HostRepo,
     find_host,
     git_toplevel,

@@ -12,8 +12,9 @@ import yaml
 
 from _host_fixtures import DVC, new_host, new_pipeline_host, sh
 from retrograde.cli import main
+from retrograde.config import LOG_DIR
 from retrograde.errors import ConfigError, FitError
-from retrograde.parallel import LOG_DIR, log_path_for, order_lock_entries, run_stages_in_parallel
+from retrograde.host import log_path_for, order_lock_entries, run_stages_in_parallel
 
 pytestmark = pytest.mark.dvc
 

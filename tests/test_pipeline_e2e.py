@@ -14,7 +14,7 @@ import yaml
 
 from _host_fixtures import DVC, new_host, sh, snapshot
 from retrograde.cli import main
-from retrograde.stages import fit_stage_name
+from retrograde.config import fit_stage_name
 
 pytestmark = [pytest.mark.dvc, pytest.mark.slow]
 

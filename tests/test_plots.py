@@ -6,7 +6,7 @@ import csv
 
 import pytest
 
-from retrograde import plots
+from retrograde.report import _plots as plots
 from retrograde.report import write_all
 from test_report import build_run
 

@@ -13,8 +13,7 @@ import yaml
 
 from _host_fixtures import DVC, dvc_events, new_host, sh, snapshot
 from retrograde.cli import main
-from retrograde.hostrepo import find_host
-from retrograde.scaffold import IGNORE_RULES, install, planned_files, source_config
+from retrograde.host import IGNORE_RULES, find_host, install, planned_files, source_config
 from retrograde.sources.demo import write_corpus
 
 pytestmark = pytest.mark.dvc

@@ -13,9 +13,9 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from retrograde import SequenceSet
+from retrograde.data import prepare_units
 from retrograde.errors import ConfigError, DataError
 from retrograde.sources import make
-from retrograde.units import prepare_units
 
 
 def _texts(source):

@@ -13,12 +13,12 @@ import pytest
 import yaml
 
 from retrograde import families, sources
-from retrograde.config import compose
+from retrograde.config import ModelConfig, RetrogradeConfig, compose, from_dict, load_params
+from retrograde.data import Ragged, SequenceSet
 from retrograde.errors import FitError, HostRepoError
 from retrograde.families._base import Family
+from retrograde.host import UNITS_BEGIN, UNITS_END, render_dvc_yaml
 from retrograde.orders import Order
-from retrograde.sequences import Ragged, SequenceSet
-from retrograde.stages import UNITS_BEGIN, UNITS_END, render_dvc_yaml
 from retrograde.stages import fit as fit_stage
 from retrograde.stages import reorder as reorder_stage
 from retrograde.stages import table as table_stage
@@ -61,8 +61,9 @@ def _host(root: Path, overrides: list[str]) -> Path:
     return wdir
 
 
-def _write_params(wdir: Path, params: dict) -> None:
-    (wdir / "params.yaml").write_text(yaml.safe_dump(params, sort_keys=False))
+def _write_params(wdir: Path, params) -> None:
+    plain = params if isinstance(params, dict) else params.to_dict()
+    (wdir / "params.yaml").write_text(yaml.safe_dump(plain, sort_keys=False))
 
 
 def _params(wdir: Path) -> dict:
@@ -212,7 +213,7 @@ def test_fit_cell_returns_a_json_ready_learning_curve_for_an_epoch_based_family(
         return SequenceSet.from_list(rows, vocab_size=5)
 
     splits = {"train": units(60), "valid": units(10), "test": units(10)}
-    spec = {"family": "mlp", "params": {"window": 2, "hidden": 8, "epochs": 2}}
+    spec = ModelConfig(family="mlp", params={"window": 2, "hidden": 8, "epochs": 2})
     _, values, curve = fit_cell(spec, splits, seed=0)
     assert [epoch["epoch"] for epoch in curve] == [1, 2]
     assert json.loads(json.dumps(curve)) == curve  # plain numbers only
@@ -228,7 +229,7 @@ def test_fit_cell_runs_a_command_trainer_once_per_cell(tmp_path):
         name: SequenceSet.from_list(rows, vocab_size=3) for name in ("train", "valid", "test")
     }
     _, values, curve = fit_cell(
-        {"family": "command", "params": {"command": command}}, splits, seed=0
+        ModelConfig(family="command", params={"command": command}), splits, seed=0
     )
     assert runs.read_text().splitlines() == ["run"]
     assert values.shape == (9 + 3,) and len(curve) == 1
@@ -323,7 +324,7 @@ TEMPLATE = (resources.files("retrograde") / "templates" / "dvc.yaml").read_text(
 
 def test_render_writes_one_units_stage_per_source_with_its_files_as_deps(tmp_path):
     wdir = _host(tmp_path / "host", ["source=[corpus,markov]"])
-    text = render_dvc_yaml(TEMPLATE, _params(wdir))
+    text = render_dvc_yaml(TEMPLATE, load_params(wdir))
     stages = yaml.safe_load(text)["stages"]  # PyYAML is the reference parser here
     assert stages["units_corpus"] == {
         "cmd": "python -m retrograde.stages.units --source corpus",
@@ -333,25 +334,27 @@ def test_render_writes_one_units_stage_per_source_with_its_files_as_deps(tmp_pat
     }
     assert "deps" not in stages["units_markov"]
     assert {"reorder", "fit", "table"} <= set(stages)
-    assert render_dvc_yaml(text, _params(wdir)) == text  # idempotent
+    assert render_dvc_yaml(text, load_params(wdir)) == text  # idempotent
     assert UNITS_BEGIN in text and UNITS_END in text
 
 
 def test_render_quotes_dependency_paths_yaml_would_misread():
-    params = {"study": {"sources": {"c": {"deps": ["data/my corpus: v2.txt"]}}}}
-    stages = yaml.safe_load(render_dvc_yaml(TEMPLATE, params))["stages"]
+    config = from_dict(
+        RetrogradeConfig, {"study": {"sources": {"c": {"deps": ["data/my corpus: v2.txt"]}}}}
+    )
+    stages = yaml.safe_load(render_dvc_yaml(TEMPLATE, config))["stages"]
     assert stages["units_c"]["deps"] == ["../../data/my corpus: v2.txt"]
 
 
 def test_render_refuses_a_stage_file_without_markers():
     with pytest.raises(HostRepoError, match="retrograde init --force"):
-        render_dvc_yaml("stages: {}\n", {"study": {"sources": {}}})
+        render_dvc_yaml("stages: {}\n", RetrogradeConfig())
 
 
 # ---------------------------------------------------------------- failures seen by `run`
 def test_run_turns_a_failed_fit_stage_into_the_stages_own_line(tmp_path):
-    from retrograde.commands.run import _raise_failure, parse_repro_line
-    from retrograde.hostrepo import HostRepo
+    from retrograde.host import HostRepo, parse_repro_line
+    from retrograde.host._driver import _raise_failure
 
     output = (
         "Running stage 'pipelines/retrograde/dvc.yaml:fit@c-m-reverse-0':\n"

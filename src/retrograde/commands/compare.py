@@ -13,7 +13,9 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-from ..compare import add_metrics_arguments, compare_tables, format_changes, read_table_at
+from ..host import read_table_at
+from ..report import compare_tables, format_changes
+from . import add_metrics_arguments
 
 __all__ = ["configure", "run"]
 

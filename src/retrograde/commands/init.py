@@ -12,8 +12,8 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-from ..hostrepo import CONF_DIR, PIPELINE_DIR, find_host
-from ..scaffold import SOURCE_CONFIG, install, planned_files, resolve_sources
+from ..config import CONF_DIR, PIPELINE_DIR
+from ..host import SOURCE_CONFIG, find_host, install, planned_files, resolve_sources
 
 __all__ = ["configure", "run"]
 

@@ -24,9 +24,8 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from .._io import atomic_dir, write_npz
+from ..data import Ragged, SequenceSet, atomic_dir, write_npz
 from ..errors import DataError, FitError
-from ..sequences import Ragged, SequenceSet
 
 __all__ = ["Family", "FAMILY_FORMAT"]
 

@@ -14,9 +14,9 @@ from typing import Any
 
 import numpy as np
 
-from .._validation import invalid
+from ..data import SequenceSet
 from ..errors import FitError
-from ..sequences import SequenceSet
+from ..validation import invalid
 from ._probe import PROBE_FILE, PROBE_OUTPUT, check_probe
 
 __all__ = ["check_arguments", "read_curve", "run_trainer"]

@@ -37,8 +37,8 @@ from typing import Any
 
 import numpy as np
 
+from ..data import SequenceSet
 from ..errors import ConfigError, MissingDependencyError
-from ..sequences import SequenceSet
 
 __all__ = [
     "Stream",

@@ -18,9 +18,9 @@ from typing import Any
 import numpy as np
 from tqdm import tqdm
 
-from .._validation import check_float, check_int, invalid
+from ..data import Ragged, SequenceSet
 from ..errors import DataError
-from ..sequences import Ragged, SequenceSet
+from ..validation import check_float, check_int, invalid
 from ._base import Family
 from ._torch_common import (
     Stream,

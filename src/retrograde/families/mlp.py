@@ -24,10 +24,9 @@ import scipy.sparse
 from threadpoolctl import threadpool_limits
 from tqdm.auto import tqdm
 
-from .._validation import check_float, check_int, invalid
+from ..data import Ragged, SequenceSet, index_dtype
 from ..errors import DataError
-from ..sequences import Ragged, SequenceSet, index_dtype
-from . import registry
+from ..validation import check_float, check_int, invalid
 from ._base import Family
 from ._events import unit_events
 
@@ -44,7 +43,6 @@ PROBABILITY_FLOOR = 1e-10
 _CHUNK_EVENTS = 1 << 15
 
 
-@registry.register("mlp")
 class MLP(Family):
     """Fixed-window MLP language model (one-hot window -> ReLU layers -> softmax).
 
@@ -78,7 +76,7 @@ class MLP(Family):
     """
 
     name: ClassVar[str] = "mlp"
-    _test_params: ClassVar[dict[str, Any]] = {"window": 2, "hidden": 8, "epochs": 2}
+    example_params: ClassVar[dict[str, Any]] = {"window": 2, "hidden": 8, "epochs": 2}
 
     window: int
     hidden: int

@@ -16,10 +16,9 @@ from typing import Any, ClassVar
 import numpy as np
 from tqdm.auto import tqdm
 
-from .._validation import check_float, check_int
+from ..data import Ragged, SequenceSet
 from ..errors import DataError
-from ..sequences import Ragged, SequenceSet
-from . import registry
+from ..validation import check_float, check_int
 from ._base import Family
 from ._events import unit_events
 from ._ngram_counts import KneserNeyTables, count_tables, interpolated_probs
@@ -30,7 +29,6 @@ __all__ = ["NGram"]
 _SCORE_TOKENS = 1 << 22
 
 
-@registry.register("ngram")
 class NGram(Family):
     """Interpolated modified Kneser–Ney n-gram model.
 
@@ -56,8 +54,8 @@ class NGram(Family):
     name: ClassVar[str] = "ngram"
     #: 2: context ids and keys in int64 on every look-up path (vocabularies above ~46 k)
     numerics_version: ClassVar[int] = 2
-    #: small, fast parameters for the conformance test
-    _test_params: ClassVar[dict[str, Any]] = {"order": 3}
+    #: small, fast parameters for the conformance test and the docs
+    example_params: ClassVar[dict[str, Any]] = {"order": 3}
 
     order: int
     discount: float | None

@@ -13,8 +13,7 @@ from __future__ import annotations
 from types import ModuleType
 from typing import Any, ClassVar
 
-from .._validation import check_float, check_int
-from . import registry
+from ..validation import check_float, check_int
 from ._torch_family import TorchFamily
 
 __all__ = ["GRU", "LSTM"]
@@ -41,7 +40,7 @@ class _Recurrent(TorchFamily):
     hidden: int
     layers: int
     dropout: float
-    _test_params: ClassVar[dict[str, Any]] = {
+    example_params: ClassVar[dict[str, Any]] = {
         "embedding": 8,
         "hidden": 16,
         "context": 8,
@@ -111,7 +110,6 @@ class _Recurrent(TorchFamily):
         )
 
 
-@registry.register("gru")
 class GRU(_Recurrent):
     """Gated recurrent unit language model (Cho et al., 2014)."""
 
@@ -119,7 +117,6 @@ class GRU(_Recurrent):
     _cell = "gru"
 
 
-@registry.register("lstm")
 class LSTM(_Recurrent):
     """Long short-term memory language model (Hochreiter and Schmidhuber, 1997)."""
 

@@ -13,14 +13,12 @@ from __future__ import annotations
 from types import ModuleType
 from typing import Any, ClassVar
 
-from .._validation import check_choice, check_float, check_int, invalid
-from . import registry
+from ..validation import check_choice, check_float, check_int, invalid
 from ._torch_family import TorchFamily
 
 __all__ = ["Transformer"]
 
 
-@registry.register("transformer")
 class Transformer(TorchFamily):
     """Decoder-only causal transformer.
 
@@ -47,7 +45,7 @@ class Transformer(TorchFamily):
     heads: int
     dropout: float
     positional: str
-    _test_params: ClassVar[dict[str, Any]] = {
+    example_params: ClassVar[dict[str, Any]] = {
         "width": 16,
         "layers": 1,
         "heads": 2,

@@ -1,6 +1,6 @@
 """The two contracts sources follow, and the file helpers the file sources share.
 
-A *file source* streams :class:`~retrograde._document.Document` records from files
+A *file source* streams :class:`~retrograde.data.Document` records from files
 (``paths()`` lists the files, for DVC dependencies; ``documents()`` yields records one at a
 time, so memory stays bounded by the largest record, not the corpus).
 
@@ -27,10 +27,9 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from .._document import Document
-from .._validation import check_choice, check_int, invalid
+from ..data import Document, SequenceSet
 from ..errors import DataError
-from ..sequences import SequenceSet
+from ..validation import check_choice, check_int, invalid
 
 __all__ = ["CalibrationSource", "FileSource", "Source", "expand_files", "iter_lines"]
 

@@ -17,10 +17,9 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
-from .._document import Document
-from .._validation import check_choice
+from ..data import Document
 from ..errors import DataError
-from . import registry
+from ..validation import check_choice
 from ._base import EncodedFileSource, iter_lines
 
 __all__ = ["TextSource"]
@@ -28,7 +27,6 @@ __all__ = ["TextSource"]
 SPLITS = ("file", "paragraph", "line")
 
 
-@registry.register("text")
 class TextSource(EncodedFileSource):
     """UTF-8 text files.
 

@@ -23,17 +23,14 @@ from typing import Any
 
 import numpy as np
 
-from .._document import Document
-from .._validation import check_int
+from ..data import Document, SequenceSet
 from ..errors import DataError
-from ..sequences import SequenceSet
-from . import registry
+from ..validation import check_int
 from ._base import _GLOB_CHARS, FileSource, _as_path_list
 
 __all__ = ["TokensSource"]
 
 
-@registry.register("tokens")
 class TokensSource(FileSource):
     """Token-id arrays (``SequenceSet`` folders or ``.npy`` files).
 

@@ -24,10 +24,10 @@ from typing import Any, TextIO
 
 import numpy as np
 
-from .._io import atomic_write_bytes, atomic_write_json
+from ..config import ModelConfig, cell_dir, load_params, order_dir
+from ..data import SPLITS, SequenceSet, atomic_write_bytes, atomic_write_json
 from ..errors import FitError, RetrogradeError
-from ..sequences import SequenceSet
-from . import cell_dir, order_dir, read_params, run_stage
+from . import run_stage
 
 __all__ = ["fit_cell", "main"]
 
@@ -38,27 +38,26 @@ def _plain(value: Any) -> Any:
 
 
 def fit_cell(
-    model_spec: dict[str, Any],
+    model_spec: ModelConfig,
     splits: dict[str, SequenceSet],
     *,
     seed: int,
     log: TextIO | None = None,
 ) -> tuple[Any, np.ndarray, list[dict[str, Any]]]:
-    """Fit ``model_spec`` (``{family, params}``) on train (valid for early stopping).
+    """Fit the model ``model_spec`` describes on train (valid for early stopping).
 
     Returns ``(model, test_logprobs, curve)``; ``test_logprobs`` is the flat float64 array
     of the test units' log-probabilities (``len + 1`` per unit, end marker last).
     """
     from .. import families
-    from ..families._probe import check_probe, probe_positions, probe_size
 
     def note(line: str) -> None:
         if log is not None:
             print(line, file=log, flush=True)
 
-    model = families.make(model_spec["family"], **model_spec["params"])
+    model = families.make(model_spec.family, **model_spec.params)
     train, valid, test = splits["train"], splits["valid"], splits["test"]
-    note(f"fit {model_spec['family']} {model_spec['params']} seed={seed}")
+    note(f"fit {model_spec.family} {model_spec.params} seed={seed}")
     note(
         f"train {len(train)} units / {len(train.tokens)} tokens; valid {len(valid)}; test {len(test)}"
     )
@@ -75,18 +74,18 @@ def fit_cell(
     expected = len(test.tokens) + len(test)
     if values.shape != (expected,) or not np.array_equal(logprobs.lengths, test.lengths + 1):
         raise FitError(
-            f"family {model_spec['family']!r} returned {values.size} log-probabilities for "
+            f"family {model_spec.family!r} returned {values.size} log-probabilities for "
             f"{len(test)} test units; expected len + 1 per unit ({expected} in all)"
         )
     if not np.all(np.isfinite(values)) or np.any(values > 1e-9):
         raise FitError(
-            f"family {model_spec['family']!r} returned log-probabilities that are not finite "
+            f"family {model_spec.family!r} returned log-probabilities that are not finite "
             "and <= 0; every outcome needs a probability above 0"
         )
     # The normalization probe (families/_probe.py): whole distributions at a few positions.
-    positions = probe_positions(test, probe_size(model.vocab_size), seed)
+    positions = families.probe_positions(test, families.probe_size(model.vocab_size), seed)
     distributions = model.probe_logprobs(test, positions)
-    check_probe(f"family {model_spec['family']!r}", test, values, positions, distributions)
+    families.check_probe(f"family {model_spec.family!r}", test, values, positions, distributions)
     note(f"probe: {len(positions)} test positions score distributions that sum to 1")
     note(f"test nats {-values.sum():.6f} over {len(test.tokens)} tokens")
     return model, values, curve
@@ -101,9 +100,9 @@ def _body(args: argparse.Namespace) -> None:
     # The log is written as the fit goes (not atomically) so that a crash leaves it behind.
     with log_path.open("w", encoding="utf-8") as log:
         try:
-            spec = read_params(wdir)["study"]["models"][args.model]
+            spec = load_params(wdir).study.models[args.model]
             data = wdir / str(order_dir(args.source, args.order))
-            splits = {s: SequenceSet.load(data / s) for s in ("train", "valid", "test")}
+            splits = {s: SequenceSet.load(data / s) for s in SPLITS}
             model, values, curve = fit_cell(spec, splits, seed=args.seed, log=log)
             model.save(cell / "model")
             buffer = io.BytesIO()

@@ -17,10 +17,19 @@ from typing import Any
 
 import numpy as np
 
-from .. import __version__
+from .. import __version__, stats
+from ..config import (
+    RetrogradeConfig,
+    StudyConfig,
+    cell_dir,
+    check_stats,
+    load_params,
+    order_dir,
+    units_dir,
+)
+from ..data import Ragged, SequenceSet
 from ..errors import DataError
-from ..sequences import Ragged, SequenceSet
-from . import cell_dir, order_dir, read_params, run_stage, units_dir
+from . import run_stage
 
 __all__ = ["collect", "main"]
 
@@ -54,8 +63,6 @@ def _order_losses(
     Returns ``(unit_nll, natural, curves)``: (n_seeds, n_units) nats per test unit, the
     seed-averaged per-position losses in natural order (end marker last), one curve a seed.
     """
-    from .. import scoring
-
     source, model, order = where
     positions_path = wdir / str(order_dir(source, order)) / "positions_test.npy"
     if not positions_path.is_file():
@@ -70,8 +77,8 @@ def _order_losses(
     for seed in seeds:
         values, curve = _read_cell(wdir, source, model, order, seed)
         logprobs = Ragged(values, score_offsets)
-        unit_nll.append(scoring.unit_nll(logprobs))
-        losses.append(scoring.natural_order_losses(logprobs, positions, test).values)
+        unit_nll.append(stats.unit_nll(logprobs))
+        losses.append(stats.natural_order_losses(logprobs, positions, test).values)
         curves.append(curve)
     natural = Ragged(np.mean(losses, axis=0), score_offsets)
     return np.stack(unit_nll), natural, curves
@@ -85,69 +92,78 @@ def _check_floor(
     test: SequenceSet,
 ) -> None:
     """Refuse a cell that scores below the exact floor by more than noise."""
-    from ..stats import FLOOR_Z, below_floor
-
     n_tokens = max(int(len(test.tokens)), 1)
     for row, seed in enumerate(seeds):
-        excess = below_floor(unit_nll[row], floors)
+        excess = stats.below_floor(unit_nll[row], floors)
         if excess is not None:
             bits = float(unit_nll[row].sum()) / np.log(2) / n_tokens
             floor_bits = float(floors.sum()) / np.log(2) / n_tokens
             raise DataError(
                 f"cell {'/'.join(where)}/seed{seed} scores {bits:.4f} bits/token, below the "
                 f"exact floor {floor_bits:.4f} by more than noise (mean {excess:+.4g} nats per "
-                f"unit, over {FLOOR_Z:g} standard errors); no model beats the true distribution: "
+                f"unit, over {stats.FLOOR_Z:g} standard errors); no model beats the true distribution: "
                 "test units leaked into training, or the probabilities do not sum to 1"
             )
 
 
-def collect(wdir: Path, params: dict[str, Any]) -> dict[str, Any]:
-    """The keyword arguments of :func:`retrograde.report.write_all` for this grid."""
-    from .. import stats
+def _model_results(
+    wdir: Path, source: str, model: str, config: RetrogradeConfig, test: SequenceSet, floors: Any
+) -> tuple[dict[str, Any], dict[str, Ragged], dict[str, Any]]:
+    """One model on one source: (its table leaves, natural-order losses, curves) per order."""
+    study, stats_config = config.study, config.stats
+    seeds = [int(s) for s in study.seeds]
+    unit_nll: dict[str, np.ndarray] = {}
+    natural: dict[str, Ragged] = {}
+    curves: dict[str, Any] = {}
+    for order in study.orders:
+        where = (source, model, order)
+        unit_nll[order], natural[order], curves[order] = _order_losses(wdir, where, seeds, test)
+        if floors is not None:
+            _check_floor(unit_nll[order], floors, where, seeds, test)
+    leaves = stats.summarize_model(
+        unit_nll,
+        reference_order=study.reference_order,
+        n_tokens=test.lengths,
+        n_bytes=test.n_bytes,
+        doc_ids=test.doc_ids,
+        floors=floors,
+        level=stats_config.level,
+        n_boot=stats_config.n_boot,
+        seed=stats_config.seed,
+    )
+    return leaves, natural, curves
 
-    study, stats_config = params["study"], params["stats"]
-    reference, seeds = study["reference_order"], [int(s) for s in study["seeds"]]
+
+def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
+    """The keyword arguments of :func:`retrograde.report.write_all` for this grid."""
+    check_stats(config.stats)  # the rule composition applied, again on what was read
+    study, stats_config = config.study, config.stats
+    reference = study.reference_order
     table: dict[str, Any] = {}
     profiles: dict[str, Any] = {}
     spans: dict[str, Any] = {}
     curves: dict[str, Any] = {}
     data_hashes: dict[str, str] = {}
-    for source in study["sources"]:
+    for source in study.sources:
         folder = wdir / str(units_dir(source))
         info = json.loads((folder / "info.json").read_text(encoding="utf-8"))
         test = SequenceSet.load(folder / "test")
         data_hashes[source] = _data_hash(test)
         floors = np.load(folder / "floors.npy") if (folder / "floors.npy").is_file() else None
         table[source], profiles[source], curves[source] = {}, {}, {}
-        for model in study["models"]:
-            unit_nll: dict[str, np.ndarray] = {}
-            natural: dict[str, Ragged] = {}
-            curves[source][model] = {}
-            for order in study["orders"]:
-                unit_nll[order], natural[order], curves[source][model][order] = _order_losses(
-                    wdir, (source, model, order), seeds, test
-                )
-                if floors is not None:
-                    _check_floor(unit_nll[order], floors, (source, model, order), seeds, test)
-            table[source][model] = stats.summarize_model(
-                unit_nll,
-                reference_order=reference,
-                n_tokens=test.lengths,
-                n_bytes=test.n_bytes,
-                doc_ids=test.doc_ids,
-                floors=floors,
-                level=stats_config["level"],
-                n_boot=stats_config["n_boot"],
-                seed=stats_config["seed"],
+        for model in study.models:
+            leaves, natural, model_curves = _model_results(
+                wdir, source, model, config, test, floors
             )
+            table[source][model], curves[source][model] = leaves, model_curves
             profiles[source][model] = stats.position_profile(
-                natural, reference_order=reference, n_buckets=stats_config["position_buckets"]
+                natural, reference_order=reference, n_buckets=stats_config.position_buckets
             )
             if info.get("spans"):
                 named = {k: (int(v[0]), int(v[1])) for k, v in info["spans"].items()}
                 spans.setdefault(source, {})[model] = stats.span_breakdown(natural, named)
     stats.adjust_holm(table, reference_order=reference)
-    warning = stats.seed_warning(len(seeds))
+    warning = stats.seed_warning(len(study.seeds))
     return {
         "table": table,
         "profiles": profiles,
@@ -157,21 +173,24 @@ def collect(wdir: Path, params: dict[str, Any]) -> dict[str, Any]:
         "provenance": {
             "package_version": __version__,
             "test_units_sha256": data_hashes,
-            "params": params,
+            "params": config.to_dict(),
         },
         "warnings": [warning] if warning else [],
-        "level": stats_config["level"],
+        "level": stats_config.level,
     }
 
 
-def _sweeps(study: dict[str, Any]) -> dict[str, Any]:
+def _sweeps(study: StudyConfig) -> dict[str, Any]:
     """One report sweep per (sweep, source): ``{source, parameter, models: {name: value}}``."""
     out = {}
-    for name, sweep in study.get("sweeps", {}).items():
-        for source in study["sources"]:
-            key = name if len(study["sources"]) == 1 else f"{name}-{source}"
-            models = sweep.get("models", {})
-            out[key] = {"source": source, "parameter": sweep["parameter"], "models": models}
+    for name, sweep in study.sweeps.items():
+        for source in study.sources:
+            key = name if len(study.sources) == 1 else f"{name}-{source}"
+            out[key] = {
+                "source": source,
+                "parameter": sweep.parameter,
+                "models": sweep.models or {},
+            }
     return out
 
 
@@ -179,7 +198,7 @@ def _body(args: argparse.Namespace) -> None:
     from .. import report
 
     wdir = Path(args.params).resolve()
-    report.write_all(wdir, **collect(wdir, read_params(wdir)))
+    report.write_all(wdir, **collect(wdir, load_params(wdir)))
 
 
 def main(argv: Sequence[str] | None = None) -> int:

@@ -1,0 +1,35 @@
+"""The report: the gap table as ``metrics.json``, ``report.md``, CSV and figures, and diffs.
+
+``table`` is ``{source: {model: {order: leaf}}}`` with the leaves of
+:func:`retrograde.stats.summarize_model`, so ``dvc metrics diff`` keys read
+``SOURCE.MODEL.ORDER.gap_pct``. Everything here is a deterministic function of its inputs:
+the same table gives byte-identical files. matplotlib is imported only when figures are
+drawn (:func:`write_all`).
+
+- :func:`write_all` — ``metrics.json``, ``report.md`` and ``plots/`` in one folder;
+- :func:`format_table` — the table as ``markdown``, ``json`` or ``csv`` text;
+- :func:`table_warnings` — cautions that follow from the table itself;
+- :func:`compare_tables`, :func:`format_changes` — what changed between two tables.
+"""
+
+from __future__ import annotations
+
+from ._compare import STATUSES, CellChange, compare_tables, format_changes
+from ._markdown import CAUTIONS, LEAF_FIELDS, is_reference_leaf, render_report, table_rows
+from ._write import FORMATS, format_table, table_warnings, write_all
+
+__all__ = [
+    "CAUTIONS",
+    "FORMATS",
+    "LEAF_FIELDS",
+    "STATUSES",
+    "CellChange",
+    "compare_tables",
+    "format_changes",
+    "format_table",
+    "is_reference_leaf",
+    "render_report",
+    "table_rows",
+    "table_warnings",
+    "write_all",
+]

@@ -1,0 +1,203 @@
+"""Markdown text of the gap table and of ``report.md`` (pure functions, no file access).
+
+Re-exported by :mod:`retrograde.report`, which writes the files.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+from typing import Any
+
+from .. import __version__
+
+__all__ = [
+    "CAUTIONS",
+    "LEAF_FIELDS",
+    "fields_present",
+    "is_reference_leaf",
+    "markdown_table",
+    "render_report",
+    "table_rows",
+]
+
+Table = Mapping[str, Mapping[str, Mapping[str, Mapping[str, Any]]]]
+
+#: shown in every report; each is a way a gap table is commonly over-read
+CAUTIONS = (
+    "A gap belongs to this model family, this amount of data and this training budget, "
+    "not to the language or the data source as such.",
+    "A gap whose interval contains 0 is not a finding; only the `significant` column "
+    "(Holm-adjusted p below 0.05) marks gaps unlikely to be chance.",
+    "Small or under-trained models can show a gap with the opposite sign to larger ones.",
+    "With fewer than 3 seeds the interval resamples test units only and ignores training "
+    "randomness.",
+)
+
+#: CSV and Markdown column order; later fields appear only when some leaf has them
+LEAF_FIELDS = (
+    "bits_per_token",
+    "bits_per_byte",
+    "floor_bits_per_token",
+    "excess_bits_per_token",
+    "gap_pct",
+    "gap_pct_low",
+    "gap_pct_high",
+    "p_value",
+    "p_value_sign_flip",
+    "p_value_holm",
+    "significant",
+    "seed_spread_pct",
+    "seeds",
+    "units",
+    "tokens",
+    "groups",
+    "documents",
+)
+
+
+def is_reference_leaf(leaf: Mapping[str, Any]) -> bool:
+    """Whether ``leaf`` is a reference order's (gap and interval exactly 0, never tested)."""
+    return (
+        "p_value_holm" not in leaf
+        and leaf.get("gap_pct") == 0
+        and leaf.get("gap_pct_low") == 0
+        and leaf.get("gap_pct_high") == 0
+    )
+
+
+def table_rows(table: Table) -> list[dict[str, Any]]:
+    """One flat dict per cell: ``source``, ``model``, ``order`` and the leaf's fields."""
+    return [
+        {"source": source, "model": model, "order": order, **leaf}
+        for source, models in table.items()
+        for model, orders in models.items()
+        for order, leaf in orders.items()
+    ]
+
+
+def fields_present(rows: Sequence[Mapping[str, Any]]) -> list[str]:
+    present = {key for row in rows for key in row}
+    extra = sorted(present - set(LEAF_FIELDS) - {"source", "model", "order"})
+    return [f for f in LEAF_FIELDS if f in present] + extra
+
+
+def _number(value: Any, spec: str) -> str:
+    if value is None:
+        return "–"
+    if isinstance(value, bool):
+        return "yes" if value else ""
+    return format(value, spec)
+
+
+def _p_text(value: Any) -> str:
+    if value is None:
+        return "–"
+    return "<0.001" if value < 0.001 else f"{value:.3f}"
+
+
+def _interval_title(level: float | None) -> str:
+    return "interval" if level is None else f"{level:.0%} interval"
+
+
+def _markdown_source(source: str, models: Mapping[str, Any], level: float | None) -> str:
+    rows = table_rows({source: models})
+    fields = set(fields_present(rows))
+    header = ["model", "order", "bits/token"]
+    optional = [
+        ("bits_per_byte", "bits/byte"),
+        ("floor_bits_per_token", "floor bits/token"),
+        ("excess_bits_per_token", "excess bits/token"),
+    ]
+    header += [title for key, title in optional if key in fields]
+    header += [f"gap % [{_interval_title(level)}]", "seed spread %", "p (Holm)", "significant"]
+    lines = ["| " + " | ".join(header) + " |", "|" + "---|" * len(header)]
+    for row in rows:
+        reference = is_reference_leaf(row)
+        cells = [f"`{row['model']}`", f"`{row['order']}`", _number(row["bits_per_token"], ".4f")]
+        cells += [_number(row.get(key), ".4f") for key, _ in optional if key in fields]
+        if reference:
+            cells += ["reference", "", "", ""]
+        else:
+            interval = f"[{row['gap_pct_low']:+.2f}, {row['gap_pct_high']:+.2f}]"
+            p_holm = row.get("p_value_holm", row.get("p_value"))
+            cells += [
+                f"{row['gap_pct']:+.2f} {interval}",
+                _number(row.get("seed_spread_pct"), ".2f"),
+                _p_text(p_holm),
+                "**yes**" if row.get("significant") else "",
+            ]
+        lines.append("| " + " | ".join(cells) + " |")
+    return f"### Source `{source}`\n\n" + "\n".join(lines) + "\n"
+
+
+def markdown_table(table: Table, level: float | None = None) -> str:
+    """One Markdown table per source, each under a ``### Source`` heading."""
+    return "\n".join(_markdown_source(s, models, level) for s, models in table.items())
+
+
+def _markdown_spans(spans: Mapping[str, Mapping[str, Any]]) -> str:
+    lines = []
+    for source, models in spans.items():
+        lines += [
+            f"### Spans of `{source}`",
+            "",
+            "| model | order | span | bits/token | perplexity | bits/unit |",
+            "|---|---|---|---|---|---|",
+        ]
+        for model, by_order in models.items():
+            for order, by_span in by_order.items():
+                for span, value in by_span.items():
+                    cells = [
+                        f"`{model}`",
+                        f"`{order}`",
+                        f"`{span}`",
+                        _number(value.get("bits_per_token"), ".4f"),
+                        _number(value.get("perplexity"), ".3f"),
+                        _number(value.get("bits_per_unit"), ".2f"),
+                    ]
+                    lines.append("| " + " | ".join(cells) + " |")
+        lines.append("")
+    return "\n".join(lines)
+
+
+def render_report(
+    table: Table,
+    *,
+    spans: Mapping[str, Mapping[str, Any]],
+    provenance: Mapping[str, Any],
+    warnings: Sequence[str],
+    figures: Sequence[str],
+    level: float | None = None,
+) -> str:
+    """The text of ``report.md`` (pure: no file access)."""
+    parts = ["# Order-ablation gap table", ""]
+    if warnings:
+        parts += ["> **Warnings**", ">"] + [f"> - {w}" for w in warnings] + [""]
+    parts += [
+        "Each gap is `100 * (NLL(order) / NLL(reference) - 1)` on the same test units, with a "
+        f"{_interval_title(level)} from a bootstrap over units and seeds, and a p-value from a "
+        "paired sign-flip test on units (with 3 or more seeds, no smaller than the bootstrap's "
+        "own p-value), Holm-adjusted over every gap in this table. Positive gaps mean the "
+        "order is harder to learn than the reference.",
+        "",
+        markdown_table(table, level),
+    ]
+    if spans:
+        parts += ["## Loss per span", "", _markdown_spans(spans)]
+    parts += ["## Cautions", ""] + [f"- {c}" for c in CAUTIONS] + [""]
+    if figures:
+        parts += ["## Figures", ""] + [f"![{Path(f).stem}]({f})" for f in figures] + [""]
+    version = provenance.get("package_version", __version__)
+    parts += [
+        "## Provenance",
+        "",
+        f"retrograde {version}. Data hashes, configuration and versions of this run:",
+        "",
+        "```json",
+        json.dumps(provenance, indent=2, sort_keys=True, default=str),
+        "```",
+        "",
+    ]
+    return "\n".join(parts)
