@@ -74,6 +74,8 @@ def test_default_config_composes_into_the_documented_shape(host):
             "family": "ngram",
             "params": {"order": 3, "discount": None},
             "code": None,
+            "seeds": None,
+            "sources": None,
             "numerics_version": 2,
             "package_version": __version__,
             "trainer_sha256": None,
@@ -329,3 +331,49 @@ def test_every_shipped_source_config_composes_and_builds(host, source):
     # A calibration source reads no files and cuts no units (it generates them).
     assert (spec["calibration"] is not None) == (spec["deps"] == [])
     assert (spec["calibration"] is None) == (spec["units"] is not None)
+
+
+# ----------------------------------------------------------- per-model seeds and sources
+def test_a_model_may_name_its_own_seeds_and_sources(host):
+    config = compose(
+        host,
+        [
+            "source=[corpus,markov]",
+            "study.seeds=[0]",
+            "+study.models.big={family: ngram, params: {order: 4}, seeds: [1, 2, 3], sources: [markov]}",
+        ],
+    )
+    cells = config.cells()
+    # ngram everywhere with the study's one seed; big on markov only, with its three.
+    assert [c for c in cells if c[1] == "ngram"] == [
+        (s, "ngram", o, 0) for s in ("corpus", "markov") for o in ("forward", "reverse")
+    ]
+    assert [c for c in cells if c[1] == "big"] == [
+        ("markov", "big", o, seed) for o in ("forward", "reverse") for seed in (1, 2, 3)
+    ]
+    assert config.study.models_on("corpus") == ["ngram"]
+
+
+@pytest.mark.parametrize(
+    ("override", "expected"),
+    [
+        (
+            "+study.models.big={family: ngram, sources: [markof]}",
+            "names 'markof', which is not a source (did you mean 'markov'?)",
+        ),
+        (
+            "+study.models.big={family: ngram, seeds: [1, 1]}",
+            "study.models.big: parameter seeds=[1, 1] is invalid",
+        ),
+        ("+study.models.big={family: ngram, sources: []}", "sources=[] is invalid"),
+    ],
+)
+def test_bad_model_seeds_or_sources_fail_in_one_line(host, override, expected):
+    assert expected in _one_line_error(host, ["source=[corpus,markov]", override])
+
+
+def test_a_source_no_model_fits_is_refused(host):
+    message = _one_line_error(
+        host, ["source=[corpus,markov]", "+study.models.ngram.sources=[corpus]"]
+    )
+    assert "study.sources.markov is fitted by no model" in message

@@ -427,3 +427,38 @@ def test_table_refuses_a_cell_that_scores_below_the_exact_floor(tmp_path, capsys
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1
     assert "cell markov/ngram/reverse/seed0 scores" in err[0] and "below the exact floor" in err[0]
+
+
+def test_table_reads_each_models_own_seeds_and_sources(tmp_path):
+    wdir = _host(
+        tmp_path / "host",
+        [
+            "source=[corpus,markov]",
+            "study=smoke",
+            "study.models.ngram.params.order=2",
+            "study.sources.markov.calibration.n_units=60",
+            "+study.models.one={family: ngram, params: {order: 1}, seeds: [5], sources: [markov]}",
+            "stats.n_boot=50",
+        ],
+    )
+    config = load_params(wdir)
+    for source in ("corpus", "markov"):
+        assert units_stage.main(["--params", str(wdir), "--source", source]) == 0
+        for order in ("forward", "reverse"):
+            argv = ["--params", str(wdir), "--source", source, "--order", order]
+            assert reorder_stage.main(argv) == 0
+    for source, model, order, seed in config.cells():
+        argv = ["--source", source, "--model", model, "--order", order, "--seed", str(seed)]
+        assert fit_stage.main(["--params", str(wdir), *argv]) == 0
+    collected = table_stage.collect(wdir, config)
+    table = collected["table"]
+    assert sorted(table["corpus"]) == ["ngram"] and sorted(table["markov"]) == ["ngram", "one"]
+    assert table["markov"]["one"]["reverse"]["seeds"] == 1
+    assert table["markov"]["ngram"]["reverse"]["seeds"] == 2
+    # Each model's own seed count, named, since the two differ.
+    assert collected["warnings"] == [
+        "model 'ngram': with 2 seeds the interval ignores training randomness (it resamples "
+        "test units only); fit at least 3 seeds",
+        "model 'one': with 1 seed the interval ignores training randomness (it resamples "
+        "test units only); fit at least 3 seeds",
+    ]

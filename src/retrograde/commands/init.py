@@ -13,7 +13,7 @@ import argparse
 from pathlib import Path
 
 from ..config import CONF_DIR, PIPELINE_DIR
-from ..host import SOURCE_CONFIG, find_host, install, planned_files, resolve_sources
+from ..host import SOURCE_CONFIG, find_host, initialize, resolve_sources
 
 __all__ = ["configure", "run"]
 
@@ -39,7 +39,7 @@ def configure(parser: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace) -> int:
     host = find_host(args.dir)
     sources = resolve_sources(host, args.source, cwd=Path.cwd())
-    result = install(host, planned_files(sources=sources), force=args.force)
+    result = initialize(host, sources, force=args.force)
     if result.written:
         print(f"retrograde init: wrote {len(result.written)} file(s) in {host.root}:")
         for path in result.written:

@@ -74,6 +74,7 @@ __all__ = [
     "METRICS_FILE",
     "MIN_BOOT",
     "NAME_PATTERN",
+    "PARAMS_DIGEST_ENV",
     "PARAMS_FILE",
     "PIPELINE_DIR",
     "WDIR_TO_ROOT",
@@ -104,6 +105,7 @@ __all__ = [
     "load_params",
     "normalize",
     "order_dir",
+    "params_digest",
     "params_text",
     "parse",
     "register_configs",
@@ -115,6 +117,8 @@ __all__ = [
     "units_stage_name",
 ]
 
+#: the sha256 of the params.yaml a run composed, passed to the stage processes it starts
+PARAMS_DIGEST_ENV = "RETROGRADE_PARAMS_SHA256"
 _PARAMS_HEADER = (
     "# Composed by `retrograde run` from conf/retrograde/; edit the config, not this.\n"
 )
@@ -162,6 +166,16 @@ def params_text(config: RetrogradeConfig) -> str:
 
     body = yaml.safe_dump(config.to_dict(), sort_keys=False, default_flow_style=False)
     return _PARAMS_HEADER + body
+
+
+def params_digest(path: str | os.PathLike[str]) -> str:
+    """sha256 of a params file's bytes (empty string when it does not exist)."""
+    import hashlib
+
+    try:
+        return hashlib.sha256(Path(path).read_bytes()).hexdigest()
+    except FileNotFoundError:
+        return ""
 
 
 def load_params(folder: str | os.PathLike[str] = ".") -> RetrogradeConfig:

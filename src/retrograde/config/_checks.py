@@ -33,14 +33,26 @@ def check_study(study: StudyConfig) -> None:
             raise ConfigError(
                 f"study.{group} is empty; allowed: at least one entry (see docs/config.md)"
             )
-    seeds = study.seeds
-    if not seeds or len(set(seeds)) != len(seeds):
-        raise ConfigError(
-            f"study: parameter seeds={seeds!r} is invalid; allowed: a non-empty list of "
-            "distinct integers >= 0"
-        )
-    for seed in seeds:
-        check_int("study", "seeds", seed, 0)
+    _check_seeds("study", study.seeds)
+    for name, model in study.models.items():
+        where = f"study.models.{name}"
+        if model.seeds is not None:
+            _check_seeds(where, model.seeds)
+        for source in model.sources if model.sources is not None else []:
+            if source not in study.sources:
+                raise ConfigError(
+                    f"{where}: parameter sources={model.sources!r} names {source!r}, which is "
+                    f"not a source{did_you_mean(source, study.sources)}; allowed: names from "
+                    f"study.sources ({', '.join(study.sources)})"
+                )
+        if model.sources is not None and not model.sources:
+            raise ConfigError(f"{where}: parameter sources=[] is invalid; allowed: null or names")
+    for source in study.sources:
+        if not study.models_on(source):
+            raise ConfigError(
+                f"study.sources.{source} is fitted by no model (every model's sources leaves "
+                "it out); drop the source or add it to a model's sources"
+            )
     reference = study.reference_order
     if reference not in study.orders:
         raise ConfigError(
@@ -48,6 +60,16 @@ def check_study(study: StudyConfig) -> None:
             f"{did_you_mean(reference, study.orders)}; allowed: one of "
             f"{', '.join(sorted(study.orders))}"
         )
+
+
+def _check_seeds(where: str, seeds: list[int]) -> None:
+    if not seeds or len(set(seeds)) != len(seeds):
+        raise ConfigError(
+            f"{where}: parameter seeds={seeds!r} is invalid; allowed: a non-empty list of "
+            "distinct integers >= 0"
+        )
+    for seed in seeds:
+        check_int(where, "seeds", seed, 0)
 
 
 def check_source_values(name: str, source: SourceConfig, *, calibration: bool) -> None:

@@ -63,16 +63,18 @@ def fit_cells(study: StudyConfig) -> dict[str, FitCell]:
     """The fit cells of a composed study, as the ``fits`` block of ``params.yaml``.
 
     Keys are what DVC appends to ``fit@`` (``source-model-order-seed``), in the order
-    source, model, order, seed. Each cell's ``code`` dependency (seen from the pipeline
+    source, model, order, seed; a model with its own ``seeds`` or ``sources`` gets only
+    those. Each cell's ``code`` dependency (seen from the pipeline
     folder) is a ``command`` model's trainer files, or else the source's units, which every
     cell depends on anyway.
     """
     fits: dict[str, FitCell] = {}
     for source in study.sources:
-        for model, spec in study.models.items():
+        for model in study.models_on(source):
+            spec = study.models[model]
             code = f"{WDIR_TO_ROOT}/{spec.code}" if spec.code else str(units_dir(source))
             for order in study.orders:
-                for seed in study.seeds:
+                for seed in study.seeds_of(model):
                     key = f"{source}-{model}-{order}-{seed}"
                     fits[key] = FitCell(source, model, order, int(seed), code)
     return fits

@@ -108,6 +108,10 @@ class ModelConfig:
     #: a ``command`` model's trainer: a file or folder relative to the host root, a DVC
     #: dependency of its cells; found in the command when null (``python train.py``)
     code: str | None = None
+    #: the seeds this model is fitted with; the study's ``seeds`` when null
+    seeds: list[int] | None = None
+    #: the sources this model is fitted on (names in ``study.sources``); all when null
+    sources: list[str] | None = None
     numerics_version: int | None = _composed()
     package_version: str | None = _composed()
     #: a trainer outside the repository: the sha256 of its program and files
@@ -131,6 +135,20 @@ class StudyConfig:
     seeds: list[int] = field(default_factory=lambda: [0, 1, 2])
     reference_order: str = "forward"
     sweeps: dict[str, SweepConfig] = field(default_factory=dict)
+
+    def seeds_of(self, model: str) -> list[int]:
+        """The seeds ``model`` is fitted with (its own, else the study's)."""
+        own = self.models[model].seeds
+        return [int(s) for s in (self.seeds if own is None else own)]
+
+    def sources_of(self, model: str) -> list[str]:
+        """The sources ``model`` is fitted on, in the order of ``sources``."""
+        own = self.models[model].sources
+        return [s for s in self.sources if own is None or s in own]
+
+    def models_on(self, source: str) -> list[str]:
+        """The models fitted on ``source``, in the order of ``models``."""
+        return [m for m in self.models if source in self.sources_of(m)]
 
 
 @dataclass
@@ -253,7 +271,7 @@ def normalize(raw: dict[str, Any]) -> dict[str, Any]:
         return out
     for group, name_key, keep in (
         ("orders", "name", set()),
-        ("models", "family", {"code"}),
+        ("models", "family", {"code", "seeds", "sources"}),
         ("sources", "name", _SOURCE_KEYS),
     ):
         entries = study.get(group)

@@ -24,12 +24,14 @@ from ._demo import MARKER, commit_demo_results, next_steps, prepare_demo
 from ._driver import (
     RunResult,
     compose_for,
+    initialize,
     parse_repro_line,
     run_pipeline,
-    stage_python_first,
+    stage_environment,
     write_pipeline_files,
 )
 from ._file_check import check_file, format_file_check, parse_order_spec, read_text
+from ._lock import pipeline_lock
 from ._lockfile import normalize_lock_order, order_lock_entries, ordered_keys
 from ._parallel import log_path_for, repro_argv, run_stages_in_parallel, stale_stages
 from ._plan import Shard, parse_shard, plan_shard, reproduce_shard, shard_of
@@ -84,6 +86,7 @@ __all__ = [
     "format_host_check",
     "git_toplevel",
     "host_stage_outputs",
+    "initialize",
     "install",
     "last_error_line",
     "log_path_for",
@@ -94,6 +97,7 @@ __all__ = [
     "parse_order_spec",
     "parse_repro_line",
     "parse_shard",
+    "pipeline_lock",
     "plan_shard",
     "planned_files",
     "prepare_demo",
@@ -112,7 +116,7 @@ __all__ = [
     "run_tool",
     "shard_of",
     "source_config",
-    "stage_python_first",
+    "stage_environment",
     "stale_stages",
     "write_pipeline_files",
 ]

@@ -26,6 +26,7 @@ from .. import orders
 from ..config import RetrogradeConfig, fit_stage_name, reorder_stage_name, units_stage_name
 from ..data import SPLITS
 from ._driver import compose_for, write_pipeline_files
+from ._lock import pipeline_lock
 from ._repo import HostRepo, run_dvc
 
 __all__ = ["cell_status", "check_host", "format_host_check", "round_trip_orders"]
@@ -62,15 +63,17 @@ def round_trip_orders(root: Path, config: RetrogradeConfig) -> dict[str, dict[st
 def cell_status(host: HostRepo, config: RetrogradeConfig) -> dict[str, list[str]]:
     """Fit stage names split into ``to_run`` and ``up_to_date``, as DVC sees them.
 
-    Brings ``params.yaml`` and the stage file up to date first (as ``run`` does).
+    Brings ``params.yaml`` and the stage file up to date first (as ``run`` does), holding
+    the pipeline folder's lock.
     """
-    write_pipeline_files(host, config)
     cells = config.cells()
     targets = [host.target(fit_stage_name(*cell)) for cell in cells]
     changed: set[str] = set()
-    if targets:
-        result = run_dvc(host.root, ["status", "--json", "--with-deps", *targets])
-        changed = {name.rpartition(":")[2] for name in json.loads(result.stdout or "{}")}
+    with pipeline_lock(host.root, "retrograde check"):
+        write_pipeline_files(host, config)
+        if targets:
+            result = run_dvc(host.root, ["status", "--json", "--with-deps", *targets])
+            changed = {name.rpartition(":")[2] for name in json.loads(result.stdout or "{}")}
     report: dict[str, list[str]] = {"to_run": [], "up_to_date": []}
     for source, model, order, seed in cells:
         name = fit_stage_name(source, model, order, seed)

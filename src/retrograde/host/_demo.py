@@ -18,8 +18,8 @@ from pathlib import Path
 from ..config import CONF_DIR, PIPELINE_DIR
 from ..errors import ConfigError
 from ._corpus_paths import resolve_sources
+from ._driver import initialize
 from ._repo import find_host, run_dvc, run_git
-from ._scaffold import install, planned_files
 
 __all__ = ["CORPUS_BYTES", "MARKER", "commit_demo_results", "next_steps", "prepare_demo"]
 
@@ -52,7 +52,7 @@ def _adopt(folder: Path) -> None:
     """``retrograde init`` plus the demo study, committed."""
     host = find_host(folder)
     corpus = resolve_sources(host, ["data/corpus.txt"], cwd=folder)  # written by the host stage
-    install(host, planned_files(sources=corpus))
+    initialize(host, corpus)
     conf = folder / CONF_DIR
     (conf / "config.yaml").write_text(_template("config.yaml"), encoding="utf-8")
     (conf / "study" / "demo.yaml").write_text(_template("study_demo.yaml"), encoding="utf-8")

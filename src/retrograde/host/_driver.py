@@ -18,23 +18,34 @@ import subprocess
 import sys
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
-from pathlib import Path
+from pathlib import Path, PurePosixPath
 
-from ..config import RetrogradeConfig, compose, fit_stage_name, params_text
+from ..config import (
+    PARAMS_DIGEST_ENV,
+    RetrogradeConfig,
+    compose,
+    fit_stage_name,
+    params_digest,
+    params_text,
+)
 from ..data import atomic_write_text
-from ..errors import FitError, HostRepoError
+from ..errors import FitError, HostRepoError, RetrogradeError
+from ..report import recover_report
 from ..validation import check_int
+from ._lock import pipeline_lock
 from ._lockfile import normalize_lock_order
 from ._parallel import run_stages_in_parallel, stale_stages
 from ._repo import HostRepo, dvc_argv, find_host, last_error_line, require_installed
+from ._scaffold import InstallResult, install, planned_files
 from ._stagefile import render_dvc_yaml
 
 __all__ = [
     "RunResult",
     "compose_for",
+    "initialize",
     "parse_repro_line",
     "run_pipeline",
-    "stage_python_first",
+    "stage_environment",
     "write_pipeline_files",
 ]
 
@@ -87,14 +98,24 @@ def compose_for(
 
 
 @contextlib.contextmanager
-def stage_python_first() -> Iterator[None]:
-    """Stage commands start with ``python``: make it this interpreter for DVC's children."""
-    previous = os.environ.get("PATH", "")
-    os.environ["PATH"] = os.pathsep.join([str(Path(sys.executable).parent), previous])
+def stage_environment(host: HostRepo) -> Iterator[None]:
+    """The environment DVC's stage processes inherit while the body runs.
+
+    Stage commands start with ``python``: this interpreter's folder goes first on ``PATH``.
+    The digest of the ``params.yaml`` just written lets every stage check that it still
+    reads the file this command composed (:mod:`retrograde.host._lock`).
+    """
+    saved = {key: os.environ.get(key) for key in ("PATH", PARAMS_DIGEST_ENV)}
+    os.environ["PATH"] = os.pathsep.join([str(Path(sys.executable).parent), saved["PATH"] or ""])
+    os.environ[PARAMS_DIGEST_ENV] = params_digest(host.params_file)
     try:
         yield
     finally:
-        os.environ["PATH"] = previous
+        for key, value in saved.items():
+            if value is None:
+                os.environ.pop(key, None)
+            else:
+                os.environ[key] = value
 
 
 def _write_if_changed(path: Path, text: str) -> bool:
@@ -190,6 +211,28 @@ def _run_jobs(
     return events
 
 
+def initialize(
+    host: HostRepo, sources: Sequence[str] = (), *, force: bool = False
+) -> InstallResult:
+    """``retrograde init``: install the config and stage file, and a first ``params.yaml``.
+
+    The params and the stage file's units block are those ``run`` would write for the
+    default config, so every ``dvc`` command (``status``, ``dag``, the host's own
+    ``repro``) works at the commit that adopts retrograde, before any run. When the default
+    config does not compose yet (a corpus the host has not declared), the grid is empty.
+    """
+    with pipeline_lock(host.root, "retrograde init"):
+        result = install(host, planned_files(sources=sources), force=force)
+        try:
+            config = compose(host.root)
+        except RetrogradeError:
+            config = RetrogradeConfig()
+            config.fits = {}
+        for path in write_pipeline_files(host, config):
+            result.written.append(PurePosixPath(path.relative_to(host.root).as_posix()))
+    return result
+
+
 def run_pipeline(
     host_dir: str | os.PathLike[str],
     overrides: Sequence[str] = (),
@@ -200,12 +243,14 @@ def run_pipeline(
     """Compose, write the generated files, reproduce the pipeline, order ``dvc.lock``."""
     jobs = check_int("option 'run'", "jobs", jobs, low=1)
     host, config = compose_for(host_dir, overrides)
-    write_pipeline_files(host, config)
-    study = config.study
-    cells = config.cells()
-    total = len(study.sources) * (1 + len(study.orders)) + len(cells) + 1
-    target = host.dvc_file.relative_to(host.root).as_posix()
-    with stage_python_first():
-        events = _run_jobs(host, target, cells, jobs, pull=pull, total=total)
-    normalize_lock_order(host.root)  # dvc.lock in stage-file order, whatever jobs was
+    with pipeline_lock(host.root, "retrograde run"):  # before the first write
+        recover_report(host.pipeline_dir)
+        write_pipeline_files(host, config)
+        study = config.study
+        cells = config.cells()
+        total = len(study.sources) * (1 + len(study.orders)) + len(cells) + 1
+        target = host.dvc_file.relative_to(host.root).as_posix()
+        with stage_environment(host):
+            events = _run_jobs(host, target, cells, jobs, pull=pull, total=total)
+        normalize_lock_order(host.root)  # dvc.lock in stage-file order, whatever jobs was
     return RunResult(host, config, events)

@@ -21,7 +21,8 @@ from typing import TypeVar
 from ..config import RetrogradeConfig, fit_stage_name, reorder_stage_name
 from ..errors import ConfigError
 from ..validation import check_int
-from ._driver import compose_for, stage_python_first, write_pipeline_files
+from ._driver import compose_for, stage_environment, write_pipeline_files
+from ._lock import pipeline_lock
 from ._parallel import run_stages_in_parallel
 from ._repo import HostRepo, run_dvc
 
@@ -93,12 +94,13 @@ def reproduce_shard(shard: Shard, *, jobs: int = 1, pull: bool = False) -> None:
     """Bring the generated files up to date as ``run`` does, then reproduce the shard."""
     jobs = check_int("option 'plan'", "jobs", jobs, low=1)
     host = shard.host
-    write_pipeline_files(host, shard.config)
     upstream = sorted({host.target(reorder_stage_name(s, o)) for s, _, o, _ in shard.cells})
-    with stage_python_first():
-        run_dvc(
-            host.root,
-            ["repro", *(["--pull"] if pull else []), *upstream],
-            log_path=host.pipeline_dir / "logs" / "plan-upstream.log",
-        )
-        run_stages_in_parallel(host.root, shard.names, jobs, pull=pull)
+    with pipeline_lock(host.root, "retrograde plan --run"):
+        write_pipeline_files(host, shard.config)
+        with stage_environment(host):
+            run_dvc(
+                host.root,
+                ["repro", *(["--pull"] if pull else []), *upstream],
+                log_path=host.pipeline_dir / "logs" / "plan-upstream.log",
+            )
+            run_stages_in_parallel(host.root, shard.names, jobs, pull=pull)

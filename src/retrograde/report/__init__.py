@@ -16,18 +16,20 @@ from __future__ import annotations
 
 from ._compare import STATUSES, CellChange, compare_tables, format_changes
 from ._markdown import CAUTIONS, LEAF_FIELDS, is_reference_leaf, render_report, table_rows
-from ._write import FORMATS, format_table, table_warnings, write_all
+from ._write import FORMATS, STAGING, format_table, recover_report, table_warnings, write_all
 
 __all__ = [
     "CAUTIONS",
     "FORMATS",
     "LEAF_FIELDS",
+    "STAGING",
     "STATUSES",
     "CellChange",
     "compare_tables",
     "format_changes",
     "format_table",
     "is_reference_leaf",
+    "recover_report",
     "render_report",
     "table_rows",
     "table_warnings",

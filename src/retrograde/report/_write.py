@@ -12,11 +12,12 @@ import csv
 import io
 import json
 import os
+import shutil
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
-from ..data import atomic_dir, atomic_write_json, atomic_write_text
+from ..data import atomic_write_json, atomic_write_text
 from ..errors import ConfigError
 from ..validation import check_choice
 from ._markdown import (
@@ -28,9 +29,13 @@ from ._markdown import (
     table_rows,
 )
 
-__all__ = ["FORMATS", "format_table", "table_warnings", "write_all"]
+__all__ = ["FORMATS", "STAGING", "format_table", "recover_report", "table_warnings", "write_all"]
 
 FORMATS = ("markdown", "json", "csv")
+#: where a new set of results is written before it replaces the published one (the name
+#: matches the ``.*.tmp`` rule ``init`` puts in the pipeline's .gitignore)
+STAGING = ".table.tmp"
+_COMPLETE = "COMPLETE"
 
 
 def _deterministic_models(models: Mapping[str, Mapping[str, Mapping[str, Any]]]) -> list[str]:
@@ -147,11 +152,14 @@ def write_all(
                 f"sweep {name!r}: source {sweep.get('source')!r} is not in the table "
                 f"(sources: {sorted(table)}); check study.sweeps.{name}.source"
             )
-    with atomic_dir(out_dir / "plots") as plot_dir:
-        figures = _plots.write_plots(
-            plot_dir, table=table, profiles=profiles, curves=curves, sweeps=sweeps
-        )
-    atomic_write_json(out_dir / "metrics.json", table)
+    recover_report(out_dir)  # a set a killed writer left complete goes in first
+    staging = out_dir / STAGING
+    shutil.rmtree(staging, ignore_errors=True)
+    (staging / "plots").mkdir(parents=True)
+    figures = _plots.write_plots(
+        staging / "plots", table=table, profiles=profiles, curves=curves, sweeps=sweeps
+    )
+    atomic_write_json(staging / "metrics.json", table)
     report = render_report(
         table,
         spans=spans,
@@ -160,4 +168,38 @@ def write_all(
         figures=[f"plots/{name}" for name in figures],
         level=level,
     )
-    atomic_write_text(out_dir / "report.md", report)
+    atomic_write_text(staging / "report.md", report)
+    atomic_write_text(staging / _COMPLETE, "the new metrics.json, report.md and plots/ are whole\n")
+    recover_report(out_dir)
+
+
+def recover_report(out_dir: str | os.PathLike[str]) -> None:
+    """Put a complete staged set in place, or drop an incomplete one.
+
+    :func:`write_all` writes the new ``metrics.json``, ``report.md`` and ``plots/`` into
+    :data:`STAGING` first and marks the set complete; only then do the three replace the
+    published ones, each by a rename. A writer killed before the mark leaves the published
+    set untouched (its staging is dropped here); one killed during the renames leaves a
+    complete staging that this call finishes putting in place. Either way a reader sees
+    the old set or the new one, never a mix, once this has run (every writer runs it
+    first).
+    """
+    out_dir = Path(out_dir)
+    staging = out_dir / STAGING
+    shutil.rmtree(out_dir / ".plots.old", ignore_errors=True)  # an earlier swap's leftover
+    if not staging.is_dir():
+        return
+    if not (staging / _COMPLETE).is_file():
+        shutil.rmtree(staging, ignore_errors=True)
+        return
+    if (staging / "plots").is_dir():
+        old = out_dir / ".plots.old"
+        shutil.rmtree(old, ignore_errors=True)
+        if (out_dir / "plots").exists():
+            os.replace(out_dir / "plots", old)
+        os.replace(staging / "plots", out_dir / "plots")
+        shutil.rmtree(old, ignore_errors=True)
+    for name in ("report.md", "metrics.json"):  # metrics last: what diffs and gates read
+        if (staging / name).is_file():
+            os.replace(staging / name, out_dir / name)
+    shutil.rmtree(staging, ignore_errors=True)

@@ -111,7 +111,7 @@ def _model_results(
 ) -> tuple[dict[str, Any], dict[str, Ragged], dict[str, Any]]:
     """One model on one source: (its table leaves, natural-order losses, curves) per order."""
     study, stats_config = config.study, config.stats
-    seeds = [int(s) for s in study.seeds]
+    seeds = study.seeds_of(model)
     unit_nll: dict[str, np.ndarray] = {}
     natural: dict[str, Ragged] = {}
     curves: dict[str, Any] = {}
@@ -151,7 +151,7 @@ def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
         data_hashes[source] = _data_hash(test)
         floors = np.load(folder / "floors.npy") if (folder / "floors.npy").is_file() else None
         table[source], profiles[source], curves[source] = {}, {}, {}
-        for model in study.models:
+        for model in study.models_on(source):
             leaves, natural, model_curves = _model_results(
                 wdir, source, model, config, test, floors
             )
@@ -163,7 +163,6 @@ def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
                 named = {k: (int(v[0]), int(v[1])) for k, v in info["spans"].items()}
                 spans.setdefault(source, {})[model] = stats.span_breakdown(natural, named)
     stats.adjust_holm(table, reference_order=reference)
-    warning = stats.seed_warning(len(study.seeds))
     return {
         "table": table,
         "profiles": profiles,
@@ -175,17 +174,35 @@ def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
             "test_units_sha256": data_hashes,
             "params": config.to_dict(),
         },
-        "warnings": [warning] if warning else [],
+        "warnings": _seed_warnings(study),
         "level": stats_config.level,
     }
+
+
+def _seed_warnings(study: StudyConfig) -> list[str]:
+    """The report's caution about too few seeds, naming the models when not all share it."""
+    few: dict[int, list[str]] = {}
+    for model in study.models:
+        n_seeds = len(study.seeds_of(model))
+        if stats.seed_warning(n_seeds):
+            few.setdefault(n_seeds, []).append(model)
+    warnings = []
+    for n_seeds, models in few.items():
+        text = str(stats.seed_warning(n_seeds))
+        if len(models) < len(study.models):
+            names = ", ".join(repr(m) for m in models)
+            text = f"model{'s' if len(models) > 1 else ''} {names}: {text}"
+        warnings.append(text)
+    return warnings
 
 
 def _sweeps(study: StudyConfig) -> dict[str, Any]:
     """One report sweep per (sweep, source): ``{source, parameter, models: {name: value}}``."""
     out = {}
     for name, sweep in study.sweeps.items():
-        for source in study.sources:
-            key = name if len(study.sources) == 1 else f"{name}-{source}"
+        sources = study.sources_of(sweep.model)
+        for source in sources:
+            key = name if len(sources) == 1 else f"{name}-{source}"
             out[key] = {
                 "source": source,
                 "parameter": sweep.parameter,
