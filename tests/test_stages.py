@@ -462,3 +462,30 @@ def test_table_reads_each_models_own_seeds_and_sources(tmp_path):
         "model 'one': with 1 seed the interval ignores training randomness (it resamples "
         "test units only); fit at least 3 seeds",
     ]
+
+
+def test_a_cells_fit_log_shows_progress_within_an_epoch():
+    import io
+
+    rng = np.random.default_rng(1)
+    rows = [rng.integers(0, 5, size=8) for _ in range(60)]
+    splits = {s: SequenceSet.from_list(rows, vocab_size=5) for s in ("train", "valid", "test")}
+    log = io.StringIO()
+    spec = ModelConfig(family="mlp", params={"window": 2, "hidden": 4, "epochs": 1})
+    fit_cell(spec, splits, seed=0, log=log)
+    lines = [line for line in log.getvalue().splitlines() if line.startswith("mlp fit (seed 0):")]
+    # The epoch's 540 events (60 units x (8 tokens + end marker)) come in one chunk here.
+    assert len(lines) == 1 and "100% (540/540 event)" in lines[0]
+
+
+def test_a_progress_bar_writes_one_log_line_per_tenth_it_crosses():
+    import io
+
+    from retrograde.families import progress_bar, progress_log
+
+    log = io.StringIO()
+    with progress_log(log), progress_bar(total=100, desc="x", unit="tok", enabled=False) as bar:
+        for step in (5, 5, 30, 1, 59):  # reaches 5, 10, 40, 41, 100
+            bar.update(step)
+    percents = [line.split(": ")[1].split("%")[0] for line in log.getvalue().splitlines()]
+    assert percents == ["10", "40", "100"]

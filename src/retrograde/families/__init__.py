@@ -21,6 +21,7 @@ from ..errors import DataError
 from ..registry import Registry
 from ._base import FAMILY_FORMAT, Family
 from ._probe import check_probe, probe_positions, probe_size
+from ._progress import progress_bar, progress_log
 from .command import CommandFamily
 from .mlp import MLP
 from .ngram import NGram
@@ -40,6 +41,8 @@ __all__ = [
     "make",
     "names",
     "probe_positions",
+    "progress_bar",
+    "progress_log",
     "probe_size",
     "registry",
 ]

@@ -16,12 +16,12 @@ from types import ModuleType
 from typing import Any
 
 import numpy as np
-from tqdm import tqdm
 
 from ..data import Ragged, SequenceSet
 from ..errors import DataError
 from ..validation import check_float, check_int, invalid
 from ._base import Family
+from ._progress import progress_bar
 from ._torch_common import (
     Stream,
     TrainingRun,
@@ -148,12 +148,11 @@ class TorchFamily(Family):
         )
         self.learning_curve_ = []
         started = time.perf_counter()
-        bar = tqdm(
+        bar = progress_bar(
             total=self.token_budget or max_epochs * stream.n_positions,
             unit="tok",
-            unit_scale=True,
             desc=f"{self.name} fit",
-            disable=None if self.progress else True,
+            enabled=bool(self.progress),
         )
         for epoch in range(1, max_epochs + 1):
             train_nats, train_positions = self._train_epoch(

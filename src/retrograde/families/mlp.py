@@ -22,13 +22,13 @@ from typing import TYPE_CHECKING, Any, ClassVar
 import numpy as np
 import scipy.sparse
 from threadpoolctl import threadpool_limits
-from tqdm.auto import tqdm
 
 from ..data import Ragged, SequenceSet, index_dtype
 from ..errors import DataError
 from ..validation import check_float, check_int, invalid
 from ._base import Family
 from ._events import unit_events
+from ._progress import progress_bar
 
 if TYPE_CHECKING:  # scikit-learn takes ~3 s to import: only fit() needs it
     from sklearn.neural_network import MLPClassifier
@@ -176,12 +176,11 @@ class MLP(Family):
         rng = np.random.default_rng(seed)
         best_bits, since_best = math.inf, 0
         self.learning_curve_ = []
-        bar = tqdm(
+        bar = progress_bar(
             total=self.epochs * len(outcomes),
             unit="event",
-            unit_scale=True,
             desc=f"mlp fit (seed {seed})",
-            disable=None if self.progress else True,
+            enabled=bool(self.progress),
         )
         with bar:
             for epoch in range(1, self.epochs + 1):

@@ -14,7 +14,6 @@ from collections.abc import Sequence
 from typing import Any, ClassVar
 
 import numpy as np
-from tqdm.auto import tqdm
 
 from ..data import Ragged, SequenceSet
 from ..errors import DataError
@@ -22,6 +21,7 @@ from ..validation import check_float, check_int
 from ._base import Family
 from ._events import unit_events
 from ._ngram_counts import KneserNeyTables, count_tables, interpolated_probs
+from ._progress import progress_bar
 
 __all__ = ["NGram"]
 
@@ -79,8 +79,8 @@ class NGram(Family):
         self.vocab_size_ = train.effective_vocab_size()
         train = _with_vocab(train, self.vocab_size_)
         symbol_at_lag, outcomes, _ = unit_events(train)
-        # One step per pass over the events; tqdm shows it only on a terminal.
-        with tqdm(total=self.order, desc="ngram fit", unit="pass", disable=None) as bar:
+        # One step per pass over the events (a bar on a terminal, lines in a fit.log).
+        with progress_bar(total=self.order, desc="ngram fit", unit="pass") as bar:
             self.tables_ = count_tables(
                 symbol_at_lag,
                 outcomes,

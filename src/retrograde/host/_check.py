@@ -23,7 +23,13 @@ from pathlib import Path
 from typing import Any
 
 from .. import orders
-from ..config import RetrogradeConfig, fit_stage_name, reorder_stage_name, units_stage_name
+from ..config import (
+    DVC_FILE,
+    RetrogradeConfig,
+    fit_stage_name,
+    reorder_stage_name,
+    units_stage_name,
+)
 from ..data import SPLITS
 from ._driver import compose_for, write_pipeline_files
 from ._lock import pipeline_lock
@@ -60,25 +66,42 @@ def round_trip_orders(root: Path, config: RetrogradeConfig) -> dict[str, dict[st
     return checked
 
 
-def cell_status(host: HostRepo, config: RetrogradeConfig) -> dict[str, list[str]]:
+def _changed(host: HostRepo, targets: list[str]) -> set[str]:
+    """The stages ``dvc status --with-deps`` reports as changed, as full DVC names."""
+    if not targets:
+        return set()
+    result = run_dvc(host.root, ["status", "--json", "--with-deps", *targets])
+    return set(json.loads(result.stdout or "{}"))
+
+
+def cell_status(host: HostRepo, config: RetrogradeConfig) -> dict[str, Any]:
     """Fit stage names split into ``to_run`` and ``up_to_date``, as DVC sees them.
 
-    Brings ``params.yaml`` and the stage file up to date first (as ``run`` does), holding
-    the pipeline folder's lock.
+    DVC answers for the composed config, the stage file and the host's own stages
+    upstream of each source (a changed preparation script reruns everything built on its
+    output), so ``params.yaml`` and the stage file are brought up to date first, as ``run``
+    does, holding the pipeline folder's lock. ``stale_inputs`` lists, per source, the
+    host's stages that must run before its files are current.
     """
     cells = config.cells()
-    targets = [host.target(fit_stage_name(*cell)) for cell in cells]
-    changed: set[str] = set()
+    ours = f"{DVC_FILE.as_posix()}:"
     with pipeline_lock(host.root, "retrograde check"):
         write_pipeline_files(host, config)
-        if targets:
-            result = run_dvc(host.root, ["status", "--json", "--with-deps", *targets])
-            changed = {name.rpartition(":")[2] for name in json.loads(result.stdout or "{}")}
-    report: dict[str, list[str]] = {"to_run": [], "up_to_date": []}
+        changed = _changed(host, [host.target(fit_stage_name(*cell)) for cell in cells])
+        stale_inputs: dict[str, list[str]] = {}
+        if any(not name.startswith(ours) for name in changed):
+            for source in config.study.sources:  # which sources the host stages feed
+                upstream = _changed(host, [host.target(units_stage_name(source))])
+                host_stages = sorted(n for n in upstream if not n.startswith(ours))
+                if host_stages:
+                    stale_inputs[source] = host_stages
+    changed = {name.rpartition(":")[2] for name in changed}
+    report: dict[str, Any] = {"to_run": [], "up_to_date": [], "stale_inputs": stale_inputs}
     for source, model, order, seed in cells:
         name = fit_stage_name(source, model, order, seed)
         upstream = {name, reorder_stage_name(source, order), units_stage_name(source)}
-        report["to_run" if upstream & changed else "up_to_date"].append(name)
+        stale = bool(upstream & changed) or source in stale_inputs
+        report["to_run" if stale else "up_to_date"].append(name)
     return report
 
 
@@ -132,6 +155,12 @@ def format_host_check(report: dict[str, Any]) -> str:
             f"{info['units']} units ({info['tokens']} tokens): ok"
         )
     cells = report["cells"]
+    for source, stages in cells.get("stale_inputs", {}).items():
+        lines.append(
+            f"note: source {source!r} reads files your stage(s) {', '.join(stages)} must "
+            "remake first (they changed); the round trip above used the files as they are "
+            "now; `retrograde run` (or `dvc repro`) remakes them"
+        )
     lines.append(f"cells: {len(cells['up_to_date'])} up to date, {len(cells['to_run'])} to run")
     lines += [f"  to run: {name}" for name in cells["to_run"]]
     return "\n".join(lines)

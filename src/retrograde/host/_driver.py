@@ -19,8 +19,10 @@ import sys
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path, PurePosixPath
+from typing import NamedTuple
 
 from ..config import (
+    DVC_FILE,
     PARAMS_DIGEST_ENV,
     RetrogradeConfig,
     compose,
@@ -35,12 +37,14 @@ from ..validation import check_int
 from ._lock import pipeline_lock
 from ._lockfile import normalize_lock_order
 from ._parallel import run_stages_in_parallel, stale_stages
+from ._progress import Progress
 from ._repo import HostRepo, dvc_argv, find_host, last_error_line, require_installed
 from ._scaffold import InstallResult, install, planned_files
 from ._stagefile import render_dvc_yaml
 
 __all__ = [
     "RunResult",
+    "StageLine",
     "compose_for",
     "initialize",
     "parse_repro_line",
@@ -49,7 +53,7 @@ __all__ = [
     "write_pipeline_files",
 ]
 
-_STAGE = r"'(?:[^']*dvc\.yaml:)?(?P<stage>[^']+)'"
+_STAGE = r"'(?P<name>[^']+)'"
 _EVENTS = (
     ("ran", re.compile(rf"^Running stage {_STAGE}")),
     ("unchanged", re.compile(rf"^Stage {_STAGE} didn't change")),
@@ -58,22 +62,36 @@ _EVENTS = (
 )
 
 
-def parse_repro_line(line: str) -> tuple[str, str] | None:
-    """``(event, stage)`` for a ``dvc repro`` output line about a stage, else ``None``.
+class StageLine(NamedTuple):
+    """A ``dvc repro`` line about a stage: what happened, the stage, and whose it is."""
+
+    event: str
+    stage: str
+    ours: bool
+
+
+def parse_repro_line(line: str) -> StageLine | None:
+    """The stage event a ``dvc repro`` output line reports, else ``None``.
+
+    ``stage`` is the name inside the pipeline's stage file for retrograde's own stages
+    (``ours``), and the name DVC printed for the host's.
 
     Examples
     --------
     >>> parse_repro_line("Running stage 'pipelines/retrograde/dvc.yaml:fit@a-m-reverse-0':")
-    ('ran', 'fit@a-m-reverse-0')
+    StageLine(event='ran', stage='fit@a-m-reverse-0', ours=True)
     >>> parse_repro_line("Stage 'prepare' didn't change, skipping")
-    ('unchanged', 'prepare')
+    StageLine(event='unchanged', stage='prepare', ours=False)
     >>> parse_repro_line("Updating lock file 'dvc.lock'") is None
     True
     """
     for event, pattern in _EVENTS:
         match = pattern.match(line.strip())
         if match:
-            return event, match["stage"]
+            name = match["name"]
+            prefix = f"{DVC_FILE.as_posix()}:"
+            ours = name.startswith(prefix)
+            return StageLine(event, name.removeprefix(prefix), ours)
     return None
 
 
@@ -139,17 +157,19 @@ def write_pipeline_files(host: HostRepo, config: RetrogradeConfig) -> list[Path]
     return written
 
 
-def _repro(host: HostRepo, target: str, *, pull: bool, total: int) -> dict[str, list[str]]:
-    """Run ``dvc repro target``; show ``[k/total]`` per stage started or restored.
+def _repro(host: HostRepo, target: str, *, pull: bool, progress: Progress) -> None:
+    """Run ``dvc repro target``, reporting each stage's start and end to ``progress``.
 
-    ``total`` counts retrograde's own stages (the host's upstream stages come on top).
-    On failure raise one line naming the stage (and, for a fit, the cell and its log).
+    DVC runs the stages of one ``repro`` one after another, so a stage has finished when
+    the next one is announced. On failure raise one line naming the stage (and, for a fit,
+    the cell and its log); DVC's whole output is in ``logs/run.log``.
     """
     argv = [*dvc_argv(), "repro", *(["--pull"] if pull else []), target]
     log_path = host.pipeline_dir / "logs" / "run.log"
     log_path.parent.mkdir(parents=True, exist_ok=True)
-    events: dict[str, list[str]] = {"ran": [], "unchanged": [], "restored": [], "failed": []}
+    failed: list[str] = []
     lines: list[str] = []
+    current: StageLine | None = None
     with subprocess.Popen(
         argv,
         cwd=host.root,
@@ -162,17 +182,31 @@ def _repro(host: HostRepo, target: str, *, pull: bool, total: int) -> dict[str, 
         for line in process.stdout:
             lines.append(line)
             parsed = parse_repro_line(line)
-            if parsed:
-                events[parsed[0]].append(parsed[1])
-                seen = sum(len(v) for k, v in events.items() if k != "failed")
-                if parsed[0] in ("ran", "restored"):
-                    shown = "running" if parsed[0] == "ran" else "restored"
-                    progress = f"[{seen:>{len(str(total))}}/{total}]"
-                    print(f"  {progress} {shown:<8} {parsed[1]}", file=sys.stderr, flush=True)
-    log_path.write_text("".join(lines), encoding="utf-8")
+            if parsed is None:
+                continue
+            if current is not None and parsed.event != "failed":
+                progress.finished(current.stage, "ran", host=not current.ours)
+                current = None
+            if parsed.event == "ran":
+                progress.started(parsed.stage, host=not parsed.ours)
+                current = parsed
+            else:
+                progress.finished(parsed.stage, parsed.event, host=not parsed.ours)
+                current = None
+                if parsed.event == "failed":
+                    failed.append(parsed.stage)
+    if current is not None:
+        event = "ran" if process.returncode == 0 else "failed"
+        progress.finished(current.stage, event, host=not current.ours)
+    _append_log(log_path, "".join(lines))
     if process.returncode != 0:
-        _raise_failure(host, "".join(lines), events["failed"], log_path)
-    return events
+        _raise_failure(host, "".join(lines), failed, log_path)
+
+
+def _append_log(path: Path, text: str) -> None:
+    """Add one ``dvc repro``'s output to the run's log (a run may start several)."""
+    with path.open("a", encoding="utf-8") as handle:
+        handle.write(text)
 
 
 def _raise_failure(host: HostRepo, output: str, failed: list[str], log_path: Path) -> None:
@@ -194,21 +228,20 @@ def _run_jobs(
     jobs: int,
     *,
     pull: bool,
-    total: int,
-) -> dict[str, list[str]]:
+    progress: Progress,
+) -> None:
     """``dvc repro`` the pipeline; with ``jobs > 1`` the stale fit stages run in parallel."""
     if jobs == 1:
-        return _repro(host, target, pull=pull, total=total)
+        _repro(host, target, pull=pull, progress=progress)
+        return
     # One `dvc status` (host stages upstream included) decides whether anything is stale:
     # a no-op run then costs seconds, not a DVC process per stage.
     if not pull and not stale_stages(host.root, None, with_deps=True):
-        return {"ran": [], "unchanged": [], "restored": [], "failed": []}
-    _repro(host, f"{target}:reorder", pull=pull, total=total)  # units, reorder, host upstream
+        return
+    _repro(host, f"{target}:reorder", pull=pull, progress=progress)  # units, reorder, host
     names = stale_stages(host.root, [fit_stage_name(*cell) for cell in cells])
-    run_stages_in_parallel(host.root, names, jobs, pull=pull)
-    events = _repro(host, target, pull=pull, total=total)
-    events["ran"] = names + events["ran"]  # the parallel fits (ran or restored)
-    return events
+    run_stages_in_parallel(host.root, names, jobs, pull=pull, progress=progress)
+    _repro(host, target, pull=pull, progress=progress)
 
 
 def initialize(
@@ -250,7 +283,10 @@ def run_pipeline(
         cells = config.cells()
         total = len(study.sources) * (1 + len(study.orders)) + len(cells) + 1
         target = host.dvc_file.relative_to(host.root).as_posix()
-        with stage_environment(host):
-            events = _run_jobs(host, target, cells, jobs, pull=pull, total=total)
+        # The log of this run's DVC output starts empty (each `dvc repro` appends).
+        (host.pipeline_dir / "logs").mkdir(parents=True, exist_ok=True)
+        (host.pipeline_dir / "logs" / "run.log").write_text("", encoding="utf-8")
+        with stage_environment(host), Progress(total) as progress:
+            _run_jobs(host, target, cells, jobs, pull=pull, progress=progress)
         normalize_lock_order(host.root)  # dvc.lock in stage-file order, whatever jobs was
-    return RunResult(host, config, events)
+    return RunResult(host, config, progress.counts())

@@ -26,12 +26,11 @@ from concurrent.futures import FIRST_COMPLETED, Future, ThreadPoolExecutor, wait
 from pathlib import Path
 from subprocess import CompletedProcess
 
-from tqdm import tqdm
-
 from ..config import DVC_FILE, LOG_DIR
 from ..errors import FitError
 from ..validation import check_int
 from ._lockfile import order_lock_entries
+from ._progress import Progress
 from ._repo import HostRepo, dvc_argv, last_error_line, run_dvc, run_tool
 
 __all__ = ["log_path_for", "repro_argv", "run_stages_in_parallel", "stale_stages"]
@@ -85,7 +84,12 @@ def stale_stages(
 
 
 def run_stages_in_parallel(
-    host: Path, stage_names: list[str], jobs: int, *, pull: bool = False
+    host: Path,
+    stage_names: list[str],
+    jobs: int,
+    *,
+    pull: bool = False,
+    progress: Progress | None = None,
 ) -> None:
     """Reproduce each stage with its own ``dvc repro -s`` process, at most ``jobs`` at once.
 
@@ -101,6 +105,8 @@ def run_stages_in_parallel(
         Most DVC processes running at the same time (>= 1).
     pull : bool
         Pass ``--pull`` so DVC fetches missing inputs and run-cache entries from the remote.
+    progress : Progress, optional
+        Told when each stage starts and ends (the run's counters and lines).
 
     Raises
     ------
@@ -118,10 +124,8 @@ def run_stages_in_parallel(
     if not names:
         return
     results: dict[str, CompletedProcess[str]] = {}
-    with (
-        ThreadPoolExecutor(max_workers=jobs) as pool,
-        tqdm(total=len(names), desc="fit stages", unit="stage", disable=None) as progress,
-    ):
+    progress = progress if progress is not None else Progress(len(names))
+    with ThreadPoolExecutor(max_workers=jobs) as pool:
         pending: dict[Future[CompletedProcess[str]], str] = {}
         queue = iter(names)
         failed = False
@@ -131,6 +135,7 @@ def run_stages_in_parallel(
                 name = next(queue, None)
                 if name is None:
                     break
+                progress.started(name)
                 pending[pool.submit(_repro_one, repo, name, pull)] = name
             if not pending:
                 break
@@ -139,7 +144,7 @@ def run_stages_in_parallel(
                 name = pending.pop(future)
                 results[name] = future.result()
                 failed = failed or results[name].returncode != 0
-                progress.update(1)
+                progress.finished(name, _event(results[name]))
     order_lock_entries(repo.dvc_file.with_name("dvc.lock"), [n for n in names if ":" not in n])
     failures = [name for name in names if name in results and results[name].returncode != 0]
     if failures:
@@ -152,6 +157,13 @@ def run_stages_in_parallel(
             f"({len(failures)} of {len(results)} finished stages failed, "
             f"{not_started} not started): {reason}; see {log_path_for(host, first)}"
         )
+
+
+def _event(result: CompletedProcess[str]) -> str:
+    """How one ``dvc repro -s`` ended: ``failed``, ``restored`` (from the run-cache), ``ran``."""
+    if result.returncode != 0:
+        return "failed"
+    return "restored" if " is cached" in (result.stdout or "") else "ran"
 
 
 def _failure_reason(output: str) -> str:

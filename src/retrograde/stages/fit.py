@@ -16,6 +16,7 @@ A crash becomes one line naming the cell and its ``fit.log`` (exit status 2).
 from __future__ import annotations
 
 import argparse
+import contextlib
 import io
 import traceback
 from collections.abc import Sequence
@@ -61,8 +62,12 @@ def fit_cell(
     note(
         f"train {len(train)} units / {len(train.tokens)} tokens; valid {len(valid)}; test {len(test)}"
     )
-    # One call, so a family whose training run scores the test units trains only once.
-    logprobs = model.fit_logprobs(train, valid if len(valid) else None, test, seed=seed)
+    # One call, so a family whose training run scores the test units trains only once;
+    # its progress goes to the log as plain lines (no terminal inside a DVC stage).
+    with contextlib.ExitStack() as stack:
+        if log is not None:
+            stack.enter_context(families.progress_log(log))
+        logprobs = model.fit_logprobs(train, valid if len(valid) else None, test, seed=seed)
     # Plain Python numbers only: curve.json must load anywhere (numpy ints are not JSON).
     curve = [
         {str(key): _plain(value) for key, value in epoch.items()}
