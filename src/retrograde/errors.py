@@ -14,6 +14,7 @@ __all__ = [
     "FitError",
     "HostRepoError",
     "MissingDependencyError",
+    "PluginError",
     "RetrogradeError",
 ]
 
@@ -50,3 +51,7 @@ class HostRepoError(RetrogradeError):
 
 class MissingDependencyError(RetrogradeError):
     """An optional dependency is not installed."""
+
+
+class PluginError(RetrogradeError):
+    """A plug-in (order, source, family, tokenizer) raised or broke its contract."""

@@ -25,6 +25,7 @@ from typing import Any
 from .. import orders
 from ..config import RetrogradeConfig, fit_stage_name, reorder_stage_name, units_stage_name
 from ..data import SPLITS
+from ..errors import PluginError
 from ._driver import compose_for, write_pipeline_files
 from ._repo import HostRepo, run_dvc
 
@@ -50,7 +51,10 @@ def round_trip_orders(root: Path, config: RetrogradeConfig) -> dict[str, dict[st
         splits = configured_units(source_name, spec, root).splits
         for order_name, order in built.items():
             for split in SPLITS:
-                orders.verify_bijection(order, splits[split], order_name=order_name)
+                try:
+                    orders.verify_bijection(order, splits[split], order_name=order_name)
+                except PluginError as exc:  # the order's code failed: name its config key
+                    raise PluginError(f"study.orders.{order_name}: {exc}") from exc
         checked[source_name] = {
             "units": int(sum(len(splits[s]) for s in SPLITS)),
             "tokens": int(sum(len(splits[s].tokens) for s in SPLITS)),

@@ -65,7 +65,7 @@ _BUILTIN: tuple[type[Source], ...] = (
     AutomatonSource,
 )
 
-registry: Registry[Source] = Registry("source", "retrograde.sources")
+registry: Registry[Source] = Registry("source", "retrograde.sources", Source)
 for _source in _BUILTIN:
     registry.register(_source.name)(_source)
 
