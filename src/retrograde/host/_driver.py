@@ -148,7 +148,7 @@ def _repro(host: HostRepo, target: str, *, pull: bool, total: int) -> dict[str, 
                     shown = "running" if parsed[0] == "ran" else "restored"
                     progress = f"[{seen:>{len(str(total))}}/{total}]"
                     print(f"  {progress} {shown:<8} {parsed[1]}", file=sys.stderr, flush=True)
-    log_path.write_text("".join(lines), encoding="utf-8")
+    atomic_write_text(log_path, "".join(lines))  # a symbolic link is replaced, not followed
     if process.returncode != 0:
         _raise_failure(host, "".join(lines), events["failed"], log_path)
     return events
