@@ -1,0 +1,92 @@
+"""Every user error is one stderr line, exit status 2, and leaves the host as it was.
+
+Each test breaks one thing in a real git + DVC host (after ``retrograde init``), calls the
+CLI and checks the status, that stderr is one line naming what, where and how to fix, and
+that nothing was written (a snapshot of the host before and after).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+
+from _host_fixtures import new_pipeline_host, snapshot
+from retrograde.cli import main
+
+pytestmark = pytest.mark.dvc
+
+STUDY = "conf/retrograde/study/default.yaml"
+
+
+@pytest.fixture
+def host(tmp_path) -> Path:
+    return new_pipeline_host(tmp_path / "host")
+
+
+def one_line_error(capsys, host: Path, *argv: str) -> str:
+    """Run ``retrograde ARGV --dir HOST``; assert status 2, one stderr line, nothing written."""
+    before = snapshot(host)
+    status = main([*argv[:1], "--dir", str(host), *argv[1:]])
+    out, err = capsys.readouterr()
+    assert status == 2, (out, err)
+    assert err.startswith("retrograde: error: ") and err.count("\n") == 1, err
+    assert snapshot(host) == before
+    return err
+
+
+def edit(host: Path, relative: str, old: bytes, new: bytes) -> None:
+    path = host / relative
+    data = path.read_bytes()
+    assert old in data
+    path.write_bytes(data.replace(old, new, 1))
+
+
+# ------------------------------------------------------------------------ config files
+@pytest.mark.parametrize("command", [["run", "--dry"], ["check"], ["run"]])
+@pytest.mark.parametrize(
+    ("old", "new", "expected"),
+    [
+        (b"seeds: [0, 1, 2]", b"seeds: [0, 1, 2", f"{STUDY}:"),  # unclosed flow list
+        (b"seeds: [0, 1, 2]", b"seeds: [0, 1, 2]\nseeds: [3]", f"{STUDY}:9:1: duplicate key 'seeds'"),
+        (b"The grid", b"The gr\xe9d", f"{STUDY}:2: not UTF-8 (byte 0xe9"),
+        (b"# @package study", b"# @package study..models", f"{STUDY}:1: bad header"),
+        (b"# @package study", b"# @package study extra", f"{STUDY}:1: bad header"),
+        (b"# @package study", b"# @pakage study", "unknown header '# @pakage study'"),
+        (b"# @package study\n", b"# a comment\n# @package study\n", "move it to the top"),
+        (
+            b"seeds: [0, 1, 2]",
+            b"seeds: !!python/tuple [0, 1, 2]",
+            "'!!python/tuple' is not allowed",
+        ),
+    ],
+    ids=[
+        "syntax",
+        "duplicate-key",
+        "not-utf8",
+        "header-path",
+        "header-words",
+        "header-key",
+        "header-late",
+        "python-tag",
+    ],
+)
+def test_a_broken_config_file_is_one_line_naming_file_and_line(
+    host, capsys, command, old, new, expected
+):
+    edit(host, STUDY, old, new)
+    assert expected in one_line_error(capsys, host, *command)
+
+
+def test_a_python_tag_is_refused_before_anything_is_constructed(host, capsys):
+    edit(
+        host, STUDY, b"sweeps: {}", b"sweeps: {}\nx: !!python/object/apply:os.system [touch PWNED]"
+    )
+    assert "is not allowed" in one_line_error(capsys, host, "run", "--dry")
+    assert not list(host.parent.rglob("PWNED"))
+
+
+def test_a_broken_file_the_composition_does_not_use_is_refused_too(host, capsys):
+    edit(host, "conf/retrograde/source/markov.yaml", b"name: markov", b"name: markov\nname: x")
+    err = one_line_error(capsys, host, "run", "--dry")
+    assert "conf/retrograde/source/markov.yaml:" in err and "duplicate key 'name'" in err
