@@ -48,7 +48,11 @@ def edit(host: Path, relative: str, old: bytes, new: bytes) -> None:
     ("old", "new", "expected"),
     [
         (b"seeds: [0, 1, 2]", b"seeds: [0, 1, 2", f"{STUDY}:"),  # unclosed flow list
-        (b"seeds: [0, 1, 2]", b"seeds: [0, 1, 2]\nseeds: [3]", f"{STUDY}:9:1: duplicate key 'seeds'"),
+        (
+            b"seeds: [0, 1, 2]",
+            b"seeds: [0, 1, 2]\nseeds: [3]",
+            f"{STUDY}:9:1: duplicate key 'seeds'",
+        ),
         (b"The grid", b"The gr\xe9d", f"{STUDY}:2: not UTF-8 (byte 0xe9"),
         (b"# @package study", b"# @package study..models", f"{STUDY}:1: bad header"),
         (b"# @package study", b"# @package study extra", f"{STUDY}:1: bad header"),
@@ -90,3 +94,19 @@ def test_a_broken_file_the_composition_does_not_use_is_refused_too(host, capsys)
     edit(host, "conf/retrograde/source/markov.yaml", b"name: markov", b"name: markov\nname: x")
     err = one_line_error(capsys, host, "run", "--dry")
     assert "conf/retrograde/source/markov.yaml:" in err and "duplicate key 'name'" in err
+
+
+# ------------------------------------------------------------------------------- models
+@pytest.mark.parametrize(
+    "override",
+    ["+study.models.mlp={params: {hidden: 8}}", "~study.models.ngram.family"],
+)
+def test_a_model_without_family_is_refused_instead_of_becoming_an_ngram(host, capsys, override):
+    err = one_line_error(capsys, host, "run", "--dry", override)
+    assert "has no family; add family: NAME (one of " in err and "ngram" in err
+    assert "_target_: package.Class" in err
+
+
+def test_a_model_without_family_in_a_config_file_is_refused(host, capsys):
+    edit(host, STUDY, b"ngram: {family: ngram, params: {order: 3}}", b"ngram: {params: {order: 3}}")
+    assert "study.models.ngram has no family" in one_line_error(capsys, host, "check")

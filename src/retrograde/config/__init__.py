@@ -60,6 +60,7 @@ from ._schema import (
     TokenizerConfig,
     UnitsConfig,
     check_keys,
+    check_required,
     from_dict,
     normalize,
     register_configs,
@@ -91,6 +92,7 @@ __all__ = [
     "UnitsConfig",
     "cell_dir",
     "check_keys",
+    "check_required",
     "check_source_values",
     "check_stats",
     "check_study",
@@ -127,6 +129,7 @@ def parse(raw: dict[str, Any]) -> RetrogradeConfig:
 
     raw = normalize(raw)
     check_keys(raw)
+    check_required(raw)
     try:
         merged = OmegaConf.merge(OmegaConf.structured(RetrogradeConfig), raw)
         container = OmegaConf.to_container(merged, resolve=True)
