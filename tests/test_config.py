@@ -254,6 +254,18 @@ def test_source_file_outside_the_host_repository_is_refused(host):
     assert "'../outside.txt' lies outside the host repository" in message
 
 
+@pytest.mark.parametrize(
+    ("deps", "expected"),
+    [
+        ("[data/*.txt]", "holds '*', a glob character"),
+        ("[.git/config]", "lies inside .git/"),
+        ("[data/../.dvc/config]", "lies inside .dvc/"),
+    ],
+)
+def test_declared_deps_follow_the_same_path_rules_as_found_files(host, deps, expected):
+    assert expected in _one_line_error(host, [f"study.sources.corpus.deps={deps}"])
+
+
 def test_missing_corpus_is_fine_when_deps_name_it_but_not_otherwise(host):
     # A host stage may write the corpus later: declared deps are enough to compose.
     (host / "data" / "corpus.txt").unlink()

@@ -14,6 +14,7 @@ __all__ = [
     "FitError",
     "HostRepoError",
     "MissingDependencyError",
+    "MissingFileError",
     "PluginError",
     "RetrogradeError",
 ]
@@ -35,6 +36,10 @@ class ConfigError(RetrogradeError):
 
 class DataError(RetrogradeError):
     """Input data is missing, empty, malformed or inconsistent."""
+
+
+class MissingFileError(DataError):
+    """A file (or glob) an input names does not exist, or not yet (a host stage may write it)."""
 
 
 class BijectionError(DataError):

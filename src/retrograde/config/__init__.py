@@ -44,7 +44,13 @@ from ._layout import (
     units_dir,
     units_stage_name,
 )
-from ._plugins import covered, resolve_plugins, resolved_params
+from ._plugins import (
+    check_file_types,
+    check_repo_path,
+    covered,
+    resolve_plugins,
+    resolved_params,
+)
 from ._schema import (
     NAME_PATTERN,
     CalibrationConfig,
@@ -91,7 +97,9 @@ __all__ = [
     "TokenizerConfig",
     "UnitsConfig",
     "cell_dir",
+    "check_file_types",
     "check_keys",
+    "check_repo_path",
     "check_required",
     "check_source_values",
     "check_stats",

@@ -24,6 +24,7 @@ from ..config import RetrogradeConfig, compose, fit_stage_name, params_text
 from ..data import atomic_write_text
 from ..errors import FitError, HostRepoError
 from ..validation import check_int
+from ._corpus_paths import check_source_files
 from ._lockfile import normalize_lock_order
 from ._parallel import run_stages_in_parallel, stale_stages
 from ._repo import HostRepo, dvc_argv, find_host, last_error_line, require_installed
@@ -82,6 +83,7 @@ def compose_for(
     host = find_host(host_dir)
     require_installed(host)
     config = compose(host.root, overrides)
+    check_source_files(host, config)  # missing files only if a host stage writes them
     render_dvc_yaml(host.dvc_file.read_text(encoding="utf-8"), config)  # markers present?
     return host, config
 

@@ -17,21 +17,31 @@ any work with ``source '<name>': parameter <key>=<value> is invalid; allowed: ..
 
 from __future__ import annotations
 
+import contextlib
 import glob
 import inspect
 import os
+import stat
 from abc import ABC, abstractmethod
 from collections.abc import Iterator, Mapping, Sequence
 from pathlib import Path
-from typing import Any, ClassVar
+from typing import Any, BinaryIO, ClassVar
 
 import numpy as np
 
 from ..data import Document, SequenceSet
-from ..errors import DataError
+from ..errors import DataError, MissingFileError
 from ..validation import check_choice, check_int, invalid
 
-__all__ = ["CalibrationSource", "FileSource", "Source", "expand_files", "iter_lines"]
+__all__ = [
+    "CalibrationSource",
+    "FileSource",
+    "Source",
+    "check_regular_file",
+    "expand_files",
+    "iter_lines",
+    "open_regular",
+]
 
 #: how undecodable bytes are handled: refuse (naming file and byte offset) or U+FFFD
 DECODE_ERRORS = ("strict", "replace")
@@ -187,15 +197,19 @@ def expand_files(owner: str, key: str, value: Any) -> list[Path]:
     """Expand paths and globs into existing files, in the given order, sorted within a glob.
 
     A glob matching nothing, a missing file and a folder are refused with a one-line
-    :class:`DataError`; a file named twice is read once.
+    :class:`DataError`, and so is anything that is not a regular file (a FIFO, socket or
+    device, named or matched: reading one could block forever); a file named twice is read
+    once.
     """
     found: list[Path] = []
     for pattern in _as_path_list(owner, key, value):
         if _GLOB_CHARS & set(pattern):
             matches = sorted(Path(m) for m in glob.glob(pattern, recursive=True))
-            matches = [m for m in matches if m.is_file()]
+            matches = [m for m in matches if not m.is_dir()]
+            for match in matches:
+                check_regular_file(owner, match)
             if not matches:
-                raise DataError(
+                raise MissingFileError(
                     f"{owner}: {key} pattern {pattern!r} matches no file "
                     f"(relative to {Path.cwd()}); check the pattern"
                 )
@@ -205,13 +219,64 @@ def expand_files(owner: str, key: str, value: Any) -> list[Path]:
                 raise DataError(
                     f"{owner}: {key} {pattern!r} is a folder; name its files, e.g. '{pattern}/*.txt'"
                 )
-            if not path.is_file():
-                raise DataError(
+            if not path.exists():
+                raise MissingFileError(
                     f"{owner}: {key} file {pattern!r} not found (relative to {Path.cwd()})"
                 )
+            check_regular_file(owner, path)
             matches = [path]
         found.extend(m for m in matches if m not in found)
     return found
+
+
+def check_regular_file(owner: str, path: Path) -> None:
+    """Refuse ``path`` unless it is a regular file (or a link to one)."""
+    try:
+        mode = path.stat().st_mode
+    except OSError as exc:
+        raise DataError(f"{owner}: cannot read {str(path)!r} ({exc.strerror})") from None
+    if not stat.S_ISREG(mode):
+        raise DataError(
+            f"{owner}: {str(path)!r} is a {_file_kind(mode)}, not a regular file; reading it "
+            "could block or never end; point the source at regular files"
+        )
+
+
+def _file_kind(mode: int) -> str:
+    for test, kind in (
+        (stat.S_ISFIFO, "FIFO (named pipe)"),
+        (stat.S_ISCHR, "character device"),
+        (stat.S_ISBLK, "block device"),
+        (stat.S_ISSOCK, "socket"),
+        (stat.S_ISDIR, "folder"),
+    ):
+        if test(mode):
+            return kind
+    return "special file"
+
+
+@contextlib.contextmanager
+def open_regular(path: Path) -> Iterator[BinaryIO]:
+    """``path`` opened for reading bytes, refused unless it is a regular file.
+
+    Opened without blocking and checked on the open file itself, so a FIFO put in the
+    file's place after the sources were checked cannot hang a stage.
+    """
+    fd = os.open(path, os.O_RDONLY | os.O_NONBLOCK | os.O_CLOEXEC)
+    try:
+        mode = os.fstat(fd).st_mode
+        if not stat.S_ISREG(mode):
+            raise DataError(
+                f"{path}: is a {_file_kind(mode)}, not a regular file; point the source at "
+                "regular files"
+            )
+        os.set_blocking(fd, True)
+        handle = os.fdopen(fd, "rb")
+    except BaseException:
+        os.close(fd)
+        raise
+    with handle:
+        yield handle
 
 
 def check_decode_errors(owner: str, value: Any) -> str:
@@ -227,7 +292,7 @@ def iter_lines(path: Path, errors: str) -> Iterator[tuple[int, str, int]]:
     raises a :class:`DataError` naming the file, line and byte offset.
     """
     line_start = 0  # byte offset of the current line in the file
-    with open(path, "rb") as handle:
+    with open_regular(path) as handle:
         for line_number, raw in enumerate(handle, start=1):
             body = raw[:-1] if raw.endswith(b"\n") else raw
             if body.endswith(b"\r"):

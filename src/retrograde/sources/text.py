@@ -20,7 +20,7 @@ from typing import Any
 from ..data import Document
 from ..errors import DataError
 from ..validation import check_choice
-from ._base import EncodedFileSource, iter_lines
+from ._base import EncodedFileSource, iter_lines, open_regular
 
 __all__ = ["TextSource"]
 
@@ -102,7 +102,8 @@ def _paragraphs(path: Path, errors: str) -> Iterator[tuple[int, str, int]]:
 
 def _read_whole(path: Path, errors: str) -> tuple[int, str, int]:
     """The whole file as one text, CRLF normalized to LF (memory ~ file size)."""
-    data = path.read_bytes()
+    with open_regular(path) as handle:
+        data = handle.read()
     start = 3 if data.startswith(b"\xef\xbb\xbf") else 0
     try:
         text = data[start:].decode("utf-8", errors=errors)

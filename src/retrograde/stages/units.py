@@ -16,7 +16,14 @@ from typing import Any
 
 import numpy as np
 
-from ..config import SourceConfig, covered, load_params, units_dir
+from ..config import (
+    SourceConfig,
+    check_file_types,
+    check_repo_path,
+    covered,
+    load_params,
+    units_dir,
+)
 from ..data import atomic_dir, atomic_write_json, tokenizers, working_directory
 from ..errors import DataError
 from . import run_stage
@@ -57,7 +64,13 @@ def configured_units(name: str, spec: SourceConfig, root: Path) -> Any:
 
 
 def _check_deps(name: str, source: Any, deps: list[str], root: Path) -> None:
-    """A file DVC does not track would not trigger a rerun when it changes: refuse it."""
+    """A file DVC does not track would not trigger a rerun when it changes: refuse it.
+
+    The rules composition applies to the files a source reads apply again here, on the
+    files as they are now: a name DVC or YAML would misread, a file of ``.git/`` or
+    ``.dvc/``, anything but a regular file (a FIFO would block the stage).
+    """
+    where = f"study.sources.{name}"
     for path in source.paths():
         resolved = Path(path).resolve()
         inside = resolved.is_relative_to(root)
@@ -66,6 +79,9 @@ def _check_deps(name: str, source: Any, deps: list[str], root: Path) -> None:
                 f"source {name!r} reads {path} but study.sources.{name}.deps does not list "
                 "it; add it and run `retrograde run` again"
             )
+        relative = resolved.relative_to(root).as_posix()
+        check_repo_path(where, relative)
+        check_file_types(where, resolved, relative)
 
 
 def _body(args: argparse.Namespace) -> None:
