@@ -193,3 +193,18 @@ def test_a_missing_source_file_that_a_host_stage_writes_is_fine(host, capsys):
     overrides = use_files("data/prepared/corpus.txt", deps=["data/prepared/corpus.txt"])
     assert main(["run", "--dry", "--dir", str(host), *overrides]) == 0
     assert "fit@corpus-ngram-reverse-0" in capsys.readouterr().out
+
+
+# ------------------------------------------------------------------------- line ends
+def test_lone_carriage_returns_in_a_source_stop_check_naming_file_and_line(host, capsys):
+    (host / "data" / "corpus.txt").write_bytes(b"one line\r\nanother\rand a third\r\n" * 20)
+    err = one_line_error(capsys, host, "check")
+    assert "data/corpus.txt:2: carriage return without a line feed" in err
+
+
+def test_lone_carriage_returns_stop_check_file(tmp_path, capsys):
+    path = tmp_path / "old-mac.txt"
+    path.write_bytes(b"one\rtwo\rthree\r" * 10)
+    assert main(["check", str(path)]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and f"{path}:1: carriage return without a line feed" in err

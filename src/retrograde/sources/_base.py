@@ -21,6 +21,7 @@ import contextlib
 import glob
 import inspect
 import os
+import re
 import stat
 from abc import ABC, abstractmethod
 from collections.abc import Iterator, Mapping, Sequence
@@ -39,6 +40,7 @@ __all__ = [
     "Source",
     "check_regular_file",
     "expand_files",
+    "find_lone_carriage_return",
     "iter_lines",
     "open_regular",
 ]
@@ -283,13 +285,38 @@ def check_decode_errors(owner: str, value: Any) -> str:
     return check_choice(owner, "errors", value, DECODE_ERRORS)
 
 
+def lone_carriage_return(path: Path | str, line_number: int, offset: int) -> DataError:
+    """The error for a CR not followed by LF at byte ``offset`` (on line ``line_number``)."""
+    return DataError(
+        f"{path}:{line_number}: carriage return without a line feed at byte offset {offset} "
+        "of the file (old Mac line ends, or a stray CR); lines would silently merge; convert "
+        "the line ends to LF (e.g. tr '\\r' '\\n') or remove the stray CR"
+    )
+
+
+def find_lone_carriage_return(path: Path | str, data: bytes) -> None:
+    """Raise :func:`lone_carriage_return` for the first CR in ``data`` not followed by LF.
+
+    A CR as the very last byte counts as a line end (as :func:`iter_lines` reads it).
+    """
+    match = _LONE_CR.search(data)
+    if match is not None and match.start() != len(data) - 1:
+        offset = match.start()
+        raise lone_carriage_return(path, data.count(b"\n", 0, offset) + 1, offset)
+
+
+_LONE_CR = re.compile(rb"\r(?!\n)")
+
+
 def iter_lines(path: Path, errors: str) -> Iterator[tuple[int, str, int]]:
     """Stream ``(line_number, text, n_bytes)`` for each line of a UTF-8 file.
 
     The line ending (LF or CRLF) is removed, so CRLF files read exactly like LF files; a
     UTF-8 byte-order mark at the start is dropped. ``n_bytes`` counts the UTF-8 bytes of
     ``text``. Memory is bounded by the longest line. With ``errors="strict"`` invalid UTF-8
-    raises a :class:`DataError` naming the file, line and byte offset.
+    raises a :class:`DataError` naming the file, line and byte offset. A carriage return
+    not followed by a line feed (old Mac line ends) raises one too, whatever ``errors``
+    says: read as LF files, such lines would silently merge into one.
     """
     line_start = 0  # byte offset of the current line in the file
     with open_regular(path) as handle:
@@ -300,6 +327,8 @@ def iter_lines(path: Path, errors: str) -> Iterator[tuple[int, str, int]]:
             body_start = line_start
             if line_number == 1 and body.startswith(b"\xef\xbb\xbf"):
                 body, body_start = body[3:], 3
+            if b"\r" in body:
+                raise lone_carriage_return(path, line_number, body_start + body.index(b"\r"))
             try:
                 text = body.decode("utf-8", errors=errors)
             except UnicodeDecodeError as exc:
