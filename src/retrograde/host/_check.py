@@ -8,7 +8,8 @@ Three checks, in the order a user needs them:
    the ``units`` stage cuts it (a failure names the order and the unit, exit status 1);
 3. which fit cells DVC would run and which are already up to date. DVC can only answer
    for the composed config, so ``params.yaml`` and the stage file are first brought up to
-   date exactly as ``run`` does (written only when their content changes); then
+   date exactly as ``run`` does (written only when their content changes, and the report
+   names every file written); then
    ``dvc status --with-deps`` on the fit stages says which cells, or the ``units`` and
    ``reorder`` stages they hang from, changed.
 
@@ -64,18 +65,20 @@ def round_trip_orders(root: Path, config: RetrogradeConfig) -> dict[str, dict[st
 
 
 def cell_status(host: HostRepo, config: RetrogradeConfig) -> dict[str, list[str]]:
-    """Fit stage names split into ``to_run`` and ``up_to_date``, as DVC sees them.
-
-    Brings ``params.yaml`` and the stage file up to date first (as ``run`` does).
+    """Fit stage names split into ``to_run`` and ``up_to_date``, as DVC sees them, and the
+    files it ``written`` (host-relative) to bring ``params.yaml`` and the stage file up to
+    date first, as ``run`` does (DVC can only answer for the files on disk).
     """
-    write_pipeline_files(host, config)
+    written = [
+        path.relative_to(host.root).as_posix() for path in write_pipeline_files(host, config)
+    ]
     cells = config.cells()
     targets = [host.target(fit_stage_name(*cell)) for cell in cells]
     changed: set[str] = set()
     if targets:
         result = run_dvc(host.root, ["status", "--json", "--with-deps", *targets])
         changed = {name.rpartition(":")[2] for name in json.loads(result.stdout or "{}")}
-    report: dict[str, list[str]] = {"to_run": [], "up_to_date": []}
+    report: dict[str, list[str]] = {"to_run": [], "up_to_date": [], "written": written}
     for source, model, order, seed in cells:
         name = fit_stage_name(source, model, order, seed)
         upstream = {name, reorder_stage_name(source, order), units_stage_name(source)}
@@ -94,7 +97,9 @@ def check_host(host_dir: str, overrides: Sequence[str] = ()) -> dict[str, Any]:
     study = config.study
     sources = round_trip_orders(host.root, config)
     cells = cell_status(host, config)
+    written = cells.pop("written")
     return {
+        "written": written,
         "grid": {
             "sources": list(study.sources),
             "models": list(study.models),
@@ -135,4 +140,9 @@ def format_host_check(report: dict[str, Any]) -> str:
     cells = report["cells"]
     lines.append(f"cells: {len(cells['up_to_date'])} up to date, {len(cells['to_run'])} to run")
     lines += [f"  to run: {name}" for name in cells["to_run"]]
+    if report.get("written"):
+        lines.append(
+            f"wrote {', '.join(report['written'])}: brought up to date from the config as "
+            "`retrograde run` would, so DVC could answer (commit them with your config)"
+        )
     return "\n".join(lines)
