@@ -242,6 +242,21 @@ def test_bad_values_fail_before_any_work_naming_key_value_and_what_is_allowed(
     assert expected in _one_line_error(host, [override])
 
 
+@pytest.mark.parametrize(
+    ("override", "where"),
+    [
+        ("+study.models.ngram.params.ordr=2", "study.models.ngram"),
+        ("+study.orders.reverse.params.size=2", "study.orders.reverse"),
+        ("+study.sources.corpus.params.foo=1", "study.sources.corpus"),
+        ("+study.sources.corpus.tokenizer.params.foo=1", "study.sources.corpus.tokenizer"),
+        ("study.models.ngram.params.order=0", "study.models.ngram"),
+    ],
+)
+def test_an_error_names_its_config_key_once(host, override, where):
+    message = _one_line_error(host, [override])
+    assert message.startswith(f"{where}: ") and message.count(f"{where}:") == 1
+
+
 def test_source_file_outside_the_host_repository_is_refused(host):
     (host.parent / "outside.txt").write_text(CORPUS)
     message = _one_line_error(

@@ -29,6 +29,18 @@ class RetrogradeError(Exception):
         # Collapse accidental newlines so the message stays on one line.
         return " ".join(super().__str__().split())
 
+    def prefixed(self, where: str) -> RetrogradeError:
+        """A new error of the same kind with ``where: `` in front, unless it already
+        starts so (raise it ``from`` this one).
+
+        >>> str(ConfigError("study.models.m: bad").prefixed("study.models.m"))
+        'study.models.m: bad'
+        >>> str(ConfigError("bad").prefixed("study.models.m"))
+        'study.models.m: bad'
+        """
+        text = str(self)
+        return type(self)(text if text.startswith(f"{where}:") else f"{where}: {text}")
+
 
 class ConfigError(RetrogradeError):
     """A config key, value or command-line option is invalid."""

@@ -53,8 +53,8 @@ _OWN_FOLDERS = (CONF_DIR.as_posix(), PIPELINE_DIR.as_posix())
 
 
 def _prefixed(where: str, exc: RetrogradeError) -> RetrogradeError:
-    """The same error class with the config key path in front of its message."""
-    return type(exc)(f"{where}: {exc}")
+    """The same error class with the config key path in front of its message (once)."""
+    return exc.prefixed(where)
 
 
 def check_param_names(where: str, kind: str, factory: Any, params: dict[str, Any]) -> None:

@@ -55,7 +55,7 @@ def round_trip_orders(root: Path, config: RetrogradeConfig) -> dict[str, dict[st
                 try:
                     orders.verify_bijection(order, splits[split], order_name=order_name)
                 except PluginError as exc:  # the order's code failed: name its config key
-                    raise PluginError(f"study.orders.{order_name}: {exc}") from exc
+                    raise exc.prefixed(f"study.orders.{order_name}") from exc
         checked[source_name] = {
             "units": int(sum(len(splits[s]) for s in SPLITS)),
             "tokens": int(sum(len(splits[s].tokens) for s in SPLITS)),
