@@ -3,7 +3,9 @@
 from __future__ import annotations
 
 import itertools
+import os
 import shutil
+import stat
 from importlib import resources
 from pathlib import Path
 
@@ -279,6 +281,20 @@ def test_source_file_outside_the_host_repository_is_refused(host):
 )
 def test_declared_deps_follow_the_same_path_rules_as_found_files(host, deps, expected):
     assert expected in _one_line_error(host, [f"study.sources.corpus.deps={deps}"])
+
+
+def test_a_device_as_a_source_is_refused(host):
+    device = host / "data" / "zero.txt"
+    try:  # the device /dev/zero is (1, 5) on Linux; making one needs CAP_MKNOD
+        os.mknod(device, 0o600 | stat.S_IFCHR, os.makedev(1, 5))
+    except PermissionError:
+        pytest.skip("making a device node needs CAP_MKNOD")
+    message = _one_line_error(
+        host,
+        ["study.sources.corpus.params.files=[data/zero.txt]", "~study.sources.corpus.deps"],
+        DataError,
+    )
+    assert "'data/zero.txt' is a character device, not a regular file" in message
 
 
 def test_missing_corpus_is_fine_when_deps_name_it_but_not_otherwise(host):

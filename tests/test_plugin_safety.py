@@ -3,6 +3,8 @@ checked before anything is called; a broken third-party plug-in fails only when 
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import numpy as np
 import pytest
 
@@ -176,3 +178,42 @@ def test_a_broken_plugin_order_in_the_library_is_a_plugin_error():
         with pytest.raises(PluginError) as info:
             orders.verify_bijection(order, data, order_name="mine")
         assert "order 'mine'" in str(info.value)
+
+
+class RaisingSource(sources.FileSource):
+    """A plug-in source whose reading code has a bug."""
+
+    def __init__(self, *, files="data/corpus.txt", split="paragraph"):
+        self.files, self.split = files, split
+
+    def paths(self):
+        return [Path(name) for name in self.files]
+
+    def documents(self):
+        raise KeyError("row 7")
+
+
+class ListingFailsSource(RaisingSource):
+    def paths(self):
+        raise OSError("share not mounted")
+
+
+def test_a_plugin_source_that_raises_listing_its_files_is_one_line(tmp_path, capsys):
+    host = new_pipeline_host(tmp_path / "host")
+    name = f"{__name__}.ListingFailsSource"
+    status = main(["run", "--dry", "--dir", str(host), f"study.sources.corpus.name={name}"])
+    err = capsys.readouterr().err
+    assert status == 2 and err.count("\n") == 1
+    assert "raised OSError listing its files: share not mounted" in err
+
+
+def test_check_with_a_plugin_source_that_raises_is_one_line_exit_two(tmp_path, capsys):
+    host = new_pipeline_host(tmp_path / "host")
+    before = snapshot(host)
+    status = main(
+        ["check", "--dir", str(host), f"study.sources.corpus.name={__name__}.RaisingSource"]
+    )
+    out, err = capsys.readouterr()
+    assert status == 2 and out == "" and err.count("\n") == 1
+    assert "study.sources.corpus: source" in err and "raised KeyError while reading" in err
+    assert snapshot(host) == before

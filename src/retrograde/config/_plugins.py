@@ -26,7 +26,7 @@ from typing import Any
 
 from .. import __version__
 from ..data import tokenizers, working_directory
-from ..errors import ConfigError, DataError, MissingFileError, RetrogradeError
+from ..errors import ConfigError, DataError, MissingFileError, PluginError, RetrogradeError
 from ..validation import did_you_mean
 from ._checks import check_source_values
 from ._layout import CONF_DIR, PIPELINE_DIR
@@ -251,6 +251,15 @@ def _source_deps(where: str, entry: SourceConfig, root: Path) -> list[str]:
             found = []
         except RetrogradeError as exc:
             raise _prefixed(where, exc) from exc
+        except Exception as exc:
+            if str(getattr(sources.registry.get(entry.name), "__module__", "")).startswith(
+                "retrograde."
+            ):
+                raise  # a bug of ours: keep the traceback
+            raise PluginError(
+                f"{where}: source {entry.name!r} raised {type(exc).__name__} listing its "
+                f"files: {exc}; fix the source's code (--debug shows the traceback)"
+            ) from exc
     paths = [Path(p) for p in entry.deps] if entry.deps is not None else found
     deps = [_inside_root(where, p, root) for p in paths]
     for path in found:

@@ -25,7 +25,7 @@ from ..config import (
     units_dir,
 )
 from ..data import atomic_dir, atomic_write_json, tokenizers, working_directory
-from ..errors import DataError
+from ..errors import DataError, PluginError, RetrogradeError
 from . import run_stage
 
 __all__ = ["configured_units", "main"]
@@ -43,17 +43,27 @@ def configured_units(name: str, spec: SourceConfig, root: Path) -> Any:
         if spec.tokenizer is not None:
             tokenizer = tokenizers.make(spec.tokenizer.name, **spec.tokenizer.params)
         units, calibration = spec.units, spec.calibration
-        made = sources.source_units(
-            source,
-            fractions=spec.split.fractions,
-            salt=spec.split.salt,
-            tokenizer=tokenizer,
-            mode=None if units is None else units.mode,
-            window=None if units is None else units.window,
-            remainder="drop" if units is None else units.remainder,
-            n_units=1000 if calibration is None else calibration.n_units,
-            seed=0 if calibration is None else calibration.seed,
-        )
+        try:
+            made = sources.source_units(
+                source,
+                fractions=spec.split.fractions,
+                salt=spec.split.salt,
+                tokenizer=tokenizer,
+                mode=None if units is None else units.mode,
+                window=None if units is None else units.window,
+                remainder="drop" if units is None else units.remainder,
+                n_units=1000 if calibration is None else calibration.n_units,
+                seed=0 if calibration is None else calibration.seed,
+            )
+        except RetrogradeError:
+            raise
+        except Exception as exc:
+            if type(source).__module__.split(".")[0] == "retrograde":
+                raise  # a bug of ours: keep the traceback
+            raise PluginError(
+                f"study.sources.{name}: source {spec.name!r} raised {type(exc).__name__} "
+                f"while reading: {exc}; fix the source's code (--debug shows the traceback)"
+            ) from exc
     for split in ("train", "test"):
         if len(made.splits[split]) == 0:
             raise DataError(
