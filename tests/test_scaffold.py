@@ -182,15 +182,17 @@ def test_the_missing_markers_advice_repairs_the_stage_file_and_keeps_the_config(
     assert "fit@corpus-ngram-reverse-5" in capsys.readouterr().out
 
 
-def test_source_with_a_changed_corpus_config_is_refused_even_with_force(host, capsys):
+@pytest.mark.parametrize("force", [[], ["--force"]])
+def test_source_with_a_changed_corpus_config_is_refused_even_with_force(host, capsys, force):
     _init(capsys)
     corpus = host / "conf/retrograde/source/corpus.yaml"
     corpus.write_text(corpus.read_text() + "# mine\n")
     before = snapshot(host)
-    status, _, err = _init(capsys, "--force", "--source", "data/corpus.txt")
+    status, _, err = _init(capsys, *force, "--source", "data/corpus.txt")
     assert status == 2 and err.count("\n") == 1
     assert "conf/retrograde/source/corpus.yaml already exists" in err
-    assert "init never overwrites your config" in err and snapshot(host) == before
+    assert "init never overwrites your config (not even with --force)" in err
+    assert snapshot(host) == before
 
 
 def test_the_units_block_written_by_run_does_not_count_as_a_change(host, capsys):

@@ -207,6 +207,13 @@ def install(
             result.unchanged.append(relative)
         else:
             changed.append(relative)
+    asked = [path for path in changed if path in must_write and path.is_relative_to(CONF_DIR)]
+    if asked:
+        raise HostRepoError(
+            f"{asked[0]} already exists in {root} with other content; init never overwrites "
+            "your config (not even with --force), so nothing was written; set its files and "
+            "deps there, or delete it and rerun init --source"
+        )
     if changed and not force:
         others = f" (and {len(changed) - 1} other file(s))" if len(changed) > 1 else ""
         raise HostRepoError(
@@ -216,12 +223,6 @@ def install(
         )
     for relative in changed:
         if relative.is_relative_to(CONF_DIR):
-            if relative in must_write:
-                raise HostRepoError(
-                    f"{relative} already exists in {root} with other content; init never "
-                    "overwrites your config, so nothing was written; set its files and deps "
-                    "there, or delete it and rerun init --source"
-                )
             result.kept.append(relative)
         elif _committed(host, relative):
             to_write[relative] = files[relative]
