@@ -94,6 +94,12 @@ def test_a_python_tag_is_refused_before_anything_is_constructed(host, capsys):
     assert not list(host.parent.rglob("PWNED"))
 
 
+def test_a_fifo_among_the_config_files_is_refused_instead_of_blocking(host, capsys):
+    os.mkfifo(host / "conf/retrograde/study/mine.yaml")
+    err = one_line_error(capsys, host, "run", "--dry")
+    assert "conf/retrograde/study/mine.yaml is not a regular file" in err
+
+
 def test_a_broken_file_the_composition_does_not_use_is_refused_too(host, capsys):
     edit(host, "conf/retrograde/source/markov.yaml", b"name: markov", b"name: markov\nname: x")
     err = one_line_error(capsys, host, "run", "--dry")

@@ -77,6 +77,8 @@ def check_conf_files(conf_dir: Path) -> None:
         if any(part.startswith(".") for part in path.relative_to(conf_dir).parts):
             continue  # editor and tool files, as Hydra lists only what it is asked for
         shown = _shown(conf_dir, path)
+        if not path.is_file():  # a FIFO would block the read (and Hydra's)
+            raise ConfigError(f"{shown} is not a regular file; replace it with a YAML file")
         data = path.read_bytes()
         try:
             text = data.decode("utf-8")
