@@ -64,6 +64,7 @@ def _max_overlap(trace: Path) -> int:
     return peak
 
 
+@pytest.mark.slow
 def test_run_replaces_symlinked_logs_instead_of_writing_through_them(tmp_path):
     host = new_pipeline_host(tmp_path / "host")
     outside = tmp_path / "outside.txt"
