@@ -176,3 +176,56 @@ def test_table_prints_cautions_to_stderr_and_keeps_stdout_machine_readable(tmp_p
     captured = capsys.readouterr()
     assert json.loads(captured.out)["demo"]["mlp"]["reverse"]["documents"] == 2
     assert "retrograde: warning: source 'demo' has only 2 test documents" in captured.err
+
+
+@pytest.mark.parametrize(
+    ("text", "expected"),
+    [
+        ('{"demo": {"mlp": {"reverse": {"gap_pct": 1.0}}}}', "has no numeric bits_per_token"),
+        (
+            '{"demo": {"mlp": {"reverse": {"bits_per_token": 2.0, "gap_pct": 1.0, '
+            '"gap_pct_low": 0.5}}}}',
+            "cell demo.mlp.reverse has no numeric gap_pct_high (found None)",
+        ),
+        (json.dumps({"demo": {"mlp": {"reverse": leaf(float("nan"), 1.0, 3.0)}}}), "gap_pct=nan"),
+        (
+            json.dumps(
+                {"demo": {"mlp": {"reverse": leaf(1.0, 0.0, 2.0) | {"p_value": float("inf")}}}}
+            ),
+            "p_value=inf",
+        ),
+        (json.dumps({"demo": {"mlp": {"reverse": leaf("big", 1.0, 3.0)}}}), "numeric gap_pct"),
+        ('{"demo": {"mlp": [1, 2]}}', "demo.mlp holds list"),
+        ("[1, 2]", "expected {source: {model: {order: {field: number}}}}, got list"),
+    ],
+)
+@pytest.mark.parametrize("fmt", ["markdown", "json", "csv"])
+def test_table_on_a_metrics_file_with_missing_keys_or_nan_is_one_line(
+    tmp_path, capsys, text, expected, fmt
+):
+    metrics = tmp_path / METRICS
+    metrics.parent.mkdir(parents=True)
+    metrics.write_text(text)
+    assert main(["table", "--dir", str(tmp_path), "--format", fmt]) == 2
+    out, err = capsys.readouterr()
+    assert out == "" and err.count("\n") == 1
+    assert err.startswith(f"retrograde: error: {metrics}: ") and expected in err
+    assert "regenerate it with `retrograde run`" in err
+
+
+def test_table_on_a_metrics_file_that_is_not_utf8_is_one_line(tmp_path, capsys):
+    metrics = tmp_path / METRICS
+    metrics.parent.mkdir(parents=True)
+    metrics.write_bytes(b'{"d\xe9mo": {}}')
+    assert main(["table", "--dir", str(tmp_path)]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "not UTF-8 (byte offset 3)" in err
+
+
+def test_compare_against_a_revision_whose_table_holds_nan_is_one_line(repo, capsys):
+    commit_table(repo, {"demo": {"mlp": {"reverse": leaf(float("nan"), 1.0, 3.0)}}}, "broken")
+    assert main(["compare", "first", "HEAD", "--dir", str(repo)]) == 2
+    err = capsys.readouterr().err
+    assert (
+        err.count("\n") == 1 and f"{METRICS} at HEAD: cell demo.mlp.reverse has gap_pct=nan" in err
+    )

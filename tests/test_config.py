@@ -3,7 +3,9 @@
 from __future__ import annotations
 
 import itertools
+import os
 import shutil
+import stat
 from importlib import resources
 from pathlib import Path
 
@@ -244,6 +246,21 @@ def test_bad_values_fail_before_any_work_naming_key_value_and_what_is_allowed(
     assert expected in _one_line_error(host, [override])
 
 
+@pytest.mark.parametrize(
+    ("override", "where"),
+    [
+        ("+study.models.ngram.params.ordr=2", "study.models.ngram"),
+        ("+study.orders.reverse.params.size=2", "study.orders.reverse"),
+        ("+study.sources.corpus.params.foo=1", "study.sources.corpus"),
+        ("+study.sources.corpus.tokenizer.params.foo=1", "study.sources.corpus.tokenizer"),
+        ("study.models.ngram.params.order=0", "study.models.ngram"),
+    ],
+)
+def test_an_error_names_its_config_key_once(host, override, where):
+    message = _one_line_error(host, [override])
+    assert message.startswith(f"{where}: ") and message.count(f"{where}:") == 1
+
+
 def test_source_file_outside_the_host_repository_is_refused(host):
     (host.parent / "outside.txt").write_text(CORPUS)
     message = _one_line_error(
@@ -254,6 +271,32 @@ def test_source_file_outside_the_host_repository_is_refused(host):
         ],
     )
     assert "'../outside.txt' lies outside the host repository" in message
+
+
+@pytest.mark.parametrize(
+    ("deps", "expected"),
+    [
+        ("[data/*.txt]", "holds '*', a glob character"),
+        ("[.git/config]", "lies inside .git/"),
+        ("[data/../.dvc/config]", "lies inside .dvc/"),
+    ],
+)
+def test_declared_deps_follow_the_same_path_rules_as_found_files(host, deps, expected):
+    assert expected in _one_line_error(host, [f"study.sources.corpus.deps={deps}"])
+
+
+def test_a_device_as_a_source_is_refused(host):
+    device = host / "data" / "zero.txt"
+    try:  # the device /dev/zero is (1, 5) on Linux; making one needs CAP_MKNOD
+        os.mknod(device, 0o600 | stat.S_IFCHR, os.makedev(1, 5))
+    except PermissionError:
+        pytest.skip("making a device node needs CAP_MKNOD")
+    message = _one_line_error(
+        host,
+        ["study.sources.corpus.params.files=[data/zero.txt]", "~study.sources.corpus.deps"],
+        DataError,
+    )
+    assert "'data/zero.txt' is a character device, not a regular file" in message
 
 
 def test_missing_corpus_is_fine_when_deps_name_it_but_not_otherwise(host):

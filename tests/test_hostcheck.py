@@ -32,12 +32,31 @@ def test_before_any_run_every_cell_is_to_run_and_every_order_round_trips(tmp_pat
     report = json.loads(out)
     assert report["grid"]["cells"] == 4
     assert report["cells"] == {"to_run": FITS, "up_to_date": [], "stale_inputs": {}}
+    # init wrote the default config's files; the smoke study changes only the params
+    assert report["written"] == ["pipelines/retrograde/params.yaml"]
     corpus = report["round_trip"]["corpus"]
     assert corpus["orders"] == ["forward", "reverse"] and corpus["units"] > 0
     # The check brought params.yaml up to date the way `run` does: DVC itself now lists the
     # same fit stages (outside reference: `dvc stage list`).
     listed = sh([*DVC, "stage", "list", "--name-only", "pipelines/retrograde/dvc.yaml"], host)
     assert [n.split(":", 1)[1] for n in listed.split() if ":fit@" in n] == FITS
+
+
+def test_check_says_which_tracked_files_it_rewrote_and_only_when_it_did(tmp_path, capsys):
+    host = new_pipeline_host(tmp_path / "host")
+    status, out, _ = _check(capsys, "--dir", str(host), SMOKE)
+    assert status == 0
+    written = "pipelines/retrograde/params.yaml"  # init wrote the stage file for this grid
+    assert f"wrote {written}: brought up to date from the config" in out
+    sh(["git", "add", "-A"], host)
+    sh(["git", "commit", "-q", "-m", "composed"], host)
+    status, out, _ = _check(capsys, "--dir", str(host), SMOKE)
+    assert status == 0 and "wrote" not in out  # nothing changed, nothing written or said
+    assert sh(["git", "status", "--porcelain"], host) == ""
+    status, out, _ = _check(capsys, "--dir", str(host), SMOKE, "study.seeds=[4]")
+    assert "wrote pipelines/retrograde/params.yaml:" in out
+    changed = sh(["git", "status", "--porcelain"], host).split()
+    assert changed == ["M", "pipelines/retrograde/params.yaml"]
 
 
 @pytest.mark.slow

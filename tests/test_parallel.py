@@ -65,6 +65,24 @@ def _max_overlap(trace: Path) -> int:
 
 
 @pytest.mark.slow
+def test_run_replaces_symlinked_logs_instead_of_writing_through_them(tmp_path):
+    host = new_pipeline_host(tmp_path / "host")
+    outside = tmp_path / "outside.txt"
+    outside.write_text("precious\n")
+    logs = host / LOG_DIR
+    logs.mkdir(parents=True)
+    cell = "fit@corpus-ngram-reverse-0"
+    for name in ("run.log", f"{cell}.log"):
+        (logs / name).symlink_to(outside)
+    with contextlib.redirect_stdout(io.StringIO()), contextlib.redirect_stderr(io.StringIO()):
+        status = main(["run", "--dir", str(host), "--jobs", "2", "study=smoke", "study.seeds=[0]"])
+    assert status == 0
+    assert outside.read_text() == "precious\n"
+    for name in ("run.log", f"{cell}.log"):
+        assert not (logs / name).is_symlink() and (logs / name).read_text()
+
+
+@pytest.mark.slow
 def test_two_jobs_run_every_stage_two_at_a_time_and_dvc_records_all(tmp_path):
     host = _host_with_stages(tmp_path / "host")
     run_stages_in_parallel(host, CELLS, jobs=2)

@@ -146,13 +146,81 @@ def test_a_changed_file_stops_init_before_anything_is_written(host, capsys):
     assert snapshot(host) == before
 
 
-def test_force_overwrites_changed_files_with_the_packaged_ones(host, capsys):
+def test_force_keeps_changed_config_files_committed_or_not_and_installs_the_rest(host, capsys):
     _init(capsys)
     study = host / "conf/retrograde/study/default.yaml"
-    study.write_text("# mine\n")
+    study.write_text(study.read_text() + "# my committed edit\n")
+    sh(["git", "add", "-A"], host)
+    sh(["git", "commit", "-q", "-m", "adopt retrograde"], host)
+    stats = host / "conf/retrograde/stats/default.yaml"
+    stats.write_text(stats.read_text() + "# my uncommitted edit\n")
+    (host / "conf/retrograde/config.yaml").unlink()
+    edits = {path: path.read_bytes() for path in (study, stats)}
+    status, out, err = _init(capsys, "--force")
+    assert (status, err) == (0, "")
+    assert {path: path.read_bytes() for path in edits} == edits
+    assert "kept 2 changed config file(s)" in out
+    assert (
+        "conf/retrograde/study/default.yaml" in out and "conf/retrograde/stats/default.yaml" in out
+    )
+    packaged = planned_files()[Path("conf/retrograde/config.yaml")]
+    assert (host / "conf/retrograde/config.yaml").read_bytes() == packaged
+
+
+def _edit_stage_file_outside_the_units_block(host: Path) -> Path:
+    stage_file = host / "pipelines/retrograde/dvc.yaml"
+    stage_file.write_text(stage_file.read_text().replace("# <<< units stages <<<", "# mine"))
+    return stage_file
+
+
+def test_force_refuses_to_replace_a_stage_file_whose_edits_git_does_not_hold(host, capsys):
+    _init(capsys)
+    _edit_stage_file_outside_the_units_block(host)
+    before = snapshot(host)
+    status, out, err = _init(capsys, "--force")
+    assert status == 2 and out == "" and err.count("\n") == 1
+    assert "pipelines/retrograde/dvc.yaml has edits git has not committed" in err
+    assert "nothing was written" in err and snapshot(host) == before
+
+
+def test_the_missing_markers_advice_repairs_the_stage_file_and_keeps_the_config(host, capsys):
+    # Follow the error's advice word for word: commit, then `init --force`.
+    _init(capsys)
+    study = host / "conf/retrograde/study/default.yaml"
+    study.write_text(study.read_text().replace("seeds: [0, 1, 2]", "seeds: [5]"))
+    edited = study.read_bytes()
+    _edit_stage_file_outside_the_units_block(host)
+    status, _, err = _init(capsys, "--force")
+    assert status == 2  # uncommitted: refused
+    assert main(["run", "--dry"]) == 2
+    err = capsys.readouterr().err
+    assert "has no units markers; commit it (or move it away)" in err
+    assert "`retrograde init --force`, which keeps every changed file in conf/retrograde/" in err
+    sh(["git", "add", "pipelines/retrograde/dvc.yaml"], host)
+    sh(["git", "commit", "-q", "-m", "my stage file"], host)
     status, out, _ = _init(capsys, "--force")
-    assert status == 0 and "conf/retrograde/study/default.yaml" in out
-    assert study.read_bytes() == planned_files()[Path("conf/retrograde/study/default.yaml")]
+    assert status == 0 and "pipelines/retrograde/dvc.yaml" in out
+    repaired = (host / "pipelines/retrograde/dvc.yaml").read_text()
+    # the packaged stage file again (with init's units block for the current config)
+    assert "# mine" not in repaired and "# <<< units stages <<<" in repaired
+    template = planned_files()[Path("pipelines/retrograde/dvc.yaml")].decode()
+    assert repaired.splitlines()[:5] == template.splitlines()[:5]
+    assert study.read_bytes() == edited
+    assert main(["run", "--dry"]) == 0
+    assert "fit@corpus-ngram-reverse-5" in capsys.readouterr().out
+
+
+@pytest.mark.parametrize("force", [[], ["--force"]])
+def test_source_with_a_changed_corpus_config_is_refused_even_with_force(host, capsys, force):
+    _init(capsys)
+    corpus = host / "conf/retrograde/source/corpus.yaml"
+    corpus.write_text(corpus.read_text() + "# mine\n")
+    before = snapshot(host)
+    status, _, err = _init(capsys, *force, "--source", "data/corpus.txt")
+    assert status == 2 and err.count("\n") == 1
+    assert "conf/retrograde/source/corpus.yaml already exists" in err
+    assert "init never overwrites your config (not even with --force)" in err
+    assert snapshot(host) == before
 
 
 def test_the_units_block_written_by_run_does_not_count_as_a_change(host, capsys):

@@ -253,6 +253,38 @@ def test_fit_crash_names_the_cell_and_keeps_its_log(pipeline, tmp_path, capsys):
     assert FitError.exit_status == status
 
 
+def _fit_copy(pipeline: Path, wdir: Path, seed: str = "0") -> int:
+    """Run one fit stage on a copy of the pipeline folder's data and params."""
+    shutil.copytree(pipeline / "data", wdir / "data")
+    _write_params(wdir, _params(pipeline))
+    argv = ["--source", "corpus", "--model", "ngram", "--order", "reverse", "--seed", seed]
+    return fit_stage.main(["--params", str(wdir), *argv])
+
+
+def test_fit_log_that_is_a_symlink_out_of_the_repository_is_replaced_not_written_through(
+    pipeline, tmp_path
+):
+    outside = tmp_path / "outside.txt"
+    outside.write_text("precious\n")
+    cell = tmp_path / "wdir/cells/corpus/ngram/reverse/seed0"
+    cell.mkdir(parents=True)
+    (cell / "fit.log").symlink_to(outside)
+    assert _fit_copy(pipeline, tmp_path / "wdir") == 0
+    assert outside.read_text() == "precious\n"
+    assert not (cell / "fit.log").is_symlink() and "seed=0" in (cell / "fit.log").read_text()
+
+
+def test_a_cell_folder_that_is_a_symlink_out_of_the_pipeline_is_refused(pipeline, tmp_path, capsys):
+    outside = tmp_path / "elsewhere"
+    outside.mkdir()
+    (tmp_path / "wdir/cells/corpus/ngram/reverse").mkdir(parents=True)
+    (tmp_path / "wdir/cells/corpus/ngram/reverse/seed0").symlink_to(outside)
+    assert _fit_copy(pipeline, tmp_path / "wdir") == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "leads outside" in err and "symbolic link" in err
+    assert list(outside.iterdir()) == []
+
+
 # --------------------------------------------------------------------------------- table
 def _unit_totals(wdir: Path, order: str, seeds=(0, 1)) -> np.ndarray:
     """(n_seeds, n_units) nats per test unit, straight from the cell files."""

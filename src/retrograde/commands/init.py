@@ -2,9 +2,10 @@
 
 Installs ``conf/retrograde/`` (config groups) and ``pipelines/retrograde/dvc.yaml`` (the
 stage file) into an existing git + DVC repository, adds ignore rules to
-``pipelines/retrograde/.gitignore``, and prints the next command. Idempotent; never
-overwrites a changed file without ``--force``; never touches the host's root ``dvc.yaml``
-or ``params.yaml``.
+``pipelines/retrograde/.gitignore``, and prints the next command. Idempotent; stops at a
+changed file without ``--force``; with it, keeps changed config files and replaces a
+changed stage file only when git has it committed; never touches the host's root
+``dvc.yaml`` or ``params.yaml``.
 """
 
 from __future__ import annotations
@@ -32,7 +33,10 @@ def configure(parser: argparse.ArgumentParser) -> None:
         "they become the files of the default 'corpus' source",
     )
     parser.add_argument(
-        "--force", action="store_true", help="overwrite installed files that were changed"
+        "--force",
+        action="store_true",
+        help="install around changed files: keep changed config files, replace a changed "
+        "stage file that git has committed",
     )
 
 
@@ -46,6 +50,13 @@ def run(args: argparse.Namespace) -> int:
             print(f"  {path}")
     else:
         print(f"retrograde init: {host.root} already has every file (nothing written)")
+    if result.kept:
+        print(
+            f"kept {len(result.kept)} changed config file(s) as they are (delete one and rerun "
+            "init to get the packaged version):"
+        )
+        for path in result.kept:
+            print(f"  {path}")
     if not sources:
         print(f"check the corpus files in {SOURCE_CONFIG} (or rerun init with --source PATH)")
     print("next:")

@@ -44,7 +44,13 @@ from ._layout import (
     units_dir,
     units_stage_name,
 )
-from ._plugins import covered, resolve_plugins, resolved_params
+from ._plugins import (
+    check_file_types,
+    check_repo_path,
+    covered,
+    resolve_plugins,
+    resolved_params,
+)
 from ._schema import (
     NAME_PATTERN,
     CalibrationConfig,
@@ -60,6 +66,7 @@ from ._schema import (
     TokenizerConfig,
     UnitsConfig,
     check_keys,
+    check_required,
     from_dict,
     normalize,
     register_configs,
@@ -91,7 +98,10 @@ __all__ = [
     "TokenizerConfig",
     "UnitsConfig",
     "cell_dir",
+    "check_file_types",
     "check_keys",
+    "check_repo_path",
+    "check_required",
     "check_source_values",
     "check_stats",
     "check_study",
@@ -131,6 +141,7 @@ def parse(raw: dict[str, Any]) -> RetrogradeConfig:
 
     raw = normalize(raw)
     check_keys(raw)
+    check_required(raw)
     try:
         merged = OmegaConf.merge(OmegaConf.structured(RetrogradeConfig), raw)
         container = OmegaConf.to_container(merged, resolve=True)

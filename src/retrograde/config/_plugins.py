@@ -17,14 +17,16 @@ from __future__ import annotations
 
 import hashlib
 import inspect
+import os
 import shutil
+import stat
 from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
 from .. import __version__
 from ..data import tokenizers, working_directory
-from ..errors import ConfigError, DataError, RetrogradeError
+from ..errors import ConfigError, DataError, MissingFileError, PluginError, RetrogradeError
 from ..validation import did_you_mean
 from ._checks import check_source_values
 from ._layout import CONF_DIR, PIPELINE_DIR
@@ -38,15 +40,21 @@ from ._schema import (
     UnitsConfig,
 )
 
-__all__ = ["covered", "resolve_plugins", "resolved_params"]
+__all__ = [
+    "check_file_types",
+    "check_repo_path",
+    "covered",
+    "resolve_plugins",
+    "resolved_params",
+]
 
 # Folders retrograde writes in the host (DESIGN.md invariant 7): a source may not read them.
 _OWN_FOLDERS = (CONF_DIR.as_posix(), PIPELINE_DIR.as_posix())
 
 
 def _prefixed(where: str, exc: RetrogradeError) -> RetrogradeError:
-    """The same error class with the config key path in front of its message."""
-    return type(exc)(f"{where}: {exc}")
+    """The same error class with the config key path in front of its message (once)."""
+    return exc.prefixed(where)
 
 
 def check_param_names(where: str, kind: str, factory: Any, params: dict[str, Any]) -> None:
@@ -233,7 +241,7 @@ def _source_deps(where: str, entry: SourceConfig, root: Path) -> list[str]:
         try:
             built = sources.make(entry.name, **entry.params)
             found = [Path(p) for p in built.paths()]  # type: ignore[attr-defined]
-        except DataError as exc:
+        except MissingFileError as exc:
             # A host stage may not have written the files yet: declared deps suffice then.
             if entry.deps is None:
                 raise DataError(
@@ -243,6 +251,15 @@ def _source_deps(where: str, entry: SourceConfig, root: Path) -> list[str]:
             found = []
         except RetrogradeError as exc:
             raise _prefixed(where, exc) from exc
+        except Exception as exc:
+            if str(getattr(sources.registry.get(entry.name), "__module__", "")).startswith(
+                "retrograde."
+            ):
+                raise  # a bug of ours: keep the traceback
+            raise PluginError(
+                f"{where}: source {entry.name!r} raised {type(exc).__name__} listing its "
+                f"files: {exc}; fix the source's code (--debug shows the traceback)"
+            ) from exc
     paths = [Path(p) for p in entry.deps] if entry.deps is not None else found
     deps = [_inside_root(where, p, root) for p in paths]
     for path in found:
@@ -291,4 +308,78 @@ def _inside_root(where: str, path: Path, root: Path, *, exists: bool = False) ->
             f"{where}: file {text!r} lies inside retrograde's own folders "
             f"({', '.join(_OWN_FOLDERS)}); point the source at your data instead"
         )
+    check_repo_path(where, text)
+    check_file_types(where, resolved, text)
     return text
+
+
+#: folders of the tools themselves: their files are no one's data
+_TOOL_FOLDERS = (".git", ".dvc")
+
+
+def check_repo_path(where: str, text: str) -> None:
+    """Refuse a host-relative POSIX path that git, DVC or YAML would misread.
+
+    The path goes into ``params.yaml`` and, as a dependency, into ``dvc.yaml``: a line
+    break or other control character breaks both, ``${`` is a DVC variable there, and
+    ``*?[]`` make it a glob pattern (``a[1].txt`` matches ``a1.txt``). Bytes that are not
+    UTF-8 cannot be written to either file. Files inside ``.git/`` or ``.dvc/`` belong to
+    the tools (and change on every commit or run).
+    """
+    if any("\ud800" <= char <= "\udfff" for char in text):  # undecodable bytes, escaped
+        raise ConfigError(
+            f"{where}: file name {text!r} is not valid UTF-8; rename the file (params.yaml "
+            "and dvc.yaml hold UTF-8 text)"
+        )
+    control = next((char for char in text if ord(char) < 0x20 or ord(char) == 0x7F), None)
+    if control is not None:
+        raise ConfigError(
+            f"{where}: file name {text!r} holds the control character {control!r} (a line "
+            "break breaks params.yaml and dvc.yaml); rename the file"
+        )
+    if "${" in text:
+        raise ConfigError(
+            f"{where}: file name {text!r} holds '${{', which DVC reads as a variable in "
+            "dvc.yaml; rename the file"
+        )
+    glob = next((char for char in text if char in "*?[]"), None)
+    if glob is not None:
+        raise ConfigError(
+            f"{where}: file name {text!r} holds {glob!r}, a glob character, so it would be "
+            "read as a pattern (e.g. 'a[1].txt' matches 'a1.txt'); rename the file"
+        )
+    tool = next((part for part in text.split("/") if part in _TOOL_FOLDERS), None)
+    if tool is not None:
+        raise ConfigError(
+            f"{where}: file {text!r} lies inside {tool}/, the tool's own files (they change "
+            "with every commit or run); point the source at your data"
+        )
+
+
+def check_file_types(where: str, path: Path, shown: str) -> None:
+    """Refuse a FIFO, socket or device at ``path`` or anywhere in the folder ``path``.
+
+    DVC hashes every dependency before it runs a stage, and reading a FIFO blocks until a
+    writer comes (``dvc repro`` hangs). A missing path passes (a host stage may write it).
+    """
+    if not path.exists():
+        return
+    if path.is_dir():
+        for folder, _, names in os.walk(path):
+            for name in sorted(names):
+                inner = Path(folder) / name
+                _check_one_type(where, inner, f"{shown}/{inner.relative_to(path).as_posix()}")
+        return
+    _check_one_type(where, path, shown)
+
+
+def _check_one_type(where: str, path: Path, shown: str) -> None:
+    try:
+        mode = path.stat().st_mode
+    except OSError:
+        return  # a dangling link: DVC reports it
+    if not stat.S_ISREG(mode):
+        raise DataError(
+            f"{where}: {shown!r} is not a regular file (a FIFO, socket or device); reading "
+            "it would block the units stage and DVC; point the source at regular files"
+        )

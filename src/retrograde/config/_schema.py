@@ -36,6 +36,7 @@ __all__ = [
     "TokenizerConfig",
     "UnitsConfig",
     "check_keys",
+    "check_required",
     "from_dict",
     "normalize",
     "register_configs",
@@ -103,7 +104,8 @@ class OrderConfig:
 
 @dataclass
 class ModelConfig:
-    family: str = "ngram"
+    #: a registered family or a dotted path; required (no family is assumed)
+    family: str
     params: dict[str, Any] = field(default_factory=dict)
     #: a ``command`` model's trainer: a file or folder relative to the host root, a DVC
     #: dependency of its cells; found in the command when null (``python train.py``)
@@ -287,6 +289,25 @@ def normalize(raw: dict[str, Any]) -> dict[str, Any]:
                 rebuilt.update({name_key: entry["_target_"], "params": params})
                 entries[entry_name] = rebuilt
     return out
+
+
+def check_required(raw: dict[str, Any]) -> None:
+    """Refuse a model entry without ``family`` (normalized ``_target_`` entries have one).
+
+    No family is assumed: a model written without one is a mistake, not an n-gram.
+    """
+    study = raw.get("study")
+    models = study.get("models") if isinstance(study, dict) else None
+    if not isinstance(models, dict):
+        return
+    for name, entry in models.items():
+        if isinstance(entry, dict) and entry.get("family") is None:
+            from .. import families
+
+            raise ConfigError(
+                f"study.models.{name} has no family; add family: NAME (one of "
+                f"{', '.join(families.names())}) or _target_: package.Class to its entry"
+            )
 
 
 def check_keys(node: Any, schema: Any = RetrogradeConfig, path: str = "") -> None:

@@ -23,6 +23,7 @@ from ._files import (
     atomic_write_bytes,
     atomic_write_json,
     atomic_write_text,
+    open_for_writing,
     working_directory,
     write_npz,
 )
@@ -59,6 +60,7 @@ __all__ = [
     "check_fractions",
     "check_units",
     "index_dtype",
+    "open_for_writing",
     "prepare_units",
     "tokenizers",
     "working_directory",

@@ -1,11 +1,13 @@
 """Atomic file writing: write to a temporary sibling, then rename.
 
-Nothing half-written is ever left at the destination path.
+Nothing half-written is ever left at the destination path, and a symbolic link there is
+replaced, never written through (the rename swaps the link itself).
 """
 
 from __future__ import annotations
 
 import contextlib
+import errno
 import io
 import json
 import os
@@ -19,6 +21,7 @@ from typing import Any
 import numpy as np
 
 __all__ = [
+    "open_for_writing",
     "working_directory",
     "atomic_dir",
     "atomic_write_bytes",
@@ -49,6 +52,29 @@ def atomic_write_bytes(path: str | os.PathLike[str], data: bytes) -> None:
         with contextlib.suppress(FileNotFoundError):
             os.unlink(tmp)
         raise
+
+
+def open_for_writing(path: str | os.PathLike[str]) -> io.TextIOWrapper:
+    """``path`` opened for writing UTF-8 text from the start, never through a symbolic link.
+
+    For files written as work goes on (a log that must survive a crash), where a temporary
+    file and a rename would not do. A symbolic link at ``path`` is removed (its target is
+    left alone) and a regular file takes its place; ``O_NOFOLLOW`` makes sure a link put
+    there meanwhile is not followed either.
+    """
+    path = Path(path)
+    flags = os.O_WRONLY | os.O_CREAT | os.O_TRUNC | os.O_NOFOLLOW | os.O_CLOEXEC
+    for _ in range(2):
+        if path.is_symlink():
+            path.unlink()
+        try:
+            fd = os.open(path, flags, 0o666)
+        except OSError as exc:
+            if exc.errno == errno.ELOOP:
+                continue  # a link appeared between the check and the open: remove it again
+            raise
+        return io.TextIOWrapper(io.FileIO(fd, "w"), encoding="utf-8")
+    raise OSError(errno.ELOOP, "a symbolic link keeps reappearing", str(path))
 
 
 def atomic_write_text(path: str | os.PathLike[str], text: str) -> None:

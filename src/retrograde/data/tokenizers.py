@@ -52,8 +52,6 @@ TOKENIZER_FORMAT = "retrograde.tokenizer/1"
 #: what ``decode`` writes for the unknown token
 UNKNOWN_TEXT = "\ufffd"
 
-registry: Registry[Tokenizer] = Registry("tokenizer", "retrograde.tokenizers")
-
 
 def make(name: str, **params: Any) -> Tokenizer:
     """Build an unfitted tokenizer ``name`` (``bytes``, ``chars`` or ``words``)."""
@@ -144,6 +142,10 @@ class Tokenizer:
                 "vocab_size": self.vocab_size,
             },
         )
+
+
+#: every tokenizer class, by name (built-ins, entry points, dotted paths)
+registry: Registry[Tokenizer] = Registry("tokenizer", "retrograde.tokenizers", Tokenizer)
 
 
 @registry.register("bytes")

@@ -49,7 +49,7 @@ __all__ = [
 
 _BUILTIN: tuple[type[Family], ...] = (NGram, MLP, CommandFamily, GRU, LSTM, Transformer)
 
-registry: Registry[Family] = Registry("family", "retrograde.families", "families")
+registry: Registry[Family] = Registry("family", "retrograde.families", Family, "families")
 for _family in _BUILTIN:
     registry.register(_family.name)(_family)
 

@@ -28,7 +28,8 @@ once per cell.
 Relative paths in the arguments are resolved from the current working directory (the DVC
 stage folder in a pipeline). A non-zero exit, a timeout, or output of the wrong length,
 non-finite or positive values raise :class:`~retrograde.errors.FitError` with the tail of
-the trainer's stderr.
+the trainer's stderr. The trainer runs in its own process group, killed whole on a timeout
+(and after the trainer exits), so no process it started outlives it.
 """
 
 from __future__ import annotations

@@ -19,7 +19,7 @@ Everything written in a host lies under ``conf/retrograde/`` and ``pipelines/ret
 from __future__ import annotations
 
 from ._check import cell_status, check_host, format_host_check, round_trip_orders
-from ._corpus_paths import host_stage_outputs, resolve_sources
+from ._corpus_paths import check_source_files, host_stage_outputs, resolve_sources
 from ._demo import MARKER, commit_demo_results, next_steps, prepare_demo
 from ._driver import (
     RunResult,
@@ -75,6 +75,7 @@ __all__ = [
     "RunResult",
     "Shard",
     "cell_status",
+    "check_source_files",
     "check_file",
     "check_host",
     "commit_demo_results",

@@ -8,7 +8,8 @@ Three checks, in the order a user needs them:
    the ``units`` stage cuts it (a failure names the order and the unit, exit status 1);
 3. which fit cells DVC would run and which are already up to date. DVC can only answer
    for the composed config, so ``params.yaml`` and the stage file are first brought up to
-   date exactly as ``run`` does (written only when their content changes); then
+   date exactly as ``run`` does (written only when their content changes, and the report
+   names every file written); then
    ``dvc status --with-deps`` on the fit stages says which cells, or the ``units`` and
    ``reorder`` stages they hang from, changed.
 
@@ -31,6 +32,7 @@ from ..config import (
     units_stage_name,
 )
 from ..data import SPLITS
+from ..errors import PluginError
 from ._driver import compose_for, write_pipeline_files
 from ._lock import pipeline_lock
 from ._repo import HostRepo, run_dvc
@@ -57,7 +59,10 @@ def round_trip_orders(root: Path, config: RetrogradeConfig) -> dict[str, dict[st
         splits = configured_units(source_name, spec, root).splits
         for order_name, order in built.items():
             for split in SPLITS:
-                orders.verify_bijection(order, splits[split], order_name=order_name)
+                try:
+                    orders.verify_bijection(order, splits[split], order_name=order_name)
+                except PluginError as exc:  # the order's code failed: name its config key
+                    raise exc.prefixed(f"study.orders.{order_name}") from exc
         checked[source_name] = {
             "units": int(sum(len(splits[s]) for s in SPLITS)),
             "tokens": int(sum(len(splits[s].tokens) for s in SPLITS)),
@@ -80,13 +85,16 @@ def cell_status(host: HostRepo, config: RetrogradeConfig) -> dict[str, Any]:
     DVC answers for the composed config, the stage file and the host's own stages
     upstream of each source (a changed preparation script reruns everything built on its
     output), so ``params.yaml`` and the stage file are brought up to date first, as ``run``
-    does, holding the pipeline folder's lock. ``stale_inputs`` lists, per source, the
-    host's stages that must run before its files are current.
+    does, holding the pipeline folder's lock; ``written`` lists the files that rewrote
+    (host-relative). ``stale_inputs`` lists, per source, the host's stages that must run
+    before its files are current.
     """
     cells = config.cells()
     ours = f"{DVC_FILE.as_posix()}:"
     with pipeline_lock(host.root, "retrograde check"):
-        write_pipeline_files(host, config)
+        written = [
+            path.relative_to(host.root).as_posix() for path in write_pipeline_files(host, config)
+        ]
         changed = _changed(host, [host.target(fit_stage_name(*cell)) for cell in cells])
         stale_inputs: dict[str, list[str]] = {}
         if any(not name.startswith(ours) for name in changed):
@@ -96,7 +104,12 @@ def cell_status(host: HostRepo, config: RetrogradeConfig) -> dict[str, Any]:
                 if host_stages:
                     stale_inputs[source] = host_stages
     changed = {name.rpartition(":")[2] for name in changed}
-    report: dict[str, Any] = {"to_run": [], "up_to_date": [], "stale_inputs": stale_inputs}
+    report: dict[str, Any] = {
+        "to_run": [],
+        "up_to_date": [],
+        "stale_inputs": stale_inputs,
+        "written": written,
+    }
     for source, model, order, seed in cells:
         name = fit_stage_name(source, model, order, seed)
         upstream = {name, reorder_stage_name(source, order), units_stage_name(source)}
@@ -116,7 +129,9 @@ def check_host(host_dir: str, overrides: Sequence[str] = ()) -> dict[str, Any]:
     study = config.study
     sources = round_trip_orders(host.root, config)
     cells = cell_status(host, config)
+    written = cells.pop("written")
     return {
+        "written": written,
         "grid": {
             "sources": list(study.sources),
             "models": list(study.models),
@@ -163,4 +178,9 @@ def format_host_check(report: dict[str, Any]) -> str:
         )
     lines.append(f"cells: {len(cells['up_to_date'])} up to date, {len(cells['to_run'])} to run")
     lines += [f"  to run: {name}" for name in cells["to_run"]]
+    if report.get("written"):
+        lines.append(
+            f"wrote {', '.join(report['written'])}: brought up to date from the config as "
+            "`retrograde run` would, so DVC could answer (commit them with your config)"
+        )
     return "\n".join(lines)

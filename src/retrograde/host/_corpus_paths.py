@@ -1,5 +1,6 @@
-"""The corpus paths ``init --source`` accepts: inside the host, and existing or
-declared as an output by the host's own DVC files (so DVC connects the two pipelines).
+"""The corpus paths ``init --source`` accepts, and the source files ``run`` accepts: inside
+the host, and existing or declared as an output by the host's own DVC files (so DVC
+connects the two pipelines).
 """
 
 from __future__ import annotations
@@ -10,11 +11,12 @@ from typing import Any
 
 import yaml
 
-from ..config import PIPELINE_DIR
-from ..errors import DataError
+from ..config import PIPELINE_DIR, RetrogradeConfig
+from ..data import working_directory
+from ..errors import DataError, MissingFileError
 from ._repo import HostRepo, run_git
 
-__all__ = ["host_stage_outputs", "resolve_sources"]
+__all__ = ["check_source_files", "host_stage_outputs", "resolve_sources"]
 
 
 def host_stage_outputs(host: HostRepo) -> list[PurePosixPath]:
@@ -106,6 +108,45 @@ def resolve_sources(host: HostRepo, paths: Sequence[str], *, cwd: Path) -> list[
                 )
         resolved.append(relative.as_posix())
     return list(dict.fromkeys(resolved))
+
+
+def check_source_files(host: HostRepo, config: RetrogradeConfig) -> None:
+    """Refuse a file source whose files are missing unless a host stage writes them.
+
+    Composition accepts a file source that finds no file when its ``deps`` are declared (a
+    host stage may write the corpus later). Here, with the host's own DVC files at hand,
+    that is allowed only when a stage or ``.dvc`` file of the host declares an output that
+    is, holds or lies inside one of the source's ``deps``; otherwise the files can never
+    appear and ``run --dry``, ``check`` and ``run`` say so before any work.
+
+    Raises
+    ------
+    MissingFileError
+        One line naming the source, the file the source looked for and what to do.
+    """
+    from .. import sources
+
+    outputs: list[PurePosixPath] | None = None
+    for name, spec in config.study.sources.items():
+        if getattr(sources.registry.get(spec.name), "is_calibration", False):
+            continue
+        try:
+            with working_directory(host.root):
+                sources.make(spec.name, **spec.params)
+        except MissingFileError as exc:
+            outputs = host_stage_outputs(host) if outputs is None else outputs
+            deps = [PurePosixPath(dep) for dep in spec.deps or []]
+            written = any(
+                out == dep or _is_below(out, dep) or _is_below(dep, out)
+                for out in outputs
+                for dep in deps
+            )
+            if not written:
+                raise MissingFileError(
+                    f"study.sources.{name}: {exc}; no stage or .dvc file of the host writes "
+                    f"its deps ({', '.join(map(str, deps)) or 'none'}); fix the path, add the "
+                    "file, or add the stage that writes it"
+                ) from exc
 
 
 def _is_below(path: PurePosixPath, folder: PurePosixPath) -> bool:

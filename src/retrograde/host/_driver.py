@@ -34,12 +34,13 @@ from ..data import atomic_write_text
 from ..errors import FitError, HostRepoError, RetrogradeError
 from ..report import recover_report
 from ..validation import check_int
+from ._corpus_paths import check_source_files
 from ._lock import pipeline_lock
 from ._lockfile import normalize_lock_order
 from ._parallel import run_stages_in_parallel, stale_stages
 from ._progress import Progress
 from ._repo import HostRepo, dvc_argv, find_host, last_error_line, require_installed
-from ._scaffold import InstallResult, install, planned_files
+from ._scaffold import SOURCE_CONFIG, InstallResult, install, planned_files
 from ._stagefile import render_dvc_yaml
 
 __all__ = [
@@ -111,6 +112,7 @@ def compose_for(
     host = find_host(host_dir)
     require_installed(host)
     config = compose(host.root, overrides)
+    check_source_files(host, config)  # missing files only if a host stage writes them
     render_dvc_yaml(host.dvc_file.read_text(encoding="utf-8"), config)  # markers present?
     return host, config
 
@@ -204,8 +206,15 @@ def _repro(host: HostRepo, target: str, *, pull: bool, progress: Progress) -> No
 
 
 def _append_log(path: Path, text: str) -> None:
-    """Add one ``dvc repro``'s output to the run's log (a run may start several)."""
-    with path.open("a", encoding="utf-8") as handle:
+    """Add one ``dvc repro``'s output to the run's log (a run may start several).
+
+    Never through a symbolic link: one in its place is removed, and ``O_NOFOLLOW`` refuses
+    one put there meanwhile.
+    """
+    if path.is_symlink():
+        path.unlink()
+    flags = os.O_WRONLY | os.O_CREAT | os.O_APPEND | os.O_NOFOLLOW | os.O_CLOEXEC
+    with os.fdopen(os.open(path, flags, 0o666), "a", encoding="utf-8") as handle:
         handle.write(text)
 
 
@@ -255,7 +264,12 @@ def initialize(
     config does not compose yet (a corpus the host has not declared), the grid is empty.
     """
     with pipeline_lock(host.root, "retrograde init"):
-        result = install(host, planned_files(sources=sources), force=force)
+        result = install(
+            host,
+            planned_files(sources=sources),
+            force=force,
+            must_write=[SOURCE_CONFIG] if sources else [],
+        )
         try:
             config = compose(host.root)
         except RetrogradeError:
@@ -285,7 +299,7 @@ def run_pipeline(
         target = host.dvc_file.relative_to(host.root).as_posix()
         # The log of this run's DVC output starts empty (each `dvc repro` appends).
         (host.pipeline_dir / "logs").mkdir(parents=True, exist_ok=True)
-        (host.pipeline_dir / "logs" / "run.log").write_text("", encoding="utf-8")
+        atomic_write_text(host.pipeline_dir / "logs" / "run.log", "")  # replaces a link
         with stage_environment(host), Progress(total) as progress:
             _run_jobs(host, target, cells, jobs, pull=pull, progress=progress)
         normalize_lock_order(host.root)  # dvc.lock in stage-file order, whatever jobs was

@@ -20,6 +20,7 @@ import yaml
 from .. import orders
 from ..data import Document, PreparedUnits, check_fractions, check_units, prepare_units, tokenizers
 from ..errors import BijectionError, ConfigError, DataError
+from ..sources import find_lone_carriage_return
 from ..validation import check_int
 
 __all__ = ["check_file", "format_file_check", "parse_order_spec", "read_text"]
@@ -34,6 +35,7 @@ def read_text(path: Path, *, errors: str, raw_bytes: bool = False) -> str:
     data = path.read_bytes()
     if not data:
         raise DataError(f"{path}: the file is empty; give a file with at least one unit of text")
+    find_lone_carriage_return(path, data)  # lines would merge silently
     if raw_bytes:
         return data.decode("utf-8", "surrogateescape")  # lossless for the bytes tokenizer
     try:

@@ -21,6 +21,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from ..config import CONF_DIR, DVC_FILE, PARAMS_FILE, PIPELINE_DIR
+from ..data import atomic_write_text
 from ..errors import HostRepoError
 
 __all__ = [
@@ -248,8 +249,7 @@ def run_tool(
         ) from exc
     if log_path is not None and capture:
         log_text = f"$ {shown}\n{result.stdout or ''}{result.stderr or ''}"
-        Path(log_path).parent.mkdir(parents=True, exist_ok=True)
-        Path(log_path).write_text(log_text, encoding="utf-8")
+        atomic_write_text(log_path, log_text)  # replaces a symbolic link, never follows it
     if check and result.returncode != 0:
         raise HostRepoError(failure_message(shown, cwd, result, log_path))
     return result

@@ -8,6 +8,7 @@ from pathlib import Path
 from typing import Any
 
 from ..errors import ConfigError, DataError
+from ..report import check_table
 from ._repo import git_toplevel, run_git
 
 __all__ = ["read_table_at"]
@@ -18,9 +19,7 @@ def _parse(text: str, where: str) -> dict[str, Any]:
         table = json.loads(text)
     except json.JSONDecodeError as exc:
         raise DataError(f"{where}: invalid JSON ({exc.msg}, line {exc.lineno})") from exc
-    if not isinstance(table, dict):
-        raise DataError(f"{where}: expected a {{source: {{model: {{order: ...}}}}}} object")
-    return table
+    return dict(check_table(table, where))  # every leaf printable: numbers, no NaN
 
 
 def read_table_at(
@@ -43,7 +42,14 @@ def read_table_at(
                 f"{file_path}: no metrics in the working tree; run `retrograde run` first "
                 "(or pass --dir/--path)"
             )
-        return _parse(file_path.read_text(encoding="utf-8"), str(file_path))
+        try:
+            text = file_path.read_bytes().decode("utf-8")
+        except UnicodeDecodeError as exc:
+            raise DataError(
+                f"{file_path}: not UTF-8 (byte offset {exc.start}); metrics.json is written "
+                "as UTF-8 JSON by `retrograde run`: regenerate it"
+            ) from None
+        return _parse(text, str(file_path))
     root = git_toplevel(repo_dir)
     try:
         inside = file_path.resolve().relative_to(root).as_posix()

@@ -11,6 +11,10 @@ function of the package data and the ``--source`` paths; :func:`install` then wr
 - an existing file with identical content is left alone, so running ``init`` twice is a
   no-op; an existing file with other content stops everything, before anything is written,
   unless ``force`` is given;
+- even with ``force`` a changed config file (``conf/retrograde/``) is never overwritten:
+  it is the user's, so it is kept and reported (delete it to get the packaged one back);
+  ``force`` replaces a changed stage file only when git has its content committed, so
+  edits git does not hold stop everything instead of being lost;
 - ignore rules are *added* to ``pipelines/retrograde/.gitignore`` and ``.dvcignore``
   (DVC appends its own entries to the first, a user may add to either, so they are merged
   line by line, never compared whole).
@@ -23,7 +27,7 @@ differs from the template only inside that region counts as unchanged.
 from __future__ import annotations
 
 import re
-from collections.abc import Iterable, Sequence
+from collections.abc import Collection, Iterable, Sequence
 from dataclasses import dataclass, field
 from importlib import resources
 from importlib.resources.abc import Traversable
@@ -35,7 +39,7 @@ import yaml
 from ..config import CONF_DIR, DVC_FILE, PIPELINE_DIR
 from ..data import atomic_write_bytes
 from ..errors import HostRepoError
-from ._repo import HostRepo
+from ._repo import HostRepo, run_git
 
 __all__ = [
     "DVCIGNORE",
@@ -80,10 +84,14 @@ _MANAGED_BLOCK = re.compile(rb"^[ \t]*# >>>[^\n]*\n.*?^[ \t]*# <<<[^\n]*$", re.M
 
 @dataclass
 class InstallResult:
-    """What :func:`install` did, as host-relative paths."""
+    """What :func:`install` did, as host-relative paths.
+
+    ``kept`` lists changed config files that ``force`` left as they are.
+    """
 
     written: list[PurePosixPath] = field(default_factory=list)
     unchanged: list[PurePosixPath] = field(default_factory=list)
+    kept: list[PurePosixPath] = field(default_factory=list)
 
 
 def _package_tree(node: Traversable, prefix: PurePosixPath) -> dict[PurePosixPath, bytes]:
@@ -160,34 +168,70 @@ def _leading_comments(lines: Iterable[str]) -> Iterable[str]:
 
 
 def install(
-    host: HostRepo, files: dict[PurePosixPath, bytes], *, force: bool = False
+    host: HostRepo,
+    files: dict[PurePosixPath, bytes],
+    *,
+    force: bool = False,
+    must_write: Collection[PurePosixPath] = (),
 ) -> InstallResult:
     """Write ``files`` into the host, plus the ignore rules; all-or-nothing.
+
+    Parameters
+    ----------
+    force : bool
+        Install around changed files: a changed config file is kept (see ``kept`` of the
+        result), a changed stage file is replaced if git has its content committed.
+    must_write : collection of paths
+        Config files whose planned content was asked for (``init --source`` rewrites the
+        corpus source config): a changed one is refused rather than kept.
 
     Raises
     ------
     HostRepoError
-        A planned path exists with other content (and ``force`` is false), is a folder, or
-        leads outside ``conf/retrograde/`` or ``pipelines/retrograde/`` (for example through a
-        symbolic link). Nothing has been written when this is raised.
+        A planned path exists with other content (without ``force``; or with it, a config
+        file in ``must_write``, or a stage file with edits git has not committed), is a
+        folder, or leads outside ``conf/retrograde/`` or ``pipelines/retrograde/`` (for
+        example through a symbolic link). Nothing has been written when this is raised.
     """
     root = host.root.resolve()
     result = InstallResult()
     to_write: dict[PurePosixPath, bytes] = {}
+    changed: list[PurePosixPath] = []
     for relative, content in sorted(files.items()):
         target = _checked_target(root, relative)
         if target.is_dir():
             raise HostRepoError(f"{relative} is a folder where init installs a file; move it away")
-        if target.exists():
-            if _same(relative, target.read_bytes(), content):
-                result.unchanged.append(relative)
-                continue
-            if not force:
-                raise HostRepoError(
-                    f"{relative} already exists in {root} with other content; nothing was "
-                    "written; rerun with --force to overwrite it (and every other changed file)"
-                )
-        to_write[relative] = content
+        if not target.exists():
+            to_write[relative] = content
+        elif _same(relative, target.read_bytes(), content):
+            result.unchanged.append(relative)
+        else:
+            changed.append(relative)
+    asked = [path for path in changed if path in must_write and path.is_relative_to(CONF_DIR)]
+    if asked:
+        raise HostRepoError(
+            f"{asked[0]} already exists in {root} with other content; init never overwrites "
+            "your config (not even with --force), so nothing was written; set its files and "
+            "deps there, or delete it and rerun init --source"
+        )
+    if changed and not force:
+        others = f" (and {len(changed) - 1} other file(s))" if len(changed) > 1 else ""
+        raise HostRepoError(
+            f"{changed[0]} already exists in {root} with other content{others}; nothing was "
+            f"written; rerun with --force to install the rest: it keeps your changed files in "
+            f"{CONF_DIR}/ and replaces a changed {DVC_FILE} only if git has it committed"
+        )
+    for relative in changed:
+        if relative.is_relative_to(CONF_DIR):
+            result.kept.append(relative)
+        elif _committed(host, relative):
+            to_write[relative] = files[relative]
+        else:
+            raise HostRepoError(
+                f"{relative} has edits git has not committed and --force would replace them; "
+                f"nothing was written; commit the file (or move it away) and rerun "
+                "`retrograde init --force`"
+            )
     for relative, rules, comment in _MERGED:
         target = _checked_target(root, relative)
         existing = target.read_bytes() if target.is_file() else None
@@ -218,6 +262,17 @@ def _merge_lines(existing: bytes | None, rules: Sequence[str], comment: str) -> 
     if text and not text.endswith("\n"):
         text += "\n"
     return (text + comment + "\n" + "".join(f"{rule}\n" for rule in missing)).encode("utf-8")
+
+
+def _committed(host: HostRepo, relative: PurePosixPath) -> bool:
+    """Whether git holds the file's current content (tracked, unmodified, not ignored)."""
+    status = run_git(
+        host.root, ["status", "--porcelain", "--ignored", "--", relative.as_posix()], check=False
+    )
+    tracked = run_git(
+        host.root, ["ls-files", "--error-unmatch", "--", relative.as_posix()], check=False
+    )
+    return status.returncode == 0 and not status.stdout.strip() and tracked.returncode == 0
 
 
 def _same(relative: PurePosixPath, existing: bytes, planned: bytes) -> bool:

@@ -52,8 +52,9 @@ def render_dvc_yaml(text: str, config: RetrogradeConfig, wdir_to_root: str = WDI
         begin, end = lines.index(UNITS_BEGIN), lines.index(UNITS_END)
     except ValueError:
         raise HostRepoError(
-            "pipelines/retrograde/dvc.yaml has no units markers; reinstall it with "
-            "`retrograde init --force` (your conf/retrograde/ is kept)"
+            "pipelines/retrograde/dvc.yaml has no units markers; commit it (or move it away) "
+            "and reinstall it with `retrograde init --force`, which keeps every changed file "
+            "in conf/retrograde/ as it is"
         ) from None
     block = [_quote_path_line(line) for line in _units_block(config, wdir_to_root)]
     return "\n".join([*lines[: begin + 1], *block, *lines[end:]]) + "\n"

@@ -54,7 +54,7 @@ __all__ = [
     "verify_bijection",
 ]
 
-registry: Registry[Order] = Registry("order", "retrograde.orders")
+registry: Registry[Order] = Registry("order", "retrograde.orders", Order)
 for _order in BUILTIN_ORDERS:
     registry.register(_order.name)(_order)
 registry.register("identity")(Forward)

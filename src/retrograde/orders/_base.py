@@ -13,6 +13,7 @@ from typing import Any, ClassVar
 import numpy as np
 
 from ..data import SequenceSet
+from ..errors import PluginError
 
 __all__ = ["Order", "unit_positions"]
 
@@ -66,10 +67,15 @@ class Order:
 
         Each unit's indices stay inside that unit.
         """
-        parts = [
-            self.positions(unit) + start
-            for unit, start in zip(units, units.offsets[:-1], strict=True)
-        ]
+        parts = []
+        for unit, start in zip(units, units.offsets[:-1], strict=True):
+            positions = np.asarray(self.positions(unit))
+            if positions.dtype.kind not in "iu":  # astype would truncate 0.5 to 0 silently
+                raise PluginError(
+                    f"positions returned {positions.dtype} positions; an order returns int64 "
+                    "indices into the unit"
+                )
+            parts.append(positions + start)
         return np.concatenate(parts).astype(np.int64) if parts else np.zeros(0, np.int64)
 
     def inverse_positions_set(self, reordered: SequenceSet) -> np.ndarray:

@@ -12,7 +12,7 @@ from typing import Any
 import numpy as np
 
 from ..data import SequenceSet
-from ..errors import BijectionError
+from ..errors import BijectionError, PluginError, RetrogradeError
 
 __all__ = ["verify_bijection"]
 
@@ -57,12 +57,38 @@ def verify_bijection(
             "apply/invert or choose another order"
         )
 
-    if not hasattr(order, "apply_set"):  # a duck-typed custom order: one unit at a time
-        _check_each_unit(order, units, fail)
-        return
-    positions = np.asarray(order.positions_set(units))
-    _check_positions(positions, units, fail)
-    _check_apply_and_invert(order, positions, units, fail)
+    try:
+        if not hasattr(order, "apply_set"):  # a duck-typed custom order: one unit at a time
+            _check_each_unit(order, units, fail)
+            return
+        positions = np.asarray(order.positions_set(units))
+        _check_index_dtype(positions, "positions_set")
+        _check_positions(positions, units, fail)
+        _check_apply_and_invert(order, positions, units, fail)
+    except RetrogradeError as exc:
+        if isinstance(exc, PluginError) and not str(exc).startswith("order "):
+            raise PluginError(f"order {order_name!r} ({_class_path(order)}) {exc}") from exc
+        raise
+    except Exception as exc:  # the order's own code failed: one line, not a traceback
+        if type(order).__module__.split(".")[0] == "retrograde":
+            raise  # a bug of ours: keep the traceback
+        raise PluginError(
+            f"order {order_name!r} ({_class_path(order)}) raised {type(exc).__name__}: {exc}; "
+            "fix the order's code (--debug shows the traceback)"
+        ) from exc
+
+
+def _class_path(order: Any) -> str:
+    return f"{type(order).__module__}.{type(order).__qualname__}"
+
+
+def _check_index_dtype(positions: np.ndarray, method: str) -> None:
+    """Positions are integer indices; anything else breaks the order's contract."""
+    if positions.dtype.kind not in "iu":
+        raise PluginError(
+            f"{method} returned {positions.dtype} positions; an order returns int64 flat "
+            "indices (reordered position k holds natural index result[k])"
+        )
 
 
 Fail = Callable[[int, str], BijectionError]

@@ -8,6 +8,7 @@ drawn (:func:`write_all`).
 
 - :func:`write_all` — ``metrics.json``, ``report.md`` and ``plots/`` in one folder;
 - :func:`format_table` — the table as ``markdown``, ``json`` or ``csv`` text;
+- :func:`check_table` — a table read from a file, refused in one line unless printable;
 - :func:`table_warnings` — cautions that follow from the table itself;
 - :func:`compare_tables`, :func:`format_changes` — what changed between two tables.
 """
@@ -16,15 +17,26 @@ from __future__ import annotations
 
 from ._compare import STATUSES, CellChange, compare_tables, format_changes
 from ._markdown import CAUTIONS, LEAF_FIELDS, is_reference_leaf, render_report, table_rows
-from ._write import FORMATS, STAGING, format_table, recover_report, table_warnings, write_all
+from ._write import (
+    FORMATS,
+    REQUIRED_FIELDS,
+    STAGING,
+    check_table,
+    format_table,
+    recover_report,
+    table_warnings,
+    write_all,
+)
 
 __all__ = [
     "CAUTIONS",
     "FORMATS",
     "LEAF_FIELDS",
+    "REQUIRED_FIELDS",
     "STAGING",
     "STATUSES",
     "CellChange",
+    "check_table",
     "compare_tables",
     "format_changes",
     "format_table",

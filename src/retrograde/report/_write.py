@@ -11,6 +11,7 @@ from __future__ import annotations
 import csv
 import io
 import json
+import math
 import os
 import shutil
 from collections.abc import Mapping, Sequence
@@ -18,7 +19,7 @@ from pathlib import Path
 from typing import Any
 
 from ..data import atomic_write_json, atomic_write_text
-from ..errors import ConfigError
+from ..errors import ConfigError, DataError
 from ..validation import check_choice
 from ._markdown import (
     Table,
@@ -29,7 +30,16 @@ from ._markdown import (
     table_rows,
 )
 
-__all__ = ["FORMATS", "STAGING", "format_table", "recover_report", "table_warnings", "write_all"]
+__all__ = [
+    "FORMATS",
+    "REQUIRED_FIELDS",
+    "STAGING",
+    "check_table",
+    "format_table",
+    "recover_report",
+    "table_warnings",
+    "write_all",
+]
 
 FORMATS = ("markdown", "json", "csv")
 #: where a new set of results is written before it replaces the published one (the name
@@ -50,6 +60,47 @@ def _deterministic_models(models: Mapping[str, Mapping[str, Mapping[str, Any]]])
         if spreads and all(spread == 0 for spread in spreads):
             found.append(model)
     return found
+
+
+#: fields every leaf of a gap table holds (the reference order's too, as zeros)
+REQUIRED_FIELDS = ("bits_per_token", "gap_pct", "gap_pct_low", "gap_pct_high")
+
+
+def check_table(table: Any, where: str) -> Table:
+    """``table`` if it is a gap table every command can print; else one-line DataError.
+
+    A table is ``{source: {model: {order: leaf}}}``; every leaf holds the numbers of
+    :data:`REQUIRED_FIELDS`, and no number anywhere in a leaf is NaN or infinite (JSON has
+    neither; ``metrics.json`` is written without them).
+    """
+
+    def refuse(what: str) -> DataError:
+        return DataError(
+            f"{where}: {what}; it is not a gap table written by `retrograde run` (regenerate "
+            "it with `retrograde run`, or fix the file)"
+        )
+
+    shape = "{source: {model: {order: {field: number}}}}"
+    if not isinstance(table, Mapping):
+        raise refuse(f"expected {shape}, got {type(table).__name__}")
+    for source, models in table.items():
+        if not isinstance(models, Mapping):
+            raise refuse(f"source {source!r} holds {type(models).__name__}, expected {shape}")
+        for model, orders in models.items():
+            if not isinstance(orders, Mapping):
+                raise refuse(f"{source}.{model} holds {type(orders).__name__}, expected {shape}")
+            for order, leaf in orders.items():
+                cell = f"cell {source}.{model}.{order}"
+                if not isinstance(leaf, Mapping):
+                    raise refuse(f"{cell} holds {type(leaf).__name__}, expected a mapping")
+                for key in REQUIRED_FIELDS:
+                    value = leaf.get(key)
+                    if isinstance(value, bool) or not isinstance(value, (int, float)):
+                        raise refuse(f"{cell} has no numeric {key} (found {value!r})")
+                for key, value in leaf.items():
+                    if isinstance(value, float) and not math.isfinite(value):
+                        raise refuse(f"{cell} has {key}={value!r}")
+    return table  # type: ignore[return-value]
 
 
 def table_warnings(table: Table) -> list[str]:

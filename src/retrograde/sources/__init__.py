@@ -23,7 +23,13 @@ from __future__ import annotations
 from typing import Any
 
 from ..registry import Registry
-from ._base import CalibrationSource, EncodedFileSource, FileSource, Source
+from ._base import (
+    CalibrationSource,
+    EncodedFileSource,
+    FileSource,
+    Source,
+    find_lone_carriage_return,
+)
 from ._units import SourceUnits, source_units
 from .automaton import AutomatonSource
 from .demo import DemoSource
@@ -48,6 +54,7 @@ __all__ = [
     "SourceUnits",
     "TextSource",
     "TokensSource",
+    "find_lone_carriage_return",
     "make",
     "names",
     "registry",
@@ -65,7 +72,7 @@ _BUILTIN: tuple[type[Source], ...] = (
     AutomatonSource,
 )
 
-registry: Registry[Source] = Registry("source", "retrograde.sources")
+registry: Registry[Source] = Registry("source", "retrograde.sources", Source)
 for _source in _BUILTIN:
     registry.register(_source.name)(_source)
 

@@ -26,7 +26,7 @@ from typing import Any, TextIO
 import numpy as np
 
 from ..config import ModelConfig, cell_dir, load_params, order_dir
-from ..data import SPLITS, SequenceSet, atomic_write_bytes, atomic_write_json
+from ..data import SPLITS, SequenceSet, atomic_write_bytes, atomic_write_json, open_for_writing
 from ..errors import FitError, RetrogradeError
 from . import run_stage
 
@@ -101,9 +101,15 @@ def _body(args: argparse.Namespace) -> None:
     cell = wdir / str(cell_dir(args.source, args.model, args.order, args.seed))
     name = f"{args.source}/{args.model}/{args.order}/seed{args.seed}"
     cell.mkdir(parents=True, exist_ok=True)
+    if not cell.resolve().is_relative_to(wdir):
+        raise FitError(
+            f"cell {name}: its folder {cell.relative_to(wdir).as_posix()} leads outside "
+            f"{wdir} through a symbolic link; remove the link and rerun"
+        )
     log_path = cell / "fit.log"
-    # The log is written as the fit goes (not atomically) so that a crash leaves it behind.
-    with log_path.open("w", encoding="utf-8") as log:
+    # The log is written as the fit goes (not atomically) so that a crash leaves it behind;
+    # a symbolic link in its place is replaced, never written through.
+    with open_for_writing(log_path) as log:
         try:
             spec = load_params(wdir).study.models[args.model]
             data = wdir / str(order_dir(args.source, args.order))

@@ -16,9 +16,16 @@ from typing import Any
 
 import numpy as np
 
-from ..config import SourceConfig, covered, load_params, units_dir
+from ..config import (
+    SourceConfig,
+    check_file_types,
+    check_repo_path,
+    covered,
+    load_params,
+    units_dir,
+)
 from ..data import atomic_dir, atomic_write_json, tokenizers, working_directory
-from ..errors import DataError
+from ..errors import DataError, PluginError, RetrogradeError
 from . import run_stage
 
 __all__ = ["configured_units", "main"]
@@ -36,17 +43,27 @@ def configured_units(name: str, spec: SourceConfig, root: Path) -> Any:
         if spec.tokenizer is not None:
             tokenizer = tokenizers.make(spec.tokenizer.name, **spec.tokenizer.params)
         units, calibration = spec.units, spec.calibration
-        made = sources.source_units(
-            source,
-            fractions=spec.split.fractions,
-            salt=spec.split.salt,
-            tokenizer=tokenizer,
-            mode=None if units is None else units.mode,
-            window=None if units is None else units.window,
-            remainder="drop" if units is None else units.remainder,
-            n_units=1000 if calibration is None else calibration.n_units,
-            seed=0 if calibration is None else calibration.seed,
-        )
+        try:
+            made = sources.source_units(
+                source,
+                fractions=spec.split.fractions,
+                salt=spec.split.salt,
+                tokenizer=tokenizer,
+                mode=None if units is None else units.mode,
+                window=None if units is None else units.window,
+                remainder="drop" if units is None else units.remainder,
+                n_units=1000 if calibration is None else calibration.n_units,
+                seed=0 if calibration is None else calibration.seed,
+            )
+        except RetrogradeError:
+            raise
+        except Exception as exc:
+            if type(source).__module__.split(".")[0] == "retrograde":
+                raise  # a bug of ours: keep the traceback
+            raise PluginError(
+                f"study.sources.{name}: source {spec.name!r} raised {type(exc).__name__} "
+                f"while reading: {exc}; fix the source's code (--debug shows the traceback)"
+            ) from exc
     for split in ("train", "test"):
         if len(made.splits[split]) == 0:
             raise DataError(
@@ -57,7 +74,13 @@ def configured_units(name: str, spec: SourceConfig, root: Path) -> Any:
 
 
 def _check_deps(name: str, source: Any, deps: list[str], root: Path) -> None:
-    """A file DVC does not track would not trigger a rerun when it changes: refuse it."""
+    """A file DVC does not track would not trigger a rerun when it changes: refuse it.
+
+    The rules composition applies to the files a source reads apply again here, on the
+    files as they are now: a name DVC or YAML would misread, a file of ``.git/`` or
+    ``.dvc/``, anything but a regular file (a FIFO would block the stage).
+    """
+    where = f"study.sources.{name}"
     for path in source.paths():
         resolved = Path(path).resolve()
         inside = resolved.is_relative_to(root)
@@ -66,6 +89,9 @@ def _check_deps(name: str, source: Any, deps: list[str], root: Path) -> None:
                 f"source {name!r} reads {path} but study.sources.{name}.deps does not list "
                 "it; add it and run `retrograde run` again"
             )
+        relative = resolved.relative_to(root).as_posix()
+        check_repo_path(where, relative)
+        check_file_types(where, resolved, relative)
 
 
 def _body(args: argparse.Namespace) -> None:
