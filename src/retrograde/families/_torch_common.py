@@ -54,7 +54,13 @@ __all__ = [
     "torch_session",
 ]
 
-TORCH_HINT = "pip install torch==2.13.0 && pip install 'retrograde[torch]'"
+#: what to run, in a checkout or an installed package alike: the ``torch`` extra adds
+#: nothing but this wheel (``pip install 'retrograde[torch]'`` would look retrograde itself
+#: up on the package index instead of using the checkout)
+TORCH_HINT = (
+    "pip install torch==2.13.0 (the CPU build; in a retrograde checkout `make test` also "
+    "puts it in .venv)"
+)
 
 #: training parameters shared by every torch family, with their defaults
 TRAINING_DEFAULTS: dict[str, Any] = {

@@ -1,7 +1,6 @@
 """Recurrent families ``gru`` and ``lstm``: embedding -> recurrent layers -> softmax.
 
-Both need the optional PyTorch extra (``pip install torch==2.13.0`` then
-``pip install 'retrograde[torch]'``); without it, constructing one raises a one-line
+Both need PyTorch (``pip install torch==2.13.0``, the CPU build); without it, constructing one raises a one-line
 :class:`~retrograde.errors.MissingDependencyError`. Training and the window scheme are
 shared with ``transformer`` (see :mod:`retrograde.families._torch_family`): a network
 reads at most ``context`` positions, units longer than that are scored with sliding windows

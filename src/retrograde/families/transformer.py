@@ -2,8 +2,7 @@
 
 Pre-norm blocks (causal self-attention, then a GELU MLP four times as wide), learned or
 sinusoidal absolute positions, a linear softmax head over ``vocab_size + 1`` outcomes.
-Needs the optional PyTorch extra (``pip install torch==2.13.0`` then
-``pip install 'retrograde[torch]'``). A network reads at most ``context`` positions; longer
+Needs PyTorch (``pip install torch==2.13.0``, the CPU build). A network reads at most ``context`` positions; longer
 units are scored with sliding windows that condition only on earlier tokens of the same
 unit (:mod:`retrograde.families._torch_common`).
 """
