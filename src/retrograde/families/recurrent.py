@@ -30,7 +30,7 @@ class _Recurrent(TorchFamily):
     dropout : float
         On embeddings, between layers and on outputs; 0 disables.
     context, stride, batch_size, epochs, lr, weight_decay, warmup, min_lr_ratio, grad_clip,
-    patience, token_budget, threads, bf16, progress
+    patience, token_budget, threads, bf16, progress, device
         Training and scoring; documented in ``docs/torch.md``.
     """
 
@@ -68,6 +68,7 @@ class _Recurrent(TorchFamily):
         threads: int = 1,
         bf16: bool = False,
         progress: bool = True,
+        device: str = "cpu",
     ) -> None:
         super().__init__(
             embedding=embedding,
@@ -88,6 +89,7 @@ class _Recurrent(TorchFamily):
             threads=threads,
             bf16=bf16,
             progress=progress,
+            device=device,
         )
 
     def _validate_network(self, owner: str, params: dict[str, Any]) -> None:

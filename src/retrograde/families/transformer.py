@@ -34,7 +34,7 @@ class Transformer(TorchFamily):
     context : int
         Positions one window holds (sweep it for context-length studies).
     stride, batch_size, epochs, lr, weight_decay, warmup, min_lr_ratio, grad_clip,
-    patience, token_budget, threads, bf16, progress
+    patience, token_budget, threads, bf16, progress, device
         Training and scoring; documented in ``docs/torch.md``.
     """
 
@@ -75,6 +75,7 @@ class Transformer(TorchFamily):
         threads: int = 1,
         bf16: bool = False,
         progress: bool = True,
+        device: str = "cpu",
     ) -> None:
         super().__init__(
             width=width,
@@ -96,6 +97,7 @@ class Transformer(TorchFamily):
             threads=threads,
             bf16=bf16,
             progress=progress,
+            device=device,
         )
 
     def _validate_network(self, owner: str, params: dict[str, Any]) -> None:
