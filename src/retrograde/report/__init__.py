@@ -15,11 +15,19 @@ drawn (:func:`write_all`).
 from __future__ import annotations
 
 from ._compare import STATUSES, CellChange, compare_tables, format_changes
-from ._markdown import CAUTIONS, LEAF_FIELDS, is_reference_leaf, render_report, table_rows
+from ._markdown import (
+    CAUTIONS,
+    CONCLUSION,
+    LEAF_FIELDS,
+    is_reference_leaf,
+    render_report,
+    table_rows,
+)
 from ._write import FORMATS, format_table, table_warnings, write_all
 
 __all__ = [
     "CAUTIONS",
+    "CONCLUSION",
     "FORMATS",
     "LEAF_FIELDS",
     "STATUSES",

@@ -14,6 +14,7 @@ from .. import __version__
 
 __all__ = [
     "CAUTIONS",
+    "CONCLUSION",
     "LEAF_FIELDS",
     "fields_present",
     "is_reference_leaf",
@@ -28,11 +29,23 @@ Table = Mapping[str, Mapping[str, Mapping[str, Mapping[str, Any]]]]
 CAUTIONS = (
     "A gap belongs to this model family, this amount of data and this training budget, "
     "not to the language or the data source as such.",
-    "A gap whose interval contains 0 is not a finding; only the `significant` column "
-    "(Holm-adjusted p below 0.05) marks gaps unlikely to be chance.",
+    "A gap whose interval contains 0 is not a finding, and not evidence that the order "
+    "makes no difference either: only the `significant` column marks gaps unlikely to be "
+    "chance, and its interval is the simultaneous one shown in the table, not the per-cell "
+    "interval in metrics.json.",
     "Small or under-trained models can show a gap with the opposite sign to larger ones.",
     "With fewer than 3 seeds the interval resamples test units only and ignores training "
     "randomness.",
+)
+
+#: what a reader may conclude from a table with simultaneous intervals (one sentence)
+CONCLUSION = (
+    "Intervals are simultaneous: each row's interval is the bootstrap interval at the "
+    "level (column *level*) at which Holm's procedure judged that row, so a row is "
+    "significant exactly when its interval excludes 0, and you may conclude, with at most "
+    "a 5% chance that any one of them is wrong, that every significant row's order "
+    "changes the test loss in the direction of its sign; a row that is not significant "
+    "shows no detectable gap, which is not evidence that there is none."
 )
 
 #: CSV and Markdown column order; later fields appear only when some leaf has them
@@ -44,6 +57,10 @@ LEAF_FIELDS = (
     "gap_pct",
     "gap_pct_low",
     "gap_pct_high",
+    "gap_pct_simultaneous_low",
+    "gap_pct_simultaneous_high",
+    "simultaneous_level",
+    "gap_pct_simultaneous_extended",
     "p_value",
     "p_value_sign_flip",
     "p_value_holm",
@@ -111,25 +128,56 @@ def _markdown_source(source: str, models: Mapping[str, Any], level: float | None
         ("excess_bits_per_token", "excess bits/token"),
     ]
     header += [title for key, title in optional if key in fields]
-    header += [f"gap % [{_interval_title(level)}]", "seed spread %", "p (Holm)", "significant"]
+    simultaneous = "gap_pct_simultaneous_low" in fields
+    if simultaneous:
+        header += ["gap % [simultaneous interval]", "level"]
+    else:
+        header += [f"gap % [{_interval_title(level)}]"]
+    header += ["seed spread %", "p (Holm)", "significant"]
     lines = ["| " + " | ".join(header) + " |", "|" + "---|" * len(header)]
+    stretched = False
     for row in rows:
         reference = is_reference_leaf(row)
         cells = [f"`{row['model']}`", f"`{row['order']}`", _number(row["bits_per_token"], ".4f")]
         cells += [_number(row.get(key), ".4f") for key, _ in optional if key in fields]
         if reference:
-            cells += ["reference", "", "", ""]
+            cells += ["reference", *([""] * (len(header) - len(cells) - 1))]
         else:
-            interval = f"[{row['gap_pct_low']:+.2f}, {row['gap_pct_high']:+.2f}]"
             p_holm = row.get("p_value_holm", row.get("p_value"))
+            if simultaneous and "gap_pct_simultaneous_low" in row:
+                low, high = row["gap_pct_simultaneous_low"], row["gap_pct_simultaneous_high"]
+                mark = "†" if row.get("gap_pct_simultaneous_extended") else ""
+                stretched = stretched or bool(mark)
+                cells += [
+                    f"{row['gap_pct']:+.2f} [{low:+.2f}, {high:+.2f}]{mark}",
+                    _level_text(row.get("simultaneous_level")),
+                ]
+            else:
+                interval = f"[{row['gap_pct_low']:+.2f}, {row['gap_pct_high']:+.2f}]"
+                cells += [f"{row['gap_pct']:+.2f} {interval}"]
+                cells += [_level_text(level)] if simultaneous else []
             cells += [
-                f"{row['gap_pct']:+.2f} {interval}",
                 _number(row.get("seed_spread_pct"), ".2f"),
                 _p_text(p_holm),
                 "**yes**" if row.get("significant") else "",
             ]
         lines.append("| " + " | ".join(cells) + " |")
+    if stretched:
+        lines += [
+            "",
+            "† interval stretched to 0: the bootstrap alone excludes 0 at this level, but the "
+            "test that decided the row (sign flips over units) does not.",
+        ]
     return f"### Source `{source}`\n\n" + "\n".join(lines) + "\n"
+
+
+def _level_text(level: float | None) -> str:
+    """``0.996875`` -> ``99.69%``: enough digits to tell Holm's steps apart."""
+    return "–" if level is None else f"{100 * level:.2f}%"
+
+
+def _has_simultaneous(table: Table) -> bool:
+    return any("gap_pct_simultaneous_low" in row for row in table_rows(table))
 
 
 def markdown_table(table: Table, level: float | None = None) -> str:
@@ -177,11 +225,13 @@ def render_report(
         parts += ["> **Warnings**", ">"] + [f"> - {w}" for w in warnings] + [""]
     parts += [
         "Each gap is `100 * (NLL(order) / NLL(reference) - 1)` on the same test units, with a "
-        f"{_interval_title(level)} from a bootstrap over units and seeds, and a p-value from a "
+        f"{_interval_title(level) if not _has_simultaneous(table) else 'simultaneous interval'}"
+        " from a bootstrap over units and seeds, and a p-value from a "
         "paired sign-flip test on units (with 3 or more seeds, no smaller than the bootstrap's "
         "own p-value), Holm-adjusted over every gap in this table. Positive gaps mean the "
         "order is harder to learn than the reference.",
         "",
+        *([CONCLUSION, ""] if _has_simultaneous(table) else []),
         markdown_table(table, level),
     ]
     if spans:

@@ -107,9 +107,17 @@ def _check_floor(
 
 
 def _model_results(
-    wdir: Path, source: str, model: str, config: RetrogradeConfig, test: SequenceSet, floors: Any
+    wdir: Path,
+    source: str,
+    model: str,
+    config: RetrogradeConfig,
+    test: SequenceSet,
+    floors: Any,
+    replicates: dict[str, np.ndarray] | None = None,
 ) -> tuple[dict[str, Any], dict[str, Ragged], dict[str, Any]]:
-    """One model on one source: (its table leaves, natural-order losses, curves) per order."""
+    """One model on one source: (its table leaves, natural-order losses, curves) per order.
+
+    ``replicates``, when given, receives each order's bootstrap gaps."""
     study, stats_config = config.study, config.stats
     seeds = [int(s) for s in study.seeds]
     unit_nll: dict[str, np.ndarray] = {}
@@ -130,6 +138,7 @@ def _model_results(
         level=stats_config.level,
         n_boot=stats_config.n_boot,
         seed=stats_config.seed,
+        bootstrap_gaps=replicates,
     )
     return leaves, natural, curves
 
@@ -143,6 +152,7 @@ def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
     profiles: dict[str, Any] = {}
     spans: dict[str, Any] = {}
     curves: dict[str, Any] = {}
+    replicates: dict[str, dict[str, dict[str, np.ndarray]]] = {}
     data_hashes: dict[str, str] = {}
     for source in study.sources:
         folder = wdir / str(units_dir(source))
@@ -152,8 +162,9 @@ def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
         floors = np.load(folder / "floors.npy") if (folder / "floors.npy").is_file() else None
         table[source], profiles[source], curves[source] = {}, {}, {}
         for model in study.models:
+            draws = replicates.setdefault(source, {}).setdefault(model, {})
             leaves, natural, model_curves = _model_results(
-                wdir, source, model, config, test, floors
+                wdir, source, model, config, test, floors, draws
             )
             table[source][model], curves[source][model] = leaves, model_curves
             profiles[source][model] = stats.position_profile(
@@ -163,6 +174,7 @@ def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
                 named = {k: (int(v[0]), int(v[1])) for k, v in info["spans"].items()}
                 spans.setdefault(source, {})[model] = stats.span_breakdown(natural, named)
     stats.adjust_holm(table, reference_order=reference)
+    stats.simultaneous_intervals(table, replicates, reference_order=reference)
     warning = stats.seed_warning(len(study.seeds))
     return {
         "table": table,

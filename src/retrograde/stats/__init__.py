@@ -7,7 +7,8 @@ every number written out goes through :func:`rounded`.
 - scoring: :func:`unit_nll`, :func:`bits_per_token`, :func:`bits_per_byte`,
   :func:`natural_order_losses` (per-position losses mapped back to the natural order);
 - gaps: :func:`summarize_model` (bits per token, gap, interval, p-values per order),
-  :func:`adjust_holm`, :func:`below_floor`, the report's cautions;
+  :func:`adjust_holm`, :func:`simultaneous_intervals` (intervals at the level Holm judged
+  each row), :func:`below_floor`, the report's cautions;
 - profiles: :func:`position_profile`, :func:`span_breakdown`, :func:`segment_breakdown`;
 - resampling kernels: :func:`bootstrap_totals`, :func:`sign_flip_pvalue`,
   :func:`bootstrap_pvalue`, :func:`holm`.
@@ -37,6 +38,7 @@ from ._gaps import (
 from ._numbers import SIGNIFICANT_DIGITS, rounded
 from ._profiles import position_profile, segment_breakdown, span_breakdown
 from ._scoring import bits_per_byte, bits_per_token, natural_order_losses, unit_nll
+from ._simultaneous import simultaneous_intervals
 
 __all__ = [
     "FLOOR_Z",
@@ -60,6 +62,7 @@ __all__ = [
     "seed_warning",
     "segment_breakdown",
     "sign_flip_pvalue",
+    "simultaneous_intervals",
     "span_breakdown",
     "summarize_model",
     "unit_nll",
