@@ -14,7 +14,7 @@ drawn (:func:`write_all`).
 
 from __future__ import annotations
 
-from ._compare import STATUSES, CellChange, compare_tables, format_changes
+from ._compare import CHANGE_FORMATS, STATUSES, CellChange, compare_tables, format_changes
 from ._markdown import (
     CAUTIONS,
     CONCLUSION,
@@ -27,6 +27,7 @@ from ._write import FORMATS, format_table, table_warnings, write_all
 
 __all__ = [
     "CAUTIONS",
+    "CHANGE_FORMATS",
     "CONCLUSION",
     "FORMATS",
     "LEAF_FIELDS",
