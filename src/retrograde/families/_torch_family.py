@@ -188,6 +188,7 @@ class TorchFamily(Family):
         if run.best_state is not None:
             self.network_.load_state_dict(run.best_state)
         # Wall-clock figures stay out of learning_curve_, which must be deterministic.
+        self.steps_ = run.step
         self.fit_seconds_ = time.perf_counter() - started
         self.tokens_per_second_ = run.tokens_seen / max(self.fit_seconds_, 1e-9)
         self.tokens_seen_ = run.tokens_seen
@@ -318,6 +319,10 @@ class TorchFamily(Family):
             for positions, log_softmax in self._forward_windows(stream, windows):
                 probs[unit_of_position[positions]] = np.exp(log_softmax)
         return probs / probs.sum(axis=1, keepdims=True)
+
+    def n_parameters(self) -> int | None:
+        self._check_fitted()
+        return int(sum(p.numel() for p in self.network_.parameters()))
 
     # ------------------------------------------------------------------ persistence
     def _save_state(self, folder: Path) -> None:

@@ -14,8 +14,10 @@ from .. import __version__
 
 __all__ = [
     "CAUTIONS",
+    "CELL_FIELDS",
     "CONCLUSION",
     "LEAF_FIELDS",
+    "markdown_budget",
     "fields_present",
     "is_reference_leaf",
     "markdown_table",
@@ -210,6 +212,79 @@ def _markdown_spans(spans: Mapping[str, Mapping[str, Any]]) -> str:
     return "\n".join(lines)
 
 
+#: ``cells.csv`` columns: one row per fit cell (source, model, order, seed)
+CELL_FIELDS = (
+    "source",
+    "model",
+    "order",
+    "seed",
+    "bits_per_token",
+    "gap_pct",
+    "epochs",
+    "last_valid_bits_per_token",
+    "test_units",
+    "test_tokens",
+    "train_tokens",
+    "steps",
+    "n_params",
+    "cpu_s",
+    "wall_s",
+)
+
+
+def _mean(values: Sequence[Any]) -> float | None:
+    known = [float(v) for v in values if isinstance(v, (int, float)) and not isinstance(v, bool)]
+    return sum(known) / len(known) if known else None
+
+
+def _count_text(value: float | None) -> str:
+    return "–" if value is None else f"{round(value):,}"
+
+
+def _seconds_text(value: float | None) -> str:
+    return "–" if value is None else f"{value:.1f}"
+
+
+def markdown_budget(table: Table, cells: Sequence[Mapping[str, Any]]) -> str:
+    """The report's test-set sizes per source and, per cell averaged over seeds, the fit's
+    parameters, training tokens, steps and times (from each cell's ``budget.json``)."""
+    lines: list[str] = []
+    for source, models in table.items():
+        leaf = next((leaf for orders in models.values() for leaf in orders.values()), {})
+        documents = f", {leaf['documents']:,} documents" if "documents" in leaf else ""
+        lines += [
+            f"### Source `{source}`",
+            "",
+            f"Test set: {leaf.get('units', 0):,} units, {leaf.get('tokens', 0):,} tokens"
+            f"{documents}.",
+            "",
+        ]
+        mine = [c for c in cells if c["source"] == source]
+        if not mine:
+            continue
+        lines += [
+            "| model | order | seeds | parameters | train tokens per fit | steps | "
+            "fit wall s (mean) | fit CPU s (mean) |",
+            "|---|---|---|---|---|---|---|---|",
+        ]
+        for model, orders in models.items():
+            for order in orders:
+                group = [c for c in mine if c["model"] == model and c["order"] == order]
+                cells_text = [
+                    f"`{model}`",
+                    f"`{order}`",
+                    str(len(group)),
+                    _count_text(_mean([c.get("n_params") for c in group])),
+                    _count_text(_mean([c.get("train_tokens") for c in group])),
+                    _count_text(_mean([c.get("steps") for c in group])),
+                    _seconds_text(_mean([c.get("wall_s") for c in group])),
+                    _seconds_text(_mean([c.get("cpu_s") for c in group])),
+                ]
+                lines.append("| " + " | ".join(cells_text) + " |")
+        lines.append("")
+    return "\n".join(lines)
+
+
 def render_report(
     table: Table,
     *,
@@ -218,6 +293,8 @@ def render_report(
     warnings: Sequence[str],
     figures: Sequence[str],
     level: float | None = None,
+    cells: Sequence[Mapping[str, Any]] = (),
+    notes: Sequence[str] = (),
 ) -> str:
     """The text of ``report.md`` (pure: no file access)."""
     parts = ["# Order-ablation gap table", ""]
@@ -234,8 +311,21 @@ def render_report(
         *([CONCLUSION, ""] if _has_simultaneous(table) else []),
         markdown_table(table, level),
     ]
+    if notes:
+        parts += ["## Notes on the models", ""] + [f"- {n}" for n in notes] + [""]
     if spans:
         parts += ["## Loss per span", "", _markdown_spans(spans)]
+    parts += [
+        "## Data and budget",
+        "",
+        "Test units and tokens per source; per cell, averaged over its seeds: numbers the "
+        "model learned, target positions trained on (end markers included), optimizer or "
+        "minibatch steps, and the time to fit and score. Per-seed values, times included, "
+        "are in `cells.csv`; times stay out of `metrics.json`, which is byte-identical for "
+        "the same config and data.",
+        "",
+        markdown_budget(table, cells),
+    ]
     parts += ["## Cautions", ""] + [f"- {c}" for c in CAUTIONS] + [""]
     if figures:
         parts += ["## Figures", ""] + [f"![{Path(f).stem}]({f})" for f in figures] + [""]

@@ -20,6 +20,7 @@ from ..data import atomic_dir, atomic_write_json, atomic_write_text
 from ..errors import ConfigError
 from ..validation import check_choice
 from ._markdown import (
+    CELL_FIELDS,
     Table,
     fields_present,
     is_reference_leaf,
@@ -114,8 +115,10 @@ def write_all(
     provenance: Mapping[str, Any],
     warnings: Sequence[str],
     level: float | None = None,
+    cells: Sequence[Mapping[str, Any]] = (),
+    notes: Sequence[str] = (),
 ) -> None:
-    """Write ``metrics.json``, ``report.md`` and ``plots/`` into ``out_dir``.
+    """Write ``metrics.json``, ``report.md``, ``cells.csv`` and ``plots/`` into ``out_dir``.
 
     Parameters
     ----------
@@ -136,6 +139,11 @@ def write_all(
         Lines shown at the top of ``report.md``.
     level : float, optional
         Confidence level of the intervals in ``table`` (``stats.level``); labels the report.
+    cells : list of dict, optional
+        One row per fit cell (``CELL_FIELDS``): written to ``cells.csv`` and summarized in
+        the report's "Data and budget" section.
+    notes : list of str, optional
+        Lines about single models (e.g. an under-trained one) for the report.
     """
     from . import _plots  # matplotlib is imported only when a report is written
 
@@ -152,6 +160,12 @@ def write_all(
             plot_dir, table=table, profiles=profiles, curves=curves, sweeps=sweeps
         )
     atomic_write_json(out_dir / "metrics.json", table)
+    if cells:
+        buffer = io.StringIO()
+        writer = csv.DictWriter(buffer, list(CELL_FIELDS), lineterminator="\n")
+        writer.writeheader()
+        writer.writerows({key: row.get(key) for key in CELL_FIELDS} for row in cells)
+        atomic_write_text(out_dir / "cells.csv", buffer.getvalue())
     report = render_report(
         table,
         spans=spans,
@@ -159,5 +173,7 @@ def write_all(
         warnings=warnings,
         figures=[f"plots/{name}" for name in figures],
         level=level,
+        cells=cells,
+        notes=notes,
     )
     atomic_write_text(out_dir / "report.md", report)

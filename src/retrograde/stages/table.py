@@ -3,7 +3,8 @@
 ``python -m retrograde.stages.table`` reads ``params.yaml`` and, for every cell the grid
 names (never a glob, so cells left over from a larger grid are ignored), the test
 log-probabilities; it writes ``metrics.json`` (``{source: {model: {order: leaf}}}``),
-``report.md`` and ``plots/`` through :func:`retrograde.report.write_all`.
+``report.md``, ``cells.csv`` (one row per fit cell: per-seed bits and gap, the cell's
+``budget.json``) and ``plots/`` through :func:`retrograde.report.write_all`.
 """
 
 from __future__ import annotations
@@ -46,6 +47,54 @@ def _read_cell(wdir: Path, source: str, model: str, order: str, seed: int) -> tu
             "fit it with `retrograde run`"
         ) from exc
     return values, curve
+
+
+#: what a cell's budget.json holds (written by the fit stage); missing in older cells
+_BUDGET_FIELDS = ("train_tokens", "steps", "cpu_s", "wall_s", "n_params")
+
+
+def _read_budget(wdir: Path, source: str, model: str, order: str, seed: int) -> dict[str, Any]:
+    """The cell's ``budget.json`` (``None`` for every field when an older fit wrote none)."""
+    path = wdir / str(cell_dir(source, model, order, seed)) / "budget.json"
+    found = json.loads(path.read_text(encoding="utf-8")) if path.is_file() else {}
+    return {key: found.get(key) for key in _BUDGET_FIELDS}
+
+
+def _seed_rows(
+    wdir: Path,
+    source: str,
+    model: str,
+    unit_nll: dict[str, np.ndarray],
+    curves: dict[str, Any],
+    seeds: list[int],
+    reference: str,
+    test: SequenceSet,
+) -> list[dict[str, Any]]:
+    """One row per fit cell of one model: per-seed bits and gap, last validation score, budget."""
+    n_tokens = max(int(len(test.tokens)), 1)
+    rows = []
+    for order, losses in unit_nll.items():
+        for row, seed in enumerate(seeds):
+            total, reference_total = float(losses[row].sum()), float(unit_nll[reference][row].sum())
+            scored = [p for p in curves[order][row] if p.get("valid_bits_per_token") is not None]
+            rows.append(
+                {
+                    "source": source,
+                    "model": model,
+                    "order": order,
+                    "seed": seed,
+                    "bits_per_token": stats.rounded(total / np.log(2) / n_tokens),
+                    "gap_pct": stats.rounded(100.0 * (total / reference_total - 1.0)),
+                    "epochs": len(curves[order][row]),
+                    "last_valid_bits_per_token": (
+                        stats.rounded(scored[-1]["valid_bits_per_token"]) if scored else None
+                    ),
+                    "test_units": len(test),
+                    "test_tokens": int(len(test.tokens)),
+                    **_read_budget(wdir, source, model, order, seed),
+                }
+            )
+    return rows
 
 
 def _data_hash(units: SequenceSet) -> str:
@@ -114,10 +163,12 @@ def _model_results(
     test: SequenceSet,
     floors: Any,
     replicates: dict[str, np.ndarray] | None = None,
+    seed_rows: list[dict[str, Any]] | None = None,
 ) -> tuple[dict[str, Any], dict[str, Ragged], dict[str, Any]]:
     """One model on one source: (its table leaves, natural-order losses, curves) per order.
 
-    ``replicates``, when given, receives each order's bootstrap gaps."""
+    ``replicates``, when given, receives each order's bootstrap gaps; ``seed_rows`` one row
+    per fit cell (:func:`_seed_rows`)."""
     study, stats_config = config.study, config.stats
     seeds = [int(s) for s in study.seeds]
     unit_nll: dict[str, np.ndarray] = {}
@@ -140,6 +191,10 @@ def _model_results(
         seed=stats_config.seed,
         bootstrap_gaps=replicates,
     )
+    if seed_rows is not None:
+        seed_rows += _seed_rows(
+            wdir, source, model, unit_nll, curves, seeds, study.reference_order, test
+        )
     return leaves, natural, curves
 
 
@@ -153,6 +208,7 @@ def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
     spans: dict[str, Any] = {}
     curves: dict[str, Any] = {}
     replicates: dict[str, dict[str, dict[str, np.ndarray]]] = {}
+    cells: list[dict[str, Any]] = []
     data_hashes: dict[str, str] = {}
     for source in study.sources:
         folder = wdir / str(units_dir(source))
@@ -164,7 +220,7 @@ def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
         for model in study.models:
             draws = replicates.setdefault(source, {}).setdefault(model, {})
             leaves, natural, model_curves = _model_results(
-                wdir, source, model, config, test, floors, draws
+                wdir, source, model, config, test, floors, draws, cells
             )
             table[source][model], curves[source][model] = leaves, model_curves
             profiles[source][model] = stats.position_profile(
@@ -189,6 +245,7 @@ def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
         },
         "warnings": [warning] if warning else [],
         "level": stats_config.level,
+        "cells": cells,
     }
 
 
