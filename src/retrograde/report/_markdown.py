@@ -294,7 +294,6 @@ def render_report(
     figures: Sequence[str],
     level: float | None = None,
     cells: Sequence[Mapping[str, Any]] = (),
-    notes: Sequence[str] = (),
 ) -> str:
     """The text of ``report.md`` (pure: no file access)."""
     parts = ["# Order-ablation gap table", ""]
@@ -311,8 +310,6 @@ def render_report(
         *([CONCLUSION, ""] if _has_simultaneous(table) else []),
         markdown_table(table, level),
     ]
-    if notes:
-        parts += ["## Notes on the models", ""] + [f"- {n}" for n in notes] + [""]
     if spans:
         parts += ["## Loss per span", "", _markdown_spans(spans)]
     parts += [

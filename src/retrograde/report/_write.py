@@ -116,7 +116,6 @@ def write_all(
     warnings: Sequence[str],
     level: float | None = None,
     cells: Sequence[Mapping[str, Any]] = (),
-    notes: Sequence[str] = (),
 ) -> None:
     """Write ``metrics.json``, ``report.md``, ``cells.csv`` and ``plots/`` into ``out_dir``.
 
@@ -142,8 +141,6 @@ def write_all(
     cells : list of dict, optional
         One row per fit cell (``CELL_FIELDS``): written to ``cells.csv`` and summarized in
         the report's "Data and budget" section.
-    notes : list of str, optional
-        Lines about single models (e.g. an under-trained one) for the report.
     """
     from . import _plots  # matplotlib is imported only when a report is written
 
@@ -174,6 +171,5 @@ def write_all(
         figures=[f"plots/{name}" for name in figures],
         level=level,
         cells=cells,
-        notes=notes,
     )
     atomic_write_text(out_dir / "report.md", report)

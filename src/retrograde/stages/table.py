@@ -97,6 +97,59 @@ def _seed_rows(
     return rows
 
 
+def _baseline_bits(wdir: Path, source: str, reference: str) -> float:
+    """Bits per token of a bigram (``ngram``, order ``stats.BASELINE_NGRAM_ORDER``) fitted on
+    the reference order's training units and scored on its test units: a floor of effort
+    that any model worth reading should beat."""
+    from .. import families
+
+    folder = wdir / str(order_dir(source, reference))
+    train, test = SequenceSet.load(folder / "train"), SequenceSet.load(folder / "test")
+    model = families.make("ngram", order=stats.BASELINE_NGRAM_ORDER).fit(train, seed=0)
+    nats = -float(model.logprobs(test).values.sum())
+    return nats / float(np.log(2)) / max(int(len(test.tokens)), 1)
+
+
+def _training_flags(
+    source: str,
+    models: dict[str, dict[str, dict[str, Any]]],
+    curves: dict[str, dict[str, list[Any]]],
+    reference: str,
+    baseline: float,
+) -> list[str]:
+    """Mark under-trained cells in their leaves; return the report's warning lines."""
+    lines = []
+    name = f"a bigram (ngram order {stats.BASELINE_NGRAM_ORDER}) fitted on the same training units"
+    for model, leaves in models.items():
+        falling: list[str] = []
+        n_fits = 0
+        for order, leaf in leaves.items():
+            leaf["baseline_bits_per_token"] = stats.rounded(baseline)
+            leaf["worse_than_baseline"] = stats.worse_than_baseline(
+                leaf["bits_per_token"], baseline
+            )
+            per_seed = [stats.still_falling(curve) for curve in curves[model][order]]
+            n_fits += len(per_seed)
+            leaf["still_improving"] = any(per_seed)
+            falling += [order] * sum(per_seed)
+        if leaves[reference]["worse_than_baseline"]:
+            lines.append(
+                f"source {source!r}: model {model!r} scores "
+                f"{leaves[reference]['bits_per_token']:.4f} bits/token in the reference order, "
+                f"worse than {name} ({baseline:.4f}); it has not learned what a simple model "
+                "learns, so its gaps may reflect its training, not the order"
+            )
+        if falling:
+            orders = ", ".join(dict.fromkeys(falling))
+            lines.append(
+                f"source {source!r}: model {model!r}: {len(falling)} of {n_fits} fits "
+                f"(orders {orders}) ended with the validation loss still falling by more than "
+                f"{stats.STEEP_FALL:.0%} per epoch; train longer (more epochs, or a token "
+                "budget) before reading its gaps"
+            )
+    return lines
+
+
 def _data_hash(units: SequenceSet) -> str:
     digest = hashlib.sha256()
     digest.update(np.ascontiguousarray(units.tokens, dtype="<i4").tobytes())
@@ -231,6 +284,17 @@ def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
                 spans.setdefault(source, {})[model] = stats.span_breakdown(natural, named)
     stats.adjust_holm(table, reference_order=reference)
     stats.simultaneous_intervals(table, replicates, reference_order=reference)
+    flags = [
+        line
+        for source in study.sources
+        for line in _training_flags(
+            source,
+            table[source],
+            curves[source],
+            reference,
+            _baseline_bits(wdir, source, reference),
+        )
+    ]
     warning = stats.seed_warning(len(study.seeds))
     return {
         "table": table,
@@ -243,7 +307,7 @@ def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
             "test_units_sha256": data_hashes,
             "params": config.to_dict(),
         },
-        "warnings": [warning] if warning else [],
+        "warnings": ([warning] if warning else []) + flags,
         "level": stats_config.level,
         "cells": cells,
     }
