@@ -154,7 +154,7 @@ def write_all(
             )
     with atomic_dir(out_dir / "plots") as plot_dir:
         figures = _plots.write_plots(
-            plot_dir, table=table, profiles=profiles, curves=curves, sweeps=sweeps
+            plot_dir, table=table, profiles=profiles, curves=curves, sweeps=sweeps, level=level
         )
     atomic_write_json(out_dir / "metrics.json", table)
     if cells:
