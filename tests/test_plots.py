@@ -84,8 +84,11 @@ def test_sweep_figure_puts_the_swept_value_on_the_x_axis(run):
     # The swept parameter is an n-gram "order"; it must not overwrite the order column.
     assert [r["value"] for r in rows] == [2, 2, 2, 3, 3, 3]
     assert {r["parameter"] for r in rows} == {"order"}
-    line = ax.containers[1].lines[0]  # errorbar series of the second order, "reverse"
-    assert list(line.get_xdata()) == [2, 3]
+    # the reference order (gap 0 by definition) is not drawn: the first series is "reverse",
+    # dodged left by 1% of the swept range so the two orders' bars do not hide each other
+    assert [c.get_label() for c in ax.containers] == ["reverse", "block_reverse"]
+    line = ax.containers[0].lines[0]
+    assert list(line.get_xdata()) == pytest.approx([2 - 0.01, 3 - 0.01])
 
 
 def test_curves_without_validation_scores_draw_no_learning_curve_figure(tmp_path, run):

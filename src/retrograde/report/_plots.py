@@ -396,18 +396,28 @@ def profile_figure(profiles: Mapping[str, Any], mode: str = "absolute") -> Figur
 def sweep_figure(
     name: str, sweep: Mapping[str, Any], table: Mapping[str, Any], level: float | None = None
 ) -> Figure:
-    """Gap (%) with the interval the report shows against the swept value, per order."""
+    """Gap (%) with the interval the report shows against the swept value, one series per
+    tested order (the reference order's gap is 0 by definition and is not drawn); series
+    are dodged sideways by 2% of the axis so their bars do not hide each other, and gaps
+    that are not significant have hollow markers."""
     rows = sweep_rows(sweep, table)
     parameter = sweep["parameter"]
     figure, (ax,) = _grid(1, width=6.0, height=4.4)
-    reference = _reference_of(table[sweep["source"]])
-    orders = list(dict.fromkeys(row["order"] for row in rows))
     models = table[sweep["source"]]
+    reference = _reference_of(models)
+    orders = [o for o in dict.fromkeys(row["order"] for row in rows) if o != reference]
+    values = [row["value"] for row in rows]
+    span = (max(values) - min(values)) if values else 0
+    dodge = 0.02 * (span or 1)
     for index, order in enumerate(orders):
         mine = [row for row in rows if row["order"] == order]
-        bounds = [_interval(models[row["model"]][order]) for row in mine]
+        leaves = [models[row["model"]][order] for row in mine]
+        bounds = [_interval(leaf) for leaf in leaves]
+        shift = dodge * (index - (len(orders) - 1) / 2)
+        xs = [row["value"] + shift for row in mine]
+        style = _style(index + 1)
         ax.errorbar(
-            [row["value"] for row in mine],
+            xs,
             [row["gap_pct"] for row in mine],
             yerr=[
                 [r["gap_pct"] - lo for r, (lo, _) in zip(mine, bounds, strict=True)],
@@ -415,13 +425,31 @@ def sweep_figure(
             ],
             capsize=3,
             label=order,
-            **_style(index),
+            **style,
         )
+        hollow = [
+            (x, r["gap_pct"])
+            for x, r, leaf in zip(xs, mine, leaves, strict=True)
+            if leaf.get("significant") is False
+        ]
+        if hollow:
+            ax.plot(
+                *zip(*hollow, strict=True),
+                marker=style["marker"],
+                color=style["color"],
+                markerfacecolor="white",
+                linestyle="none",
+                label="_not significant",
+                zorder=3,
+            )
     ax.axhline(0.0, color="grey", linewidth=0.8)
+    if values and all(float(v).is_integer() for v in values):
+        ax.xaxis.set_major_locator(MaxNLocator(integer=True))
     ax.set_xlabel(f"{parameter} (swept value)")
     ax.set_ylabel(f"gap to {reference or 'reference order'} (%)")
     ax.set_title(f"sweep {name} on {sweep['source']}")
-    ax.legend(title="order", fontsize="small")
+    if orders:
+        ax.legend(title="order", fontsize="small")
     _caption(figure, _interval_caption(table, level))
     return figure
 
