@@ -328,6 +328,8 @@ def test_bf16_is_refused_in_one_line_on_a_cpu_without_bfloat16(monkeypatch):
         ("transformer", "stride", 9, "an integer >= 1 and <= 8"),
         ("gru", "token_budget", 0, "an integer >= 1"),
         ("gru", "bf16", "yes", "True or False"),
+        ("lstm", "device", "gpu", "cpu, auto, cuda, cuda:N or mps"),
+        ("transformer", "device", "cuda:x", "cpu, auto, cuda, cuda:N or mps"),
     ],
 )
 def test_invalid_parameters_fail_before_training_naming_key_value_and_allowed(
@@ -340,6 +342,41 @@ def test_invalid_parameters_fail_before_training_naming_key_value_and_allowed(
     assert str(caught.value) == (
         f"family {name!r}: parameter {key}={value!r} is invalid; allowed: {allowed}"
     )
+
+
+@needs_torch
+@pytest.mark.parametrize("name", TORCH_FAMILIES)
+def test_device_auto_falls_back_to_the_cpu_and_gives_the_same_numbers(name, tmp_path):
+    if torch.cuda.is_available() or torch.backends.mps.is_available():
+        pytest.skip("this machine has an accelerator: auto would not mean the CPU")
+    train, valid, test = _units(40, 3, 10, 0), _units(8, 3, 10, 1), _units(8, 3, 10, 2)
+    on_cpu = _small(name, device="cpu").fit(train, valid, seed=3)
+    automatic = _small(name, device="auto").fit(train, valid, seed=3)
+    assert on_cpu.device_ == automatic.device_ == "cpu"
+    # the device choice must not change what a CPU computes (bit for bit)
+    assert np.array_equal(on_cpu.logprobs(test).values, automatic.logprobs(test).values)
+    automatic.save(tmp_path / "model")
+    loaded = families.load(tmp_path / "model")
+    assert loaded.device_ == "cpu"
+    assert np.array_equal(loaded.logprobs(test).values, on_cpu.logprobs(test).values)
+
+
+@needs_torch
+@pytest.mark.parametrize("device", ["cuda", "cuda:1", "mps"])
+def test_an_accelerator_this_machine_lacks_is_refused_in_one_line(device):
+    present = {
+        "cuda": torch.cuda.device_count() >= 1,
+        "cuda:1": torch.cuda.device_count() >= 2,
+        "mps": torch.backends.mps.is_available(),
+    }
+    if present[device]:
+        pytest.skip(f"this machine has {device}")
+    model = _small("gru", device=device)
+    with pytest.raises(ConfigError) as caught:
+        model.fit(_units(5, 3, 4, 0))
+    message = str(caught.value)
+    assert message.startswith(f"family 'gru': parameter device={device!r} is invalid on this")
+    assert message.endswith("allowed: cpu or auto")
 
 
 @needs_torch

@@ -42,6 +42,9 @@ def compose_raw(conf_dir: str | os.PathLike[str], overrides: Sequence[str] = ())
             f"{conf_dir / 'config.yaml'} not found; run `retrograde init` to write the defaults"
         )
     check_conf_files(conf_dir)
+    for word in overrides:
+        _check_override_word(word)
+    _check_source_packages(conf_dir)
     failure: Exception | None = None
     with initialize_config_dir(config_dir=str(conf_dir), version_base="1.3"):
         try:
@@ -180,7 +183,58 @@ def _missing_option_error(conf_dir: Path, exc: Exception) -> ConfigError:
     )
 
 
+#: a Hydra override: ``key=value``, ``+key=value``, ``++key=value``, ``~key`` or ``~key=value``
+_OVERRIDE = re.compile(r"^(\+\+|\+|~)?[A-Za-z_][\w.@/-]*(=|$)")
+_PACKAGE_LINE = re.compile(r"^#\s*@package\s+(\S+)\s*$")
+
+
+def _check_override_word(word: str) -> None:
+    """Refuse, in one line, a command-line word that is not a Hydra override."""
+    if _OVERRIDE.match(word) and ("=" in word or word.startswith("~")):
+        return
+    looks_like_file = "/" in word or Path(word).suffix != "" or Path(word).exists()
+    hint = (
+        f"to study a file, list it in the source config (conf/retrograde/source/corpus.yaml, "
+        f"params.files) or run `retrograde init --source {word}`"
+        if looks_like_file
+        else "write KEY=VALUE, e.g. study.seeds='[0,1,2]'"
+    )
+    raise ConfigError(
+        f"{word!r} is not a config override: the words after the command are Hydra overrides "
+        f"(KEY=VALUE); {hint}"
+    )
+
+
+def _check_source_packages(conf_dir: Path) -> None:
+    """Each ``source/NAME.yaml`` must say ``# @package study.sources.NAME`` (a copied file
+    that keeps its original's line would silently replace that source, or clash with it)."""
+    for path in sorted((conf_dir / "source").glob("*.yaml")):
+        try:
+            head = path.read_text(encoding="utf-8").splitlines()[:5]
+        except (OSError, UnicodeDecodeError):
+            continue  # Hydra reports an unreadable file itself
+        for line in head:
+            match = _PACKAGE_LINE.match(line.strip())
+            if match is None:
+                continue
+            package, expected = match.group(1), f"study.sources.{path.stem}"
+            if package.startswith("study.sources.") and package != expected:
+                raise ConfigError(
+                    f"{path}: its first line says '# @package {package}', which names another "
+                    f"source (copied from {package.rpartition('.')[2]}.yaml?); change it to "
+                    f"'# @package {expected}'"
+                )
+            break
+
+
 def _override_error(conf_dir: Path, overrides: Sequence[str], exc: Exception) -> ConfigError:
+    ambiguous = re.search(r"Ambiguous value for argument '([^'=]+)=([^']*)'", str(exc))
+    if ambiguous:
+        key, value = ambiguous.groups()
+        return ConfigError(
+            f"override {key}={value}: a comma list without brackets is a Hydra sweep, which "
+            f"retrograde does not run; write a list in brackets and quotes: {key}='[{value}]'"
+        )
     match = re.search(r"Could not override '([^']+)'", str(exc))
     if not match:
         return ConfigError(f"bad override or config in {conf_dir}: {first_line(exc)}")

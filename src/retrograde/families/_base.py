@@ -106,6 +106,11 @@ class Family(ABC):
 
     vocab_size_: int
 
+    def n_parameters(self) -> int | None:
+        """How many numbers the fitted model learned (weights, or stored counts), for the
+        report's budget; ``None`` when the family cannot tell (an external trainer)."""
+        return None
+
     def _check_fitted(self) -> None:
         if not hasattr(self, "vocab_size_"):
             raise FitError(f"family {self.name!r}: call fit() before scoring")

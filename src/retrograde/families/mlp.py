@@ -176,6 +176,7 @@ class MLP(Family):
         rng = np.random.default_rng(seed)
         best_bits, since_best = math.inf, 0
         self.learning_curve_ = []
+        self.steps_ = 0  # minibatch updates, for the report's budget
         bar = progress_bar(
             total=self.epochs * len(outcomes),
             unit="event",
@@ -223,9 +224,14 @@ class MLP(Family):
             # sklearn warns (and clips) when a call has fewer events than a batch.
             classifier.batch_size = min(self.batch_size, len(chunk))
             classifier.partial_fit(features[chunk], outcomes[chunk], classes=classes)
+            self.steps_ += math.ceil(len(chunk) / classifier.batch_size)
             total += classifier.loss_ * len(chunk)
             bar.update(len(chunk))
         return float(total / len(order))
+
+    def n_parameters(self) -> int | None:
+        self._check_fitted()
+        return int(sum(w.size for w in self.coefs_) + sum(b.size for b in self.intercepts_))
 
     # ------------------------------------------------------------------- scoring
     def _probs(

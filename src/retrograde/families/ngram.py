@@ -97,6 +97,12 @@ class NGram(Family):
             self.learning_curve_ = [{"epoch": 1, "valid_bits_per_token": bits}]
         return self
 
+    def n_parameters(self) -> int | None:
+        """Stored n-gram types (each with its count) over all levels, plus the discounts."""
+        self._check_fitted()
+        tables = self.tables_
+        return int(sum(len(c) for c in tables.type_counts[1:]) + tables.discounts.size)
+
     # -------------------------------------------------------------------- scoring
     def logprobs(self, units: SequenceSet) -> Ragged:
         """Row ``i``: ``len(units[i]) + 1`` natural-log probabilities, end marker last."""

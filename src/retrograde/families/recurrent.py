@@ -1,7 +1,6 @@
 """Recurrent families ``gru`` and ``lstm``: embedding -> recurrent layers -> softmax.
 
-Both need the optional PyTorch extra (``pip install torch==2.13.0`` then
-``pip install 'retrograde[torch]'``); without it, constructing one raises a one-line
+Both need PyTorch (``pip install torch==2.13.0``, the CPU build); without it, constructing one raises a one-line
 :class:`~retrograde.errors.MissingDependencyError`. Training and the window scheme are
 shared with ``transformer`` (see :mod:`retrograde.families._torch_family`): a network
 reads at most ``context`` positions, units longer than that are scored with sliding windows
@@ -31,7 +30,7 @@ class _Recurrent(TorchFamily):
     dropout : float
         On embeddings, between layers and on outputs; 0 disables.
     context, stride, batch_size, epochs, lr, weight_decay, warmup, min_lr_ratio, grad_clip,
-    patience, token_budget, threads, bf16, progress
+    patience, token_budget, threads, bf16, progress, device
         Training and scoring; documented in ``docs/torch.md``.
     """
 
@@ -69,6 +68,7 @@ class _Recurrent(TorchFamily):
         threads: int = 1,
         bf16: bool = False,
         progress: bool = True,
+        device: str = "cpu",
     ) -> None:
         super().__init__(
             embedding=embedding,
@@ -89,6 +89,7 @@ class _Recurrent(TorchFamily):
             threads=threads,
             bf16=bf16,
             progress=progress,
+            device=device,
         )
 
     def _validate_network(self, owner: str, params: dict[str, Any]) -> None:

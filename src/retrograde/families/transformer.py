@@ -2,8 +2,7 @@
 
 Pre-norm blocks (causal self-attention, then a GELU MLP four times as wide), learned or
 sinusoidal absolute positions, a linear softmax head over ``vocab_size + 1`` outcomes.
-Needs the optional PyTorch extra (``pip install torch==2.13.0`` then
-``pip install 'retrograde[torch]'``). A network reads at most ``context`` positions; longer
+Needs PyTorch (``pip install torch==2.13.0``, the CPU build). A network reads at most ``context`` positions; longer
 units are scored with sliding windows that condition only on earlier tokens of the same
 unit (:mod:`retrograde.families._torch_common`).
 """
@@ -35,7 +34,7 @@ class Transformer(TorchFamily):
     context : int
         Positions one window holds (sweep it for context-length studies).
     stride, batch_size, epochs, lr, weight_decay, warmup, min_lr_ratio, grad_clip,
-    patience, token_budget, threads, bf16, progress
+    patience, token_budget, threads, bf16, progress, device
         Training and scoring; documented in ``docs/torch.md``.
     """
 
@@ -76,6 +75,7 @@ class Transformer(TorchFamily):
         threads: int = 1,
         bf16: bool = False,
         progress: bool = True,
+        device: str = "cpu",
     ) -> None:
         super().__init__(
             width=width,
@@ -97,6 +97,7 @@ class Transformer(TorchFamily):
             threads=threads,
             bf16=bf16,
             progress=progress,
+            device=device,
         )
 
     def _validate_network(self, owner: str, params: dict[str, Any]) -> None:

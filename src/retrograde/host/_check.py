@@ -32,7 +32,8 @@ from ..config import (
     units_stage_name,
 )
 from ..data import SPLITS
-from ..errors import PluginError
+from ..errors import DataError, PluginError
+from ._corpus_paths import missing_file_hint
 from ._driver import compose_for, write_pipeline_files
 from ._lock import pipeline_lock
 from ._repo import HostRepo, run_dvc
@@ -118,6 +119,21 @@ def cell_status(host: HostRepo, config: RetrogradeConfig) -> dict[str, Any]:
     return report
 
 
+def _check_source_files(host: HostRepo, config: RetrogradeConfig) -> None:
+    """A source file that a host DVC stage makes but that is not there yet: say so (one line)."""
+    for name, spec in config.study.sources.items():
+        files = spec.params.get("files")
+        listed = spec.deps or ([files] if isinstance(files, str) else list(files or []))
+        for given in listed:
+            if not isinstance(given, str) or any(c in given for c in "*?["):
+                continue
+            hint = (
+                None if (host.root / given).exists() else missing_file_hint(host, host.root / given)
+            )
+            if hint:
+                raise DataError(f"source {name!r}: {hint}")
+
+
 def check_host(host_dir: str, overrides: Sequence[str] = ()) -> dict[str, Any]:
     """Compose, round-trip every order on the data, count cells; a JSON-able dict.
 
@@ -127,6 +143,7 @@ def check_host(host_dir: str, overrides: Sequence[str] = ()) -> dict[str, Any]:
     """
     host, config = compose_for(host_dir, overrides)
     study = config.study
+    _check_source_files(host, config)
     sources = round_trip_orders(host.root, config)
     cells = cell_status(host, config)
     written = cells.pop("written")

@@ -16,10 +16,48 @@ from ..data import working_directory
 from ..errors import DataError, MissingFileError
 from ._repo import HostRepo, run_git
 
-__all__ = ["check_source_files", "host_stage_outputs", "resolve_sources"]
+__all__ = [
+    "check_source_files",
+    "host_stage_outputs",
+    "missing_file_hint",
+    "resolve_sources",
+    "stage_writing",
+]
 
 
 def host_stage_outputs(host: HostRepo) -> list[PurePosixPath]:
+    """Host-relative outputs declared by the host's own DVC files (see :func:`_declared`)."""
+    return [path for path, _ in _declared(host)]
+
+
+def stage_writing(host: HostRepo, relative: PurePosixPath) -> str | None:
+    """Which of the host's DVC files makes ``relative`` (an output or inside one): a text
+    such as ``stage 'make_corpus' in dvc.yaml`` or ``data/raw.dvc``; ``None`` if none."""
+    for out, writer in _declared(host):
+        if relative == out or _is_below(relative, out):
+            return writer
+    return None
+
+
+def missing_file_hint(host: HostRepo, path: Path) -> str | None:
+    """For a file that does not exist: how to make it, when a host DVC file declares it.
+
+    ``None`` when the path is outside the host or nothing declares it.
+    """
+    absolute = path.resolve()
+    if not absolute.is_relative_to(host.root.resolve()):
+        return None
+    relative = PurePosixPath(absolute.relative_to(host.root.resolve()).as_posix())
+    writer = stage_writing(host, relative)
+    if writer is None:
+        return None
+    return (
+        f"{relative} does not exist yet: {writer} of the host makes it; run `dvc repro` "
+        f"(or `dvc pull {relative}` if a DVC remote holds it), then check again"
+    )
+
+
+def _declared(host: HostRepo) -> list[tuple[PurePosixPath, str]]:
     """Host-relative outputs declared by the host's own DVC files (not retrograde's).
 
     Reads every ``dvc.yaml`` (stage outputs and metrics) and every ``.dvc`` file (data
@@ -31,7 +69,7 @@ def host_stage_outputs(host: HostRepo) -> list[PurePosixPath]:
         host.root,
         ["ls-files", "--cached", "--others", "--exclude-standard", "--", "*dvc.yaml", "*.dvc"],
     ).stdout.splitlines()
-    outputs: list[PurePosixPath] = []
+    outputs: list[tuple[PurePosixPath, str]] = []
     for name in sorted(set(listed)):
         dvc_file = PurePosixPath(name)
         is_dvc_file = dvc_file.name == "dvc.yaml" or dvc_file.suffix == ".dvc"
@@ -44,15 +82,19 @@ def host_stage_outputs(host: HostRepo) -> list[PurePosixPath]:
         if not isinstance(data, dict):
             continue
         # A .dvc file is shaped like a single stage; a dvc.yaml holds named stages.
-        stages = [data] if dvc_file.suffix == ".dvc" else list((data.get("stages") or {}).values())
-        for stage in stages:
+        stages = (
+            {str(dvc_file): data}
+            if dvc_file.suffix == ".dvc"
+            else {f"stage {k!r} in {dvc_file}": v for k, v in (data.get("stages") or {}).items()}
+        )
+        for writer, stage in stages.items():
             if not isinstance(stage, dict):
                 continue
             wdir = dvc_file.parent / str(stage.get("wdir", "."))
             for out in [*(stage.get("outs") or []), *(stage.get("metrics") or [])]:
                 path = _out_path(out)
                 if path is not None and "${" not in path:
-                    outputs.append(_normalize(wdir / path))
+                    outputs.append((_normalize(wdir / path), writer))
     return outputs
 
 

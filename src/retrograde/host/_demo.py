@@ -102,9 +102,10 @@ def next_steps(folder: Path) -> str:
     installed = Path(sys.executable).parent / "retrograde"
     command = "retrograde" if shutil.which("retrograde") == str(installed) else str(installed)
     return f"""
-The table above is in {pipeline / "report.md"} (with its cautions) and
-{pipeline / "metrics.json"}; figures are in {pipeline / "plots"}/ (gaps.png,
-learning_curves.png, position_profile.png). The corpus is INVENTED demo data.
+The table above is in {pipeline / "report.md"} (with its cautions and each cell's
+budget), {pipeline / "metrics.json"} and {pipeline / "cells.csv"} (per seed); figures
+are in {pipeline / "plots"}/ (gaps.png, learning_curves.png, position_profile.png,
+position_profile_relative.png). The corpus is INVENTED demo data.
 
 Try next, inside {folder}:
   1. edit conf/retrograde/study/demo.yaml (e.g. ngram order: 8 -> 5), then

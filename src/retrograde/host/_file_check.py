@@ -19,9 +19,11 @@ import yaml
 
 from .. import orders
 from ..data import Document, PreparedUnits, check_fractions, check_units, prepare_units, tokenizers
-from ..errors import BijectionError, ConfigError, DataError
+from ..errors import BijectionError, ConfigError, DataError, HostRepoError
 from ..sources import find_lone_carriage_return
 from ..validation import check_int
+from ._corpus_paths import missing_file_hint
+from ._repo import find_host
 
 __all__ = ["check_file", "format_file_check", "parse_order_spec", "read_text"]
 
@@ -163,6 +165,17 @@ def _verdicts(
     return verdicts
 
 
+def _explain_missing(path: Path) -> None:
+    """Raise a one-line DataError when a DVC stage of the host around ``path`` makes it."""
+    try:
+        host = find_host(Path.cwd(), require_dvc=True)
+    except HostRepoError:
+        return
+    hint = missing_file_hint(host, path)
+    if hint:
+        raise DataError(hint)
+
+
 def check_file(
     path: Path,
     *,
@@ -182,6 +195,8 @@ def check_file(
     check_fractions(fractions)
     check_units(unit, window if unit == "window" else None, remainder)
     requested = _requested_orders(list(order_specs))
+    if not path.exists():
+        _explain_missing(path)
     params = {} if max_vocab is None or tokenizer == "bytes" else {"max_vocab": max_vocab}
     text = read_text(path, errors=errors, raw_bytes=tokenizer == "bytes")
     prepared = prepare_units(

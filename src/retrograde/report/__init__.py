@@ -15,8 +15,15 @@ drawn (:func:`write_all`).
 
 from __future__ import annotations
 
-from ._compare import STATUSES, CellChange, compare_tables, format_changes
-from ._markdown import CAUTIONS, LEAF_FIELDS, is_reference_leaf, render_report, table_rows
+from ._compare import CHANGE_FORMATS, STATUSES, CellChange, compare_tables, format_changes
+from ._markdown import (
+    CAUTIONS,
+    CONCLUSION,
+    LEAF_FIELDS,
+    is_reference_leaf,
+    render_report,
+    table_rows,
+)
 from ._write import (
     FORMATS,
     REQUIRED_FIELDS,
@@ -30,6 +37,8 @@ from ._write import (
 
 __all__ = [
     "CAUTIONS",
+    "CHANGE_FORMATS",
+    "CONCLUSION",
     "FORMATS",
     "LEAF_FIELDS",
     "REQUIRED_FIELDS",

@@ -14,7 +14,10 @@ from .. import __version__
 
 __all__ = [
     "CAUTIONS",
+    "CELL_FIELDS",
+    "CONCLUSION",
     "LEAF_FIELDS",
+    "markdown_budget",
     "fields_present",
     "is_reference_leaf",
     "markdown_table",
@@ -28,11 +31,23 @@ Table = Mapping[str, Mapping[str, Mapping[str, Mapping[str, Any]]]]
 CAUTIONS = (
     "A gap belongs to this model family, this amount of data and this training budget, "
     "not to the language or the data source as such.",
-    "A gap whose interval contains 0 is not a finding; only the `significant` column "
-    "(Holm-adjusted p below 0.05) marks gaps unlikely to be chance.",
+    "A gap whose interval contains 0 is not a finding, and not evidence that the order "
+    "makes no difference either: only the `significant` column marks gaps unlikely to be "
+    "chance, and its interval is the simultaneous one shown in the table, not the per-cell "
+    "interval in metrics.json.",
     "Small or under-trained models can show a gap with the opposite sign to larger ones.",
     "With fewer than 3 seeds the interval resamples test units only and ignores training "
     "randomness.",
+)
+
+#: what a reader may conclude from a table with simultaneous intervals (one sentence)
+CONCLUSION = (
+    "Intervals are simultaneous: each row's interval is the bootstrap interval at the "
+    "level (column *level*) at which Holm's procedure judged that row, so a row is "
+    "significant exactly when its interval excludes 0, and you may conclude, with at most "
+    "a 5% chance that any one of them is wrong, that every significant row's order "
+    "changes the test loss in the direction of its sign; a row that is not significant "
+    "shows no detectable gap, which is not evidence that there is none."
 )
 
 #: CSV and Markdown column order; later fields appear only when some leaf has them
@@ -44,6 +59,10 @@ LEAF_FIELDS = (
     "gap_pct",
     "gap_pct_low",
     "gap_pct_high",
+    "gap_pct_simultaneous_low",
+    "gap_pct_simultaneous_high",
+    "simultaneous_level",
+    "gap_pct_simultaneous_extended",
     "p_value",
     "p_value_sign_flip",
     "p_value_holm",
@@ -111,25 +130,56 @@ def _markdown_source(source: str, models: Mapping[str, Any], level: float | None
         ("excess_bits_per_token", "excess bits/token"),
     ]
     header += [title for key, title in optional if key in fields]
-    header += [f"gap % [{_interval_title(level)}]", "seed spread %", "p (Holm)", "significant"]
+    simultaneous = "gap_pct_simultaneous_low" in fields
+    if simultaneous:
+        header += ["gap % [simultaneous interval]", "level"]
+    else:
+        header += [f"gap % [{_interval_title(level)}]"]
+    header += ["seed spread %", "p (Holm)", "significant"]
     lines = ["| " + " | ".join(header) + " |", "|" + "---|" * len(header)]
+    stretched = False
     for row in rows:
         reference = is_reference_leaf(row)
         cells = [f"`{row['model']}`", f"`{row['order']}`", _number(row["bits_per_token"], ".4f")]
         cells += [_number(row.get(key), ".4f") for key, _ in optional if key in fields]
         if reference:
-            cells += ["reference", "", "", ""]
+            cells += ["reference", *([""] * (len(header) - len(cells) - 1))]
         else:
-            interval = f"[{row['gap_pct_low']:+.2f}, {row['gap_pct_high']:+.2f}]"
             p_holm = row.get("p_value_holm", row.get("p_value"))
+            if simultaneous and "gap_pct_simultaneous_low" in row:
+                low, high = row["gap_pct_simultaneous_low"], row["gap_pct_simultaneous_high"]
+                mark = "†" if row.get("gap_pct_simultaneous_extended") else ""
+                stretched = stretched or bool(mark)
+                cells += [
+                    f"{row['gap_pct']:+.2f} [{low:+.2f}, {high:+.2f}]{mark}",
+                    _level_text(row.get("simultaneous_level")),
+                ]
+            else:
+                interval = f"[{row['gap_pct_low']:+.2f}, {row['gap_pct_high']:+.2f}]"
+                cells += [f"{row['gap_pct']:+.2f} {interval}"]
+                cells += [_level_text(level)] if simultaneous else []
             cells += [
-                f"{row['gap_pct']:+.2f} {interval}",
                 _number(row.get("seed_spread_pct"), ".2f"),
                 _p_text(p_holm),
                 "**yes**" if row.get("significant") else "",
             ]
         lines.append("| " + " | ".join(cells) + " |")
+    if stretched:
+        lines += [
+            "",
+            "† interval stretched to 0: the bootstrap alone excludes 0 at this level, but the "
+            "test that decided the row (sign flips over units) does not.",
+        ]
     return f"### Source `{source}`\n\n" + "\n".join(lines) + "\n"
+
+
+def _level_text(level: float | None) -> str:
+    """``0.996875`` -> ``99.69%``: enough digits to tell Holm's steps apart."""
+    return "–" if level is None else f"{100 * level:.2f}%"
+
+
+def _has_simultaneous(table: Table) -> bool:
+    return any("gap_pct_simultaneous_low" in row for row in table_rows(table))
 
 
 def markdown_table(table: Table, level: float | None = None) -> str:
@@ -162,6 +212,79 @@ def _markdown_spans(spans: Mapping[str, Mapping[str, Any]]) -> str:
     return "\n".join(lines)
 
 
+#: ``cells.csv`` columns: one row per fit cell (source, model, order, seed)
+CELL_FIELDS = (
+    "source",
+    "model",
+    "order",
+    "seed",
+    "bits_per_token",
+    "gap_pct",
+    "epochs",
+    "last_valid_bits_per_token",
+    "test_units",
+    "test_tokens",
+    "train_tokens",
+    "steps",
+    "n_params",
+    "cpu_s",
+    "wall_s",
+)
+
+
+def _mean(values: Sequence[Any]) -> float | None:
+    known = [float(v) for v in values if isinstance(v, (int, float)) and not isinstance(v, bool)]
+    return sum(known) / len(known) if known else None
+
+
+def _count_text(value: float | None) -> str:
+    return "–" if value is None else f"{round(value):,}"
+
+
+def _seconds_text(value: float | None) -> str:
+    return "–" if value is None else f"{value:.1f}"
+
+
+def markdown_budget(table: Table, cells: Sequence[Mapping[str, Any]]) -> str:
+    """The report's test-set sizes per source and, per cell averaged over seeds, the fit's
+    parameters, training tokens, steps and times (from each cell's ``budget.json``)."""
+    lines: list[str] = []
+    for source, models in table.items():
+        leaf = next((leaf for orders in models.values() for leaf in orders.values()), {})
+        documents = f", {leaf['documents']:,} documents" if "documents" in leaf else ""
+        lines += [
+            f"### Source `{source}`",
+            "",
+            f"Test set: {leaf.get('units', 0):,} units, {leaf.get('tokens', 0):,} tokens"
+            f"{documents}.",
+            "",
+        ]
+        mine = [c for c in cells if c["source"] == source]
+        if not mine:
+            continue
+        lines += [
+            "| model | order | seeds | parameters | train tokens per fit | steps | "
+            "fit wall s (mean) | fit CPU s (mean) |",
+            "|---|---|---|---|---|---|---|---|",
+        ]
+        for model, orders in models.items():
+            for order in orders:
+                group = [c for c in mine if c["model"] == model and c["order"] == order]
+                cells_text = [
+                    f"`{model}`",
+                    f"`{order}`",
+                    str(len(group)),
+                    _count_text(_mean([c.get("n_params") for c in group])),
+                    _count_text(_mean([c.get("train_tokens") for c in group])),
+                    _count_text(_mean([c.get("steps") for c in group])),
+                    _seconds_text(_mean([c.get("wall_s") for c in group])),
+                    _seconds_text(_mean([c.get("cpu_s") for c in group])),
+                ]
+                lines.append("| " + " | ".join(cells_text) + " |")
+        lines.append("")
+    return "\n".join(lines)
+
+
 def render_report(
     table: Table,
     *,
@@ -170,6 +293,7 @@ def render_report(
     warnings: Sequence[str],
     figures: Sequence[str],
     level: float | None = None,
+    cells: Sequence[Mapping[str, Any]] = (),
 ) -> str:
     """The text of ``report.md`` (pure: no file access)."""
     parts = ["# Order-ablation gap table", ""]
@@ -177,15 +301,28 @@ def render_report(
         parts += ["> **Warnings**", ">"] + [f"> - {w}" for w in warnings] + [""]
     parts += [
         "Each gap is `100 * (NLL(order) / NLL(reference) - 1)` on the same test units, with a "
-        f"{_interval_title(level)} from a bootstrap over units and seeds, and a p-value from a "
+        f"{_interval_title(level) if not _has_simultaneous(table) else 'simultaneous interval'}"
+        " from a bootstrap over units and seeds, and a p-value from a "
         "paired sign-flip test on units (with 3 or more seeds, no smaller than the bootstrap's "
         "own p-value), Holm-adjusted over every gap in this table. Positive gaps mean the "
         "order is harder to learn than the reference.",
         "",
+        *([CONCLUSION, ""] if _has_simultaneous(table) else []),
         markdown_table(table, level),
     ]
     if spans:
         parts += ["## Loss per span", "", _markdown_spans(spans)]
+    parts += [
+        "## Data and budget",
+        "",
+        "Test units and tokens per source; per cell, averaged over its seeds: numbers the "
+        "model learned, target positions trained on (end markers included), optimizer or "
+        "minibatch steps, and the time to fit and score. Per-seed values, times included, "
+        "are in `cells.csv`; times stay out of `metrics.json`, which is byte-identical for "
+        "the same config and data.",
+        "",
+        markdown_budget(table, cells),
+    ]
     parts += ["## Cautions", ""] + [f"- {c}" for c in CAUTIONS] + [""]
     if figures:
         parts += ["## Figures", ""] + [f"![{Path(f).stem}]({f})" for f in figures] + [""]

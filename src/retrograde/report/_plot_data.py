@@ -24,6 +24,10 @@ def gap_rows(table: Mapping[str, Any]) -> list[dict[str, Any]]:
             "gap_pct": leaf["gap_pct"],
             "gap_pct_low": leaf["gap_pct_low"],
             "gap_pct_high": leaf["gap_pct_high"],
+            "gap_pct_simultaneous_low": leaf.get("gap_pct_simultaneous_low"),
+            "gap_pct_simultaneous_high": leaf.get("gap_pct_simultaneous_high"),
+            "simultaneous_level": leaf.get("simultaneous_level"),
+            "significant": leaf.get("significant"),
             "bits_per_token": leaf["bits_per_token"],
         }
         for source, models in table.items()
@@ -69,12 +73,19 @@ def profile_rows(profiles: Mapping[str, Any]) -> list[dict[str, Any]]:
             "position": x,
             "bits": bits,
             "diff_bits": diff,
+            "diff_se": se,
+            "units": units,
         }
         for source, models in profiles.items()
         for model, profile in models.items()
         for order in profile["bits"]
-        for x, bits, diff in zip(
-            profile["x"], profile["bits"][order], profile["diff_bits"][order], strict=True
+        for x, bits, diff, se, units in zip(
+            profile["x"],
+            profile["bits"][order],
+            profile["diff_bits"][order],
+            profile.get("diff_se", {}).get(order, [None] * len(profile["x"])),
+            profile.get("units", [None] * len(profile["x"])),
+            strict=True,
         )
     ]
 

@@ -22,6 +22,7 @@ from ..data import atomic_write_json, atomic_write_text
 from ..errors import ConfigError, DataError
 from ..validation import check_choice
 from ._markdown import (
+    CELL_FIELDS,
     Table,
     fields_present,
     is_reference_leaf,
@@ -170,8 +171,9 @@ def write_all(
     provenance: Mapping[str, Any],
     warnings: Sequence[str],
     level: float | None = None,
+    cells: Sequence[Mapping[str, Any]] = (),
 ) -> None:
-    """Write ``metrics.json``, ``report.md`` and ``plots/`` into ``out_dir``.
+    """Write ``metrics.json``, ``report.md``, ``cells.csv`` and ``plots/`` into ``out_dir``.
 
     Parameters
     ----------
@@ -192,6 +194,9 @@ def write_all(
         Lines shown at the top of ``report.md``.
     level : float, optional
         Confidence level of the intervals in ``table`` (``stats.level``); labels the report.
+    cells : list of dict, optional
+        One row per fit cell (``CELL_FIELDS``): written to ``cells.csv`` and summarized in
+        the report's "Data and budget" section.
     """
     from . import _plots  # matplotlib is imported only when a report is written
 
@@ -208,9 +213,14 @@ def write_all(
     shutil.rmtree(staging, ignore_errors=True)
     (staging / "plots").mkdir(parents=True)
     figures = _plots.write_plots(
-        staging / "plots", table=table, profiles=profiles, curves=curves, sweeps=sweeps
+        staging / "plots", table=table, profiles=profiles, curves=curves, sweeps=sweeps, level=level
     )
     atomic_write_json(staging / "metrics.json", table)
+    buffer = io.StringIO()
+    writer = csv.DictWriter(buffer, list(CELL_FIELDS), lineterminator="\n")
+    writer.writeheader()
+    writer.writerows({key: row.get(key) for key in CELL_FIELDS} for row in cells)
+    atomic_write_text(staging / "cells.csv", buffer.getvalue())
     report = render_report(
         table,
         spans=spans,
@@ -218,17 +228,21 @@ def write_all(
         warnings=warnings,
         figures=[f"plots/{name}" for name in figures],
         level=level,
+        cells=cells,
     )
     atomic_write_text(staging / "report.md", report)
-    atomic_write_text(staging / _COMPLETE, "the new metrics.json, report.md and plots/ are whole\n")
+    atomic_write_text(
+        staging / _COMPLETE, "the new metrics.json, report.md, cells.csv and plots/\n"
+    )
     recover_report(out_dir)
 
 
 def recover_report(out_dir: str | os.PathLike[str]) -> None:
     """Put a complete staged set in place, or drop an incomplete one.
 
-    :func:`write_all` writes the new ``metrics.json``, ``report.md`` and ``plots/`` into
-    :data:`STAGING` first and marks the set complete; only then do the three replace the
+    :func:`write_all` writes the new ``metrics.json``, ``report.md``, ``cells.csv`` and
+    ``plots/`` into
+    :data:`STAGING` first and marks the set complete; only then do they replace the
     published ones, each by a rename. A writer killed before the mark leaves the published
     set untouched (its staging is dropped here); one killed during the renames leaves a
     complete staging that this call finishes putting in place. Either way a reader sees
@@ -250,7 +264,11 @@ def recover_report(out_dir: str | os.PathLike[str]) -> None:
             os.replace(out_dir / "plots", old)
         os.replace(staging / "plots", out_dir / "plots")
         shutil.rmtree(old, ignore_errors=True)
-    for name in ("report.md", "metrics.json"):  # metrics last: what diffs and gates read
+    for name in (
+        "cells.csv",
+        "report.md",
+        "metrics.json",
+    ):  # metrics last: what diffs and gates read
         if (staging / name).is_file():
             os.replace(staging / name, out_dir / name)
     shutil.rmtree(staging, ignore_errors=True)

@@ -8,6 +8,11 @@
 - ``test_logprobs.npy`` float64 (n_test_tokens + n_test_units,): natural-log probabilities
   in the model's order, ``len + 1`` per test unit (end marker last), units back to back
 - ``curve.json``        the learning curve (one dict per epoch)
+- ``budget.json``       what the fit cost: ``train_tokens`` (target positions trained on,
+  end markers included), ``steps`` (optimizer or minibatch updates; ``null`` for counting
+  families), ``n_params`` (numbers learned), ``cpu_s`` and ``wall_s`` (fit, test scoring and
+  the normalization probe, trainer processes included). Times differ between runs, so they
+  stay out of ``metrics.json``; the table stage puts them in ``cells.csv`` and the report.
 - ``fit.log``           what happened; on a crash it ends with the traceback
 
 A crash becomes one line naming the cell and its ``fit.log`` (exit status 2).
@@ -18,6 +23,8 @@ from __future__ import annotations
 import argparse
 import contextlib
 import io
+import os
+import time
 import traceback
 from collections.abc import Sequence
 from pathlib import Path
@@ -30,7 +37,10 @@ from ..data import SPLITS, SequenceSet, atomic_write_bytes, atomic_write_json, o
 from ..errors import FitError, RetrogradeError
 from . import run_stage
 
-__all__ = ["fit_cell", "main"]
+__all__ = ["BUDGET_FIELDS", "cell_budget", "fit_cell", "main"]
+
+#: the fields of ``budget.json``, in order
+BUDGET_FIELDS = ("train_tokens", "steps", "cpu_s", "wall_s", "n_params")
 
 
 def _plain(value: Any) -> Any:
@@ -96,6 +106,43 @@ def fit_cell(
     return model, values, curve
 
 
+def _cpu_seconds() -> float:
+    """User + system CPU time of this process and its finished children (trainers)."""
+    times = os.times()
+    return times.user + times.system + times.children_user + times.children_system
+
+
+def cell_budget(
+    model: Any,
+    train: SequenceSet,
+    curve: list[dict[str, Any]],
+    *,
+    cpu_s: float,
+    wall_s: float,
+) -> dict[str, Any]:
+    """The ``budget.json`` of one cell (see the module docstring); unknown values are None.
+
+    ``train_tokens`` is what the family reports (``tokens_seen_``, or the last epoch's
+    ``tokens_seen`` in its curve), else one pass over the training positions per epoch of
+    the curve (at least one) for the built-in families, else None (an external trainer
+    that does not say).
+    """
+    seen = getattr(model, "tokens_seen_", None)
+    if seen is None and curve and isinstance(curve[-1].get("tokens_seen"), (int, float)):
+        seen = curve[-1]["tokens_seen"]
+    if seen is None and getattr(model, "name", "") != "command":
+        seen = max(len(curve), 1) * (len(train.tokens) + len(train))
+    steps = getattr(model, "steps_", None)
+    n_params = model.n_parameters() if hasattr(model, "n_parameters") else None
+    return {
+        "train_tokens": None if seen is None else int(seen),
+        "steps": None if steps is None else int(steps),
+        "cpu_s": round(float(cpu_s), 3),
+        "wall_s": round(float(wall_s), 3),
+        "n_params": None if n_params is None else int(n_params),
+    }
+
+
 def _body(args: argparse.Namespace) -> None:
     wdir = Path(args.params).resolve()
     cell = wdir / str(cell_dir(args.source, args.model, args.order, args.seed))
@@ -114,12 +161,24 @@ def _body(args: argparse.Namespace) -> None:
             spec = load_params(wdir).study.models[args.model]
             data = wdir / str(order_dir(args.source, args.order))
             splits = {s: SequenceSet.load(data / s) for s in SPLITS}
+            cpu_started, wall_started = _cpu_seconds(), time.perf_counter()
             model, values, curve = fit_cell(spec, splits, seed=args.seed, log=log)
+            budget = cell_budget(
+                model,
+                splits["train"],
+                curve,
+                cpu_s=_cpu_seconds() - cpu_started,
+                wall_s=time.perf_counter() - wall_started,
+            )
+            # Counts only: the log is hashed with the cell, its times are in budget.json.
+            counts = {k: v for k, v in budget.items() if k not in ("cpu_s", "wall_s")}
+            print(f"budget {counts} (times in budget.json)", file=log, flush=True)
             model.save(cell / "model")
             buffer = io.BytesIO()
             np.save(buffer, values)
             atomic_write_bytes(cell / "test_logprobs.npy", buffer.getvalue())
             atomic_write_json(cell / "curve.json", curve)
+            atomic_write_json(cell / "budget.json", budget)
         except Exception as exc:
             traceback.print_exc(file=log)
             reason = (

@@ -3,7 +3,8 @@
 ``python -m retrograde.stages.table`` reads ``params.yaml`` and, for every cell the grid
 names (never a glob, so cells left over from a larger grid are ignored), the test
 log-probabilities; it writes ``metrics.json`` (``{source: {model: {order: leaf}}}``),
-``report.md`` and ``plots/`` through :func:`retrograde.report.write_all`.
+``report.md``, ``cells.csv`` (one row per fit cell: per-seed bits and gap, the cell's
+``budget.json``) and ``plots/`` through :func:`retrograde.report.write_all`.
 """
 
 from __future__ import annotations
@@ -46,6 +47,107 @@ def _read_cell(wdir: Path, source: str, model: str, order: str, seed: int) -> tu
             "fit it with `retrograde run`"
         ) from exc
     return values, curve
+
+
+#: what a cell's budget.json holds (written by the fit stage); missing in older cells
+_BUDGET_FIELDS = ("train_tokens", "steps", "cpu_s", "wall_s", "n_params")
+
+
+def _read_budget(wdir: Path, source: str, model: str, order: str, seed: int) -> dict[str, Any]:
+    """The cell's ``budget.json`` (``None`` for every field when an older fit wrote none)."""
+    path = wdir / str(cell_dir(source, model, order, seed)) / "budget.json"
+    found = json.loads(path.read_text(encoding="utf-8")) if path.is_file() else {}
+    return {key: found.get(key) for key in _BUDGET_FIELDS}
+
+
+def _seed_rows(
+    wdir: Path,
+    source: str,
+    model: str,
+    unit_nll: dict[str, np.ndarray],
+    curves: dict[str, Any],
+    seeds: list[int],
+    reference: str,
+    test: SequenceSet,
+) -> list[dict[str, Any]]:
+    """One row per fit cell of one model: per-seed bits and gap, last validation score, budget."""
+    n_tokens = max(int(len(test.tokens)), 1)
+    rows = []
+    for order, losses in unit_nll.items():
+        for row, seed in enumerate(seeds):
+            total, reference_total = float(losses[row].sum()), float(unit_nll[reference][row].sum())
+            scored = [p for p in curves[order][row] if p.get("valid_bits_per_token") is not None]
+            rows.append(
+                {
+                    "source": source,
+                    "model": model,
+                    "order": order,
+                    "seed": seed,
+                    "bits_per_token": stats.rounded(total / np.log(2) / n_tokens),
+                    "gap_pct": stats.rounded(100.0 * (total / reference_total - 1.0)),
+                    "epochs": len(curves[order][row]),
+                    "last_valid_bits_per_token": (
+                        stats.rounded(scored[-1]["valid_bits_per_token"]) if scored else None
+                    ),
+                    "test_units": len(test),
+                    "test_tokens": int(len(test.tokens)),
+                    **_read_budget(wdir, source, model, order, seed),
+                }
+            )
+    return rows
+
+
+def _baseline_bits(wdir: Path, source: str, reference: str) -> float:
+    """Bits per token of a bigram (``ngram``, order ``stats.BASELINE_NGRAM_ORDER``) fitted on
+    the reference order's training units and scored on its test units: a floor of effort
+    that any model worth reading should beat."""
+    from .. import families
+
+    folder = wdir / str(order_dir(source, reference))
+    train, test = SequenceSet.load(folder / "train"), SequenceSet.load(folder / "test")
+    model = families.make("ngram", order=stats.BASELINE_NGRAM_ORDER).fit(train, seed=0)
+    nats = -float(model.logprobs(test).values.sum())
+    return nats / float(np.log(2)) / max(int(len(test.tokens)), 1)
+
+
+def _training_flags(
+    source: str,
+    models: dict[str, dict[str, dict[str, Any]]],
+    curves: dict[str, dict[str, list[Any]]],
+    reference: str,
+    baseline: float,
+) -> list[str]:
+    """Mark under-trained cells in their leaves; return the report's warning lines."""
+    lines = []
+    name = f"a bigram (ngram order {stats.BASELINE_NGRAM_ORDER}) fitted on the same training units"
+    for model, leaves in models.items():
+        falling: list[str] = []
+        n_fits = 0
+        for order, leaf in leaves.items():
+            leaf["baseline_bits_per_token"] = stats.rounded(baseline)
+            leaf["worse_than_baseline"] = stats.worse_than_baseline(
+                leaf["bits_per_token"], baseline
+            )
+            per_seed = [stats.still_falling(curve) for curve in curves[model][order]]
+            n_fits += len(per_seed)
+            leaf["still_improving"] = any(per_seed)
+            falling += [order] * sum(per_seed)
+        if leaves[reference]["worse_than_baseline"]:
+            lines.append(
+                f"source {source!r}: model {model!r} scores "
+                f"{leaves[reference]['bits_per_token']:.4f} bits/token in the reference order, "
+                f"worse than {name} ({baseline:.4f}); it has not learned what a simple model "
+                "learns, so its gaps may reflect its training, not the order"
+            )
+        if falling:
+            orders = ", ".join(dict.fromkeys(falling))
+            lines.append(
+                f"source {source!r}: model {model!r}: {len(falling)} of {n_fits} fits "
+                f"(orders {orders}) ended with the validation loss still falling by more than "
+                f"{stats.STEEP_FALL:.0%} per epoch; train longer (more epochs, or a token "
+                "budget) before reading its gaps"
+            )
+    return lines
 
 
 def _data_hash(units: SequenceSet) -> str:
@@ -107,9 +209,19 @@ def _check_floor(
 
 
 def _model_results(
-    wdir: Path, source: str, model: str, config: RetrogradeConfig, test: SequenceSet, floors: Any
+    wdir: Path,
+    source: str,
+    model: str,
+    config: RetrogradeConfig,
+    test: SequenceSet,
+    floors: Any,
+    replicates: dict[str, np.ndarray] | None = None,
+    seed_rows: list[dict[str, Any]] | None = None,
 ) -> tuple[dict[str, Any], dict[str, Ragged], dict[str, Any]]:
-    """One model on one source: (its table leaves, natural-order losses, curves) per order."""
+    """One model on one source: (its table leaves, natural-order losses, curves) per order.
+
+    ``replicates``, when given, receives each order's bootstrap gaps; ``seed_rows`` one row
+    per fit cell (:func:`_seed_rows`)."""
     study, stats_config = config.study, config.stats
     seeds = study.seeds_of(model)
     unit_nll: dict[str, np.ndarray] = {}
@@ -130,7 +242,12 @@ def _model_results(
         level=stats_config.level,
         n_boot=stats_config.n_boot,
         seed=stats_config.seed,
+        bootstrap_gaps=replicates,
     )
+    if seed_rows is not None:
+        seed_rows += _seed_rows(
+            wdir, source, model, unit_nll, curves, seeds, study.reference_order, test
+        )
     return leaves, natural, curves
 
 
@@ -143,6 +260,8 @@ def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
     profiles: dict[str, Any] = {}
     spans: dict[str, Any] = {}
     curves: dict[str, Any] = {}
+    replicates: dict[str, dict[str, dict[str, np.ndarray]]] = {}
+    cells: list[dict[str, Any]] = []
     data_hashes: dict[str, str] = {}
     for source in study.sources:
         folder = wdir / str(units_dir(source))
@@ -152,8 +271,9 @@ def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
         floors = np.load(folder / "floors.npy") if (folder / "floors.npy").is_file() else None
         table[source], profiles[source], curves[source] = {}, {}, {}
         for model in study.models_on(source):
+            draws = replicates.setdefault(source, {}).setdefault(model, {})
             leaves, natural, model_curves = _model_results(
-                wdir, source, model, config, test, floors
+                wdir, source, model, config, test, floors, draws, cells
             )
             table[source][model], curves[source][model] = leaves, model_curves
             profiles[source][model] = stats.position_profile(
@@ -163,6 +283,18 @@ def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
                 named = {k: (int(v[0]), int(v[1])) for k, v in info["spans"].items()}
                 spans.setdefault(source, {})[model] = stats.span_breakdown(natural, named)
     stats.adjust_holm(table, reference_order=reference)
+    stats.simultaneous_intervals(table, replicates, reference_order=reference)
+    flags = [
+        line
+        for source in study.sources
+        for line in _training_flags(
+            source,
+            table[source],
+            curves[source],
+            reference,
+            _baseline_bits(wdir, source, reference),
+        )
+    ]
     return {
         "table": table,
         "profiles": profiles,
@@ -174,8 +306,9 @@ def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
             "test_units_sha256": data_hashes,
             "params": config.to_dict(),
         },
-        "warnings": _seed_warnings(study),
+        "warnings": _seed_warnings(study) + flags,
         "level": stats_config.level,
+        "cells": cells,
     }
 
 

@@ -7,7 +7,10 @@ every number written out goes through :func:`rounded`.
 - scoring: :func:`unit_nll`, :func:`bits_per_token`, :func:`bits_per_byte`,
   :func:`natural_order_losses` (per-position losses mapped back to the natural order);
 - gaps: :func:`summarize_model` (bits per token, gap, interval, p-values per order),
-  :func:`adjust_holm`, :func:`below_floor`, the report's cautions;
+  :func:`adjust_holm`, :func:`simultaneous_intervals` (intervals at the level Holm judged
+  each row), :func:`below_floor`, the report's cautions;
+- training: :func:`still_falling`, :func:`worse_than_baseline` (signs of an under-trained
+  model);
 - profiles: :func:`position_profile`, :func:`span_breakdown`, :func:`segment_breakdown`;
 - resampling kernels: :func:`bootstrap_totals`, :func:`sign_flip_pvalue`,
   :func:`bootstrap_pvalue`, :func:`holm`.
@@ -37,12 +40,16 @@ from ._gaps import (
 from ._numbers import SIGNIFICANT_DIGITS, rounded
 from ._profiles import position_profile, segment_breakdown, span_breakdown
 from ._scoring import bits_per_byte, bits_per_token, natural_order_losses, unit_nll
+from ._simultaneous import simultaneous_intervals
+from ._training import BASELINE_NGRAM_ORDER, STEEP_FALL, still_falling, worse_than_baseline
 
 __all__ = [
+    "BASELINE_NGRAM_ORDER",
     "FLOOR_Z",
     "MIN_DOCUMENTS_FOR_GROUPING",
     "MIN_SEEDS_FOR_TRAINING_NOISE",
     "SIGNIFICANT_DIGITS",
+    "STEEP_FALL",
     "adjust_holm",
     "below_floor",
     "bits_per_byte",
@@ -60,7 +67,10 @@ __all__ = [
     "seed_warning",
     "segment_breakdown",
     "sign_flip_pvalue",
+    "simultaneous_intervals",
     "span_breakdown",
+    "still_falling",
     "summarize_model",
     "unit_nll",
+    "worse_than_baseline",
 ]

@@ -172,6 +172,7 @@ def summarize_model(
     n_boot: int = 2000,
     seed: int = 0,
     n_flips: int = 2000,
+    bootstrap_gaps: dict[str, np.ndarray] | None = None,
 ) -> dict[str, dict[str, Any]]:
     """Bits per token and paired gaps to the reference order for one model on one source.
 
@@ -199,6 +200,9 @@ def summarize_model(
         Bootstrap replicates and Monte Carlo sign patterns.
     seed : int
         Seed of every random draw: the same inputs and seed give the same numbers.
+    bootstrap_gaps : dict, optional
+        When given, filled with ``{order: (n_boot,) bootstrap gaps in percent}`` (the draws
+        behind the interval), for :func:`retrograde.stats.simultaneous_intervals`.
 
     Returns
     -------
@@ -258,6 +262,8 @@ def summarize_model(
     boot_gaps = 100.0 * (replicates / replicates[:, :1] - 1.0)
     tail = (1.0 - level) / 2.0
     lows, highs = np.quantile(boot_gaps, [tail, 1.0 - tail], axis=0)
+    if bootstrap_gaps is not None:
+        bootstrap_gaps.update({order: boot_gaps[:, i].copy() for i, order in enumerate(orders)})
     differences = per_group[1:].mean(axis=1) - per_group[0].mean(axis=0)  # (n_orders-1, n_groups)
     sign_flip = np.ones(n_orders)
     if n_orders > 1:

@@ -45,17 +45,28 @@ def position_profile(
     """Mean loss per natural-order position (or position bucket), and its gap to the reference.
 
     ``natural_losses[order]`` holds, per test unit, the loss in nats at each natural-order
-    position with the end marker last. When every unit has the same length ``L <= n_buckets``
-    positions are exact (``x`` = 0 .. L-1); otherwise position ``j`` of a unit with ``L`` tokens
-    falls in bucket ``floor(j * n_buckets / L)`` and ``x`` is the bucket's middle as a fraction
-    of the unit. The end marker is reported apart (``end_bits``).
+    position with the end marker last. When every unit has the same length ``L``, positions
+    stay in tokens (``position: "absolute"``): exact when ``L <= n_buckets``, else grouped in
+    buckets of ``ceil(L / n_buckets)`` whole positions (every bucket equally wide but perhaps
+    the last, so no bucket mixes one and two positions), ``x`` the first position of each.
+    Otherwise position ``j`` of a unit with ``L`` tokens falls in bucket
+    ``floor(j * n_buckets / L)`` and ``x`` is the bucket's middle as a fraction of the unit
+    (``position: "relative"``). The end marker is reported apart (``end_bits``).
+
+    Uncertainty: ``diff_se[order]`` is the standard error of each bucket's mean difference to
+    the reference, with units as the independent draws (a unit's positions in one bucket are
+    correlated): the linearized variance of a ratio mean, ``sqrt(n / (n - 1) * sum_i (s_i -
+    m c_i)^2) / sum_i c_i`` over the ``n`` units with ``c_i`` tokens and difference sum ``s_i``
+    in the bucket, mean ``m`` (Cochran 1977, *Sampling Techniques*, section 6.4).
 
     Returns
     -------
     dict
-        ``{"reference_order", "position": "absolute" | "relative", "x": [...], "tokens": [...],
-        "bits": {order: [...]}, "diff_bits": {order: [...]}, "end_bits": {order: float}}``,
-        bits are mean bits per token; empty buckets hold ``None``.
+        ``{"reference_order", "position": "absolute" | "relative", "bucket_width", "x": [...],
+        "tokens": [...], "units": [...], "bits": {order: [...]}, "diff_bits": {order: [...]},
+        "diff_se": {order: [...]}, "end_bits": {order: float}}``; bits are mean bits per
+        token; empty buckets hold ``None`` (``diff_se`` also when a bucket has one unit).
+        ``bucket_width`` is positions per bucket (absolute) or ``None`` (relative).
     """
     n_buckets = check_int("stats 'position_profile'", "n_buckets", n_buckets, 1)
     orders, lengths = _check_same_units(natural_losses)
@@ -67,15 +78,23 @@ def position_profile(
     length_of_value = np.repeat(token_lengths, lengths)
     is_token = positions < length_of_value
     fixed = len(token_lengths) > 0 and np.all(token_lengths == token_lengths[0])
-    if fixed and token_lengths[0] <= n_buckets:
-        mode, n_bins = "absolute", int(token_lengths[0])
-        bucket = positions[is_token]
-        x = [float(j) for j in range(n_bins)]
+    width: int | None
+    if fixed:
+        length = int(token_lengths[0])
+        width = max(1, -(-length // n_buckets))
+        mode, n_bins = "absolute", -(-length // width)
+        bucket = positions[is_token] // width
+        x = [float(j * width) for j in range(n_bins)]
     else:
-        mode, n_bins = "relative", n_buckets
+        mode, n_bins, width = "relative", n_buckets, None
         bucket = (positions[is_token] * n_buckets) // length_of_value[is_token]
         x = [rounded((j + 0.5) / n_buckets) for j in range(n_bins)]
     counts = np.bincount(bucket, minlength=n_bins)
+    unit_of_value = np.repeat(np.arange(len(lengths), dtype=np.int64), lengths)[is_token]
+    cell = unit_of_value * n_bins + bucket  # (unit, bucket) of every token
+    n_cells = len(lengths) * n_bins
+    cell_counts = np.bincount(cell, minlength=n_cells).reshape(len(lengths), n_bins)
+    units_per_bucket = (cell_counts > 0).sum(axis=0)
 
     def mean_bits(losses: Ragged) -> np.ndarray:
         summed = np.bincount(bucket, weights=losses.values[is_token], minlength=n_bins)
@@ -84,6 +103,17 @@ def position_profile(
 
     means = {order: mean_bits(natural_losses[order]) for order in orders}
     end_values = {o: natural_losses[o].values[~is_token] for o in orders}
+    reference_values = natural_losses[reference_order].values[is_token]
+
+    def standard_error(order: str) -> np.ndarray:
+        differences = (natural_losses[order].values[is_token] - reference_values) / _LN2
+        sums = np.bincount(cell, weights=differences, minlength=n_cells).reshape(-1, n_bins)
+        mean = means[order] - means[reference_order]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            residual = np.where(cell_counts > 0, sums - mean[None, :] * cell_counts, 0.0)
+            n = units_per_bucket
+            variance = n / (n - 1.0) * (residual**2).sum(axis=0)
+            return np.sqrt(variance) / counts
 
     def listed(values: np.ndarray) -> list[float | None]:
         return [rounded(v) if np.isfinite(v) else None for v in values]
@@ -91,10 +121,13 @@ def position_profile(
     return {
         "reference_order": reference_order,
         "position": mode,
+        "bucket_width": width,
         "x": x,
         "tokens": counts.astype(int).tolist(),
+        "units": units_per_bucket.astype(int).tolist(),
         "bits": {o: listed(means[o]) for o in orders},
         "diff_bits": {o: listed(means[o] - means[reference_order]) for o in orders},
+        "diff_se": {o: listed(standard_error(o)) for o in orders},
         "end_bits": {
             o: rounded(end_values[o].mean() / _LN2) if len(end_values[o]) else None for o in orders
         },
