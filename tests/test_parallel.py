@@ -128,6 +128,10 @@ def test_run_with_two_jobs_writes_byte_identical_metrics_to_one_job(tmp_path):
             first = {f: (cells / f).read_bytes() for f in files}
         else:
             assert {f: (cells / f).read_bytes() for f in files} == first
+    assert b'"reverse"' in metrics[1]  # the table really holds the smoke grid's cells
+    # The two-job run went through the parallel path: one log per fit stage.
+    logs = sorted(p.name for p in (hosts[2] / LOG_DIR).glob("fit@*.log"))
+    assert logs == [f"fit@corpus-ngram-{o}-{s}.log" for o in ("forward", "reverse") for s in (0, 1)]
 
 
 def _without_measured(lock: str) -> str:
@@ -145,10 +149,6 @@ def _without_measured(lock: str) -> str:
         if not (skip and stripped.startswith(("md5:", "size:", "nfiles:"))):
             kept.append(line)
     return "\n".join(kept)
-    assert b'"reverse"' in metrics[1]  # the table really holds the smoke grid's cells
-    # The two-job run went through the parallel path: one log per fit stage.
-    logs = sorted(p.name for p in (hosts[2] / LOG_DIR).glob("fit@*.log"))
-    assert logs == [f"fit@corpus-ngram-{o}-{s}.log" for o in ("forward", "reverse") for s in (0, 1)]
 
 
 @pytest.mark.slow
