@@ -541,7 +541,7 @@ def test_the_fit_stage_accepts_a_torch_model_and_returns_its_test_logprobs():
 def test_the_progress_bar_counts_tokens_and_shows_only_when_asked_on_a_terminal(
     monkeypatch, progress, disable
 ):
-    from retrograde.families import _torch_family
+    from retrograde.families import _progress
 
     bars = []
 
@@ -559,7 +559,7 @@ def test_the_progress_bar_counts_tokens_and_shows_only_when_asked_on_a_terminal(
         def close(self):
             pass
 
-    monkeypatch.setattr(_torch_family, "tqdm", RecordingBar)
+    monkeypatch.setattr(_progress, "tqdm", RecordingBar)  # every family's bar goes through it
     train = _units(10, 3, 6, 0)
     _small("gru", progress=progress, epochs=1).fit(train, seed=0)
     (bar,) = bars
