@@ -56,6 +56,8 @@ class NGram(Family):
     name: ClassVar[str] = "ngram"
     #: 2: context ids and keys in int64 on every look-up path (vocabularies above ~46 k)
     numerics_version: ClassVar[int] = 2
+    #: counting is exact: the seed only chooses the training sample (retrograde._train_sample)
+    has_own_randomness: ClassVar[bool] = False
     #: small, fast parameters for the conformance test
     _test_params: ClassVar[dict[str, Any]] = {"order": 3}
 

@@ -46,10 +46,15 @@ def fit_cell(
 ) -> tuple[Any, np.ndarray, list[dict[str, Any]]]:
     """Fit ``model_spec`` (``{family, params}``) on train (valid for early stopping).
 
+    ``model_spec["train_sample"]`` (default ``auto``) chooses the training units seed
+    ``seed`` sees: all of them, or for a family without randomness of its own a half-sample
+    chosen by the seed (:mod:`retrograde._train_sample`).
+
     Returns ``(model, test_logprobs, curve)``; ``test_logprobs`` is the flat float64 array
     of the test units' log-probabilities (``len + 1`` per unit, end marker last).
     """
     from .. import families
+    from .._train_sample import resample_train, resolve_train_sample
     from ..families._probe import check_probe, probe_positions, probe_size
 
     def note(line: str) -> None:
@@ -59,6 +64,11 @@ def fit_cell(
     model = families.make(model_spec["family"], **model_spec["params"])
     train, valid, test = splits["train"], splits["valid"], splits["test"]
     note(f"fit {model_spec['family']} {model_spec['params']} seed={seed}")
+    scheme = resolve_train_sample(model_spec.get("train_sample", "auto"), model)
+    if scheme != "none" and len(train):  # an empty split: the family says so itself
+        n_all = len(train)
+        train = resample_train(train, seed, scheme=scheme)
+        note(f"train sample: {scheme} of {n_all} units chosen by seed {seed}")
     note(
         f"train {len(train)} units / {len(train.tokens)} tokens; valid {len(valid)}; test {len(test)}"
     )
