@@ -67,6 +67,7 @@ def test_default_config_composes_into_the_documented_shape(host):
             "family": "ngram",
             "params": {"order": 3, "discount": None},
             "code": None,
+            "train_sample": "auto",  # the seed picks half of the training units (an n-gram)
             "numerics_version": 2,
             "package_version": __version__,
         }
@@ -79,7 +80,13 @@ def test_default_config_composes_into_the_documented_shape(host):
         "code": "data/corpus/units",
     }
     assert study["seeds"] == [0, 1, 2] and study["reference_order"] == "forward"
-    assert params["stats"] == {"level": 0.95, "n_boot": 2000, "seed": 0, "position_buckets": 50}
+    assert params["stats"] == {
+        "level": 0.95,
+        "interval": "t",
+        "n_boot": 2000,
+        "seed": 0,
+        "position_buckets": 50,
+    }
 
 
 def test_composed_params_read_back_identically_with_pyyaml_and_omegaconf(host):
@@ -219,6 +226,11 @@ def test_unknown_plugin_names_fail_with_did_you_mean(host, override, expected):
         ("study.reference_order=forwad", "did you mean 'forward'"),
         ("stats.level=1.5", "parameter level=1.5 is invalid"),
         ("stats.n_boot=many", "'stats.n_boot'"),
+        ("stats.interval=normal", "parameter interval='normal' is invalid; allowed: one of 't'"),
+        (
+            "+study.models.ngram.train_sample=halves",
+            "study.models.ngram: parameter train_sample='halves' is invalid",
+        ),
         ("study.sources.corpus.split.fractions=[0.5,0.1,0.1]", "summing to 1"),
         ("study.sources.corpus.units.mode=paragraph", "mode='paragraph' is invalid"),
         ("study.sources.corpus.units.mode=window", "window=None is invalid"),

@@ -25,6 +25,7 @@ from pathlib import Path
 from typing import Any
 
 from . import __version__
+from ._train_sample import resolve_train_sample
 from ._validation import check_choice, check_float, check_int, did_you_mean
 from .errors import ConfigError, DataError, RetrogradeError
 from .hostrepo import PIPELINE_DIR
@@ -129,6 +130,7 @@ def check_plugins(config: dict[str, Any], root: Path) -> dict[str, Any]:
         )
     check_float("stats", "level", stats["level"], 0.0, 1.0, low_open=True, high_open=True)
     check_int("stats", "n_boot", stats["n_boot"], 1)
+    check_choice("stats", "interval", stats.get("interval", "t"), ("t", "bootstrap"))
     check_int("stats", "seed", stats["seed"], 0)
     check_int("stats", "position_buckets", stats["position_buckets"], 1)
     _check_orders(study["orders"])
@@ -166,6 +168,7 @@ def _check_models(models_config: dict[str, Any], root: Path) -> None:
             model._validate_params()  # families check their params in fit; do it now
         except RetrogradeError as exc:
             raise _prefixed(where, exc) from exc
+        resolve_train_sample(entry.get("train_sample", "auto"), factory, where)
         entry["params"] = resolved_params(factory, entry["params"])
         entry["numerics_version"] = int(getattr(factory, "numerics_version", 1))
         entry["package_version"] = __version__

@@ -109,6 +109,8 @@ class ModelConfig:
     #: a ``command`` model's trainer: a file or folder relative to the host root, a DVC
     #: dependency of its cells; found in the command when null (``python train.py``)
     code: str | None = None
+    #: which training units each seed trains on: auto | none | half | bootstrap (docs/config.md)
+    train_sample: str = "auto"
 
 
 @dataclass
@@ -131,6 +133,7 @@ class StudyConfig:
 @dataclass
 class StatsConfig:
     level: float = 0.95
+    interval: str = "t"  # t | bootstrap (docs/statistics.md)
     n_boot: int = 2000
     seed: int = 0
     position_buckets: int = 50

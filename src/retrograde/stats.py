@@ -38,11 +38,13 @@ from ._bootstrap import (
     seed_weight_scale,
     sign_flip_pvalue,
 )
+from ._intervals import GapInterval, gap_interval
 from ._profiles import position_profile, segment_breakdown, span_breakdown
-from ._validation import check_float, check_int
+from ._validation import check_choice, check_float, check_int
 from .errors import DataError
 
 __all__ = [
+    "INTERVALS",
     "MIN_DOCUMENTS_FOR_GROUPING",
     "MIN_SEEDS_FOR_TRAINING_NOISE",
     "grouping_warning",
@@ -50,6 +52,7 @@ __all__ = [
     "adjust_holm",
     "below_floor",
     "bootstrap_pvalue",
+    "end_marker_cost",
     "position_profile",
     "rounded",
     "seed_warning",
@@ -64,6 +67,8 @@ MIN_SEEDS_FOR_TRAINING_NOISE = 3
 #: with fewer test documents the bootstrap resamples units one by one (resampling 1-9
 #: documents would give a degenerate or wildly unstable interval); the report warns
 MIN_DOCUMENTS_FOR_GROUPING = 10
+#: how the gap interval is computed (``stats.interval``): see :func:`summarize_model`
+INTERVALS = ("t", "bootstrap")
 _LN2 = math.log(2.0)
 _OWNER = "stats 'summarize_model'"
 
@@ -106,6 +111,41 @@ def below_floor(unit_nll: np.ndarray, floors: np.ndarray, z: float = FLOOR_Z) ->
     spread = float(differences.std(ddof=1)) if len(differences) > 1 else 0.0
     standard_error = spread / math.sqrt(len(differences))
     return mean if mean + z * standard_error < 0 else None
+
+
+def end_marker_cost(length: int, known_positions: int = 0) -> tuple[float, float]:
+    """Bits per token a model that cannot tell the position pays for the end of a unit.
+
+    Units all have ``length`` tokens, so the true end-marker probability is 1 after the last
+    token and 0 before. A model that can tell where it is at only ``known_positions`` of the
+    ``length + 1`` events of a unit (an ``N``-gram sees the begin marker at the first
+    ``N - 1``; a model with no context at none) sees the other ``m = length + 1 -
+    known_positions`` events alike, ``m - 1`` tokens then the end marker, so its best single
+    end probability there is ``q = 1/m`` (the maximum-likelihood rate of a geometric
+    length). A unit then costs ``log2 m`` bits for the end marker and ``(m - 1) log2(m / (m -
+    1))`` bits spread over its tokens (each token's probability is scaled by ``1 - q``).
+    Derived here; with ``known_positions = 0`` the sum is ``log2(L+1)/L + log2((L+1)/L)``
+    per token.
+
+    Returns
+    -------
+    (end_bits_per_token, content_bits_per_token)
+        Both divided by ``length``; their sum is the whole cost above the exact floor.
+
+    Examples
+    --------
+    >>> end, content = end_marker_cost(64)
+    >>> round(end, 4), round(content, 4), round(end + content, 3)
+    (0.0941, 0.0224, 0.116)
+    """
+    length = check_int("stats 'end_marker_cost'", "length", length, 1)
+    known_positions = check_int(
+        "stats 'end_marker_cost'", "known_positions", known_positions, 0, length
+    )
+    m = length + 1 - known_positions
+    end_bits = math.log2(m)
+    content_bits = (m - 1) * math.log2(m / (m - 1)) if m > 1 else 0.0
+    return end_bits / length, content_bits / length
 
 
 def seed_warning(n_seeds: int) -> str | None:
@@ -188,7 +228,10 @@ def summarize_model(
     n_bytes: np.ndarray | None = None,
     doc_ids: np.ndarray | None = None,
     floors: np.ndarray | None = None,
+    end_nll: Mapping[str, np.ndarray] | None = None,
     level: float = 0.95,
+    interval: str = "t",
+    paired_seeds: bool = True,
     n_boot: int = 2000,
     seed: int = 0,
     n_flips: int = 2000,
@@ -207,16 +250,29 @@ def summarize_model(
     n_bytes : (n_units,) int, optional
         Natural UTF-8 bytes per unit; adds ``bits_per_byte``.
     doc_ids : (n_units,) int, optional
-        Document of each unit; the bootstrap and the sign flips then work on whole documents
+        Document of each unit; the interval and the sign flips then work on whole documents
         (when there are at least ``MIN_DOCUMENTS_FOR_GROUPING`` of them; else on units, and
         :func:`grouping_warning` explains why).
     floors : (n_units,) float, optional
         Exact NLL in nats of each unit (calibration sources); adds ``floor_bits_per_token``
         and ``excess_bits_per_token``.
+    end_nll : mapping order -> (n_seeds, n_units) float, optional
+        The end marker's share of ``unit_nll``; adds ``end_bits_per_token`` and the same gap
+        over the content tokens alone: ``content_gap_pct`` with its interval (and
+        ``content_excess_bits_per_token`` with ``floors``).
     level : float
         Confidence level of the interval, in (0, 1).
+    interval : {"t", "bootstrap"}
+        ``t`` (default): Student-t interval from a variance decomposition of the gap
+        (:mod:`retrograde._intervals`); ``bootstrap``: the earlier two-level percentile
+        bootstrap with widened seed weights (:func:`retrograde._bootstrap.bootstrap_totals`),
+        kept to reproduce older tables; too wide with few seeds (``docs/statistics.md``).
+    paired_seeds : bool
+        Whether seed ``s`` of every order trained on one shared sample of training units (a
+        family whose seed chooses its training sample); ``False`` when each fit's randomness
+        is its own, so the orders' seed effects are estimated apart (more degrees of freedom).
     n_boot, n_flips : int
-        Bootstrap replicates and Monte Carlo sign patterns.
+        Bootstrap replicates (``interval="bootstrap"``) and Monte Carlo sign patterns.
     seed : int
         Seed of every random draw: the same inputs and seed give the same numbers.
 
@@ -224,21 +280,25 @@ def summarize_model(
     -------
     dict
         ``{order: leaf}``; a leaf has ``bits_per_token``, ``gap_pct``, ``gap_pct_low``,
-        ``gap_pct_high``, ``p_value``, ``p_value_sign_flip``, ``seeds``, ``seed_spread_pct`` (``None`` with one
-        seed), ``units``, ``tokens``, ``groups`` (documents or units resampled) and, when
-        known, ``documents``, ``bits_per_byte``, ``floor_bits_per_token``,
-        ``excess_bits_per_token``.
+        ``gap_pct_high``, ``p_value``, ``p_value_sign_flip``, ``seeds``, ``seed_spread_pct``
+        (``None`` with one seed), ``units``, ``tokens``, ``groups`` (documents or units
+        resampled) and, when known, ``unit_length`` (every test unit has that many tokens),
+        ``documents``, ``bits_per_byte``, ``floor_bits_per_token``,
+        ``excess_bits_per_token``, ``end_bits_per_token``, ``content_gap_pct``,
+        ``content_gap_pct_low``, ``content_gap_pct_high`` and
+        ``content_excess_bits_per_token``.
 
     Examples
     --------
     >>> rng = np.random.default_rng(1)
     >>> forward = rng.gamma(5.0, 2.0, size=(3, 40))
     >>> leaves = summarize_model({"forward": forward, "reverse": forward * 1.1},
-    ...                          reference_order="forward", n_tokens=np.full(40, 5), n_boot=200)
+    ...                          reference_order="forward", n_tokens=np.full(40, 5))
     >>> leaves["reverse"]["gap_pct"], leaves["forward"]["gap_pct"]
     (10.0, 0.0)
     """
     level = check_float(_OWNER, "level", level, 0.0, 1.0, low_open=True, high_open=True)
+    interval = check_choice(_OWNER, "interval", interval, INTERVALS)
     n_boot = check_int(_OWNER, "n_boot", n_boot, 10)
     n_flips = check_int(_OWNER, "n_flips", n_flips, 10)
     seed = check_int(_OWNER, "seed", seed, 0)
@@ -247,7 +307,9 @@ def summarize_model(
     n_bytes = _optional_per_unit("n_bytes", n_bytes, n_units)
     doc_ids = _optional_per_unit("doc_ids", doc_ids, n_units)
     floors = _optional_per_unit("floors", floors, n_units)
+    end = _checked_end_nll(end_nll, orders, nll)
     total_tokens = int(np.sum(n_tokens))
+    with_seeds = n_seeds >= MIN_SEEDS_FOR_TRAINING_NOISE
 
     group_index, n_groups = np.arange(n_units), n_units
     n_documents = None
@@ -256,7 +318,9 @@ def summarize_model(
         n_documents = int(document_index.max()) + 1
         if n_documents >= MIN_DOCUMENTS_FOR_GROUPING:
             group_index, n_groups = document_index.ravel(), n_documents
-    per_group = group_sums(nll, group_index.ravel(), n_groups)  # (n_orders, n_seeds, n_groups)
+    # (n_orders, n_seeds, n_groups) whole losses, then (with end_nll) content losses
+    per_group = group_sums(nll, group_index.ravel(), n_groups)
+    content = None if end is None else group_sums(nll - end, group_index.ravel(), n_groups)
     rng = np.random.default_rng(seed)
 
     totals = nll.sum(axis=2).mean(axis=1)  # (n_orders,) nats, seed-averaged
@@ -265,39 +329,37 @@ def summarize_model(
             f"order {reference_order!r}: the total test loss of some seed is not positive, so "
             "gaps relative to it are undefined; check that the test units are not empty"
         )
-    gaps = 100.0 * (totals / totals[0] - 1.0)
     per_seed_gaps = 100.0 * (nll.sum(axis=2) / nll[0].sum(axis=1) - 1.0)  # (n_orders, n_seeds)
-    replicates = bootstrap_totals(
-        per_group,
-        n_boot=n_boot,
-        rng=rng,
-        seed_weight_scale=(
-            seed_weight_scale(n_seeds, level) if n_seeds >= MIN_SEEDS_FOR_TRAINING_NOISE else None
-        ),
-    )  # (n_boot, n_orders)
-    boot_gaps = 100.0 * (replicates / replicates[:, :1] - 1.0)
-    tail = (1.0 - level) / 2.0
-    lows, highs = np.quantile(boot_gaps, [tail, 1.0 - tail], axis=0)
+    if interval == "t":
+        whole = _t_intervals(per_group, level, with_seeds, paired_seeds)
+        parts = None if content is None else _t_intervals(content, level, with_seeds, paired_seeds)
+    else:
+        stacked = per_group if content is None else np.concatenate([per_group, content])
+        bootstrapped = _bootstrap_intervals(stacked, n_orders, level, with_seeds, n_boot, rng)
+        whole = bootstrapped[:n_orders]
+        parts = None if content is None else bootstrapped[n_orders:]
     differences = per_group[1:].mean(axis=1) - per_group[0].mean(axis=0)  # (n_orders-1, n_groups)
     sign_flip = np.ones(n_orders)
     if n_orders > 1:
         sign_flip[1:], _ = sign_flip_pvalue(differences.T, n_flips=n_flips, rng=rng)
+    # The sign flips treat the seed-averaged losses as fixed, so training randomness alone
+    # makes them reject a true null (measured: 49% at level 0.05 with a 1% seed effect).
+    # The interval's own p-value includes it; taking the larger keeps `significant` in line
+    # with the interval (with the bootstrap, as before, only from 3 seeds on).
     p_values = sign_flip.copy()
-    if n_seeds >= MIN_SEEDS_FOR_TRAINING_NOISE:
-        # The sign flips treat the seed-averaged losses as fixed, so training randomness
-        # alone makes them reject a true null (measured: 49% at level 0.05 with a 1% seed
-        # effect). The bootstrap p-value includes it; taking the larger keeps the
-        # `significant` flag in line with the interval.
-        p_values = np.maximum(sign_flip, bootstrap_pvalue(boot_gaps))
+    if interval == "t" or with_seeds:
+        p_values = np.maximum(sign_flip, [row.p_value for row in whole])
 
+    lengths = np.asarray(n_tokens)
+    fixed_length = bool(np.all(lengths == lengths[0]))
     leaves: dict[str, dict[str, Any]] = {}
     for index, order in enumerate(orders):
         bits_per_token = totals[index] / _LN2 / max(total_tokens, 1)
         leaf: dict[str, Any] = {
             "bits_per_token": rounded(bits_per_token),
-            "gap_pct": rounded(gaps[index]),
-            "gap_pct_low": rounded(lows[index]),
-            "gap_pct_high": rounded(highs[index]),
+            "gap_pct": rounded(whole[index].gap_pct),
+            "gap_pct_low": rounded(whole[index].low),
+            "gap_pct_high": rounded(whole[index].high),
             "p_value": rounded(p_values[index]),
             "p_value_sign_flip": rounded(sign_flip[index]),
             "seeds": n_seeds,
@@ -306,18 +368,100 @@ def summarize_model(
             ),
             "units": n_units,
             "tokens": total_tokens,
-            "groups": n_groups,  # what the bootstrap resampled: documents, or else units
+            "groups": n_groups,  # what the interval resampled: documents, or else units
         }
+        if fixed_length:
+            leaf["unit_length"] = int(lengths[0])
         if n_documents is not None:
             leaf["documents"] = n_documents
         if n_bytes is not None:
             leaf["bits_per_byte"] = rounded(totals[index] / _LN2 / max(int(n_bytes.sum()), 1))
+        floor_bits = None
         if floors is not None:
             floor_bits = float(np.sum(floors)) / _LN2 / max(total_tokens, 1)
             leaf["floor_bits_per_token"] = rounded(floor_bits)
             leaf["excess_bits_per_token"] = rounded(bits_per_token - floor_bits)
+        if end is not None and parts is not None:
+            end_bits = float(end[index].sum(axis=1).mean()) / _LN2 / max(total_tokens, 1)
+            leaf["end_bits_per_token"] = rounded(end_bits)
+            leaf["content_gap_pct"] = rounded(parts[index].gap_pct)
+            leaf["content_gap_pct_low"] = rounded(parts[index].low)
+            leaf["content_gap_pct_high"] = rounded(parts[index].high)
+            if floor_bits is not None:
+                # The exact floor charges the end marker nothing (fixed-length units), so it is
+                # already a floor of the content tokens alone.
+                content_bits = bits_per_token - end_bits
+                leaf["content_excess_bits_per_token"] = rounded(content_bits - floor_bits)
         leaves[order] = leaf
     return {order: leaves[order] for order in unit_nll}
+
+
+def _checked_end_nll(
+    end_nll: Mapping[str, np.ndarray] | None, orders: list[str], nll: np.ndarray
+) -> np.ndarray | None:
+    """(n_orders, n_seeds, n_units) end-marker nats in ``orders``' order, or ``None``."""
+    if end_nll is None:
+        return None
+    missing = [o for o in orders if o not in end_nll]
+    if missing:
+        raise DataError(f"end_nll has no losses for order(s) {missing}; give one per order")
+    end = np.stack([np.asarray(end_nll[o], dtype=np.float64) for o in orders])
+    if end.shape != nll.shape:
+        raise DataError(
+            f"end_nll has shape {end.shape[1:]} per order; expected {nll.shape[1:]} like the "
+            "unit losses (one end-marker loss per seed and test unit)"
+        )
+    if not np.all(np.isfinite(end)) or np.any(end < 0) or np.any(end > nll + 1e-9 * np.abs(nll)):
+        raise DataError(
+            "end_nll must be finite, >= 0 and no larger than the unit's whole loss; pass "
+            "minus the log-probability of each unit's end marker"
+        )
+    return end
+
+
+def _t_intervals(
+    per_group: np.ndarray, level: float, with_seeds: bool, paired: bool
+) -> list[GapInterval]:
+    """One :class:`GapInterval` per order of ``per_group`` (n_orders, n_seeds, n_groups)."""
+    reference = per_group[0]
+    return [
+        gap_interval(losses, reference, level=level, with_seeds=with_seeds, paired=paired)
+        if index
+        else GapInterval(0.0, 0.0, 0.0, 1.0, float("inf"))
+        for index, losses in enumerate(per_group)
+    ]
+
+
+def _bootstrap_intervals(
+    per_group: np.ndarray,
+    n_orders: int,
+    level: float,
+    with_seeds: bool,
+    n_boot: int,
+    rng: np.random.Generator,
+) -> list[GapInterval]:
+    """Percentile intervals of the two-level bootstrap (``interval="bootstrap"``).
+
+    ``per_group`` stacks blocks of ``n_orders`` variants (whole losses, then possibly
+    content losses), each block with its reference first; all share one set of weights.
+    """
+    replicates = bootstrap_totals(
+        per_group,
+        n_boot=n_boot,
+        rng=rng,
+        seed_weight_scale=seed_weight_scale(per_group.shape[1], level) if with_seeds else None,
+    )  # (n_boot, n_variants)
+    reference_column = (np.arange(per_group.shape[0]) // n_orders) * n_orders
+    boot_gaps = 100.0 * (replicates / replicates[:, reference_column] - 1.0)
+    totals = per_group.sum(axis=2).mean(axis=1)
+    gaps = 100.0 * (totals / totals[reference_column] - 1.0)
+    tail = (1.0 - level) / 2.0
+    lows, highs = np.quantile(boot_gaps, [tail, 1.0 - tail], axis=0)
+    p_values = bootstrap_pvalue(boot_gaps)
+    return [
+        GapInterval(float(g), float(lo), float(hi), float(p), float("inf"))
+        for g, lo, hi, p in zip(gaps, lows, highs, p_values, strict=True)
+    ]
 
 
 def adjust_holm(

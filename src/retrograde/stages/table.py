@@ -48,11 +48,12 @@ def _data_hash(units: SequenceSet) -> str:
 
 def _order_losses(
     wdir: Path, where: tuple[str, str, str], seeds: list[int], test: SequenceSet
-) -> tuple[np.ndarray, Ragged, list[Any]]:
+) -> tuple[np.ndarray, np.ndarray, Ragged, list[Any]]:
     """One (source, model, order) over its seeds.
 
-    Returns ``(unit_nll, natural, curves)``: (n_seeds, n_units) nats per test unit, the
-    seed-averaged per-position losses in natural order (end marker last), one curve a seed.
+    Returns ``(unit_nll, end_nll, natural, curves)``: (n_seeds, n_units) nats per test unit,
+    the end marker's share of them, the seed-averaged per-position losses in natural order
+    (end marker last), one curve a seed.
     """
     from .. import scoring
 
@@ -66,15 +67,16 @@ def _order_losses(
     positions = np.load(positions_path, allow_pickle=False)
     # Each unit has len + 1 scores (end marker last): offsets of the flat score arrays.
     score_offsets = np.concatenate([[0], np.cumsum(test.lengths + 1)]).astype(np.int64)
-    unit_nll, losses, curves = [], [], []
+    unit_nll, end_nll, losses, curves = [], [], [], []
     for seed in seeds:
         values, curve = _read_cell(wdir, source, model, order, seed)
         logprobs = Ragged(values, score_offsets)
         unit_nll.append(scoring.unit_nll(logprobs))
+        end_nll.append(-values[score_offsets[1:] - 1])  # the last score of each unit
         losses.append(scoring.natural_order_losses(logprobs, positions, test).values)
         curves.append(curve)
     natural = Ragged(np.mean(losses, axis=0), score_offsets)
-    return np.stack(unit_nll), natural, curves
+    return np.stack(unit_nll), np.stack(end_nll), natural, curves
 
 
 def _check_floor(
@@ -119,13 +121,14 @@ def collect(wdir: Path, params: dict[str, Any]) -> dict[str, Any]:
         data_hashes[source] = _data_hash(test)
         floors = np.load(folder / "floors.npy") if (folder / "floors.npy").is_file() else None
         table[source], profiles[source], curves[source] = {}, {}, {}
-        for model in study["models"]:
+        for model, spec in study["models"].items():
             unit_nll: dict[str, np.ndarray] = {}
+            end_nll: dict[str, np.ndarray] = {}
             natural: dict[str, Ragged] = {}
             curves[source][model] = {}
             for order in study["orders"]:
-                unit_nll[order], natural[order], curves[source][model][order] = _order_losses(
-                    wdir, (source, model, order), seeds, test
+                unit_nll[order], end_nll[order], natural[order], curves[source][model][order] = (
+                    _order_losses(wdir, (source, model, order), seeds, test)
                 )
                 if floors is not None:
                     _check_floor(unit_nll[order], floors, (source, model, order), seeds, test)
@@ -136,7 +139,10 @@ def collect(wdir: Path, params: dict[str, Any]) -> dict[str, Any]:
                 n_bytes=test.n_bytes,
                 doc_ids=test.doc_ids,
                 floors=floors,
+                end_nll=end_nll,
                 level=stats_config["level"],
+                interval=stats_config.get("interval", "t"),
+                paired_seeds=_seeds_share_a_sample(spec),
                 n_boot=stats_config["n_boot"],
                 seed=stats_config["seed"],
             )
@@ -162,6 +168,15 @@ def collect(wdir: Path, params: dict[str, Any]) -> dict[str, Any]:
         "warnings": [warning] if warning else [],
         "level": stats_config["level"],
     }
+
+
+def _seeds_share_a_sample(spec: dict[str, Any]) -> bool:
+    """Whether seed ``s`` of every order trained on one training sample the seed chose."""
+    from .. import families
+    from .._train_sample import resolve_train_sample
+
+    family = families.registry.get(spec["family"])
+    return resolve_train_sample(spec.get("train_sample", "auto"), family) != "none"
 
 
 def _sweeps(study: dict[str, Any]) -> dict[str, Any]:
