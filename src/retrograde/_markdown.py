@@ -15,6 +15,7 @@ from . import __version__
 __all__ = [
     "CAUTIONS",
     "LEAF_FIELDS",
+    "WHICH_GAP",
     "fields_present",
     "is_reference_leaf",
     "markdown_table",
@@ -41,9 +42,14 @@ LEAF_FIELDS = (
     "bits_per_byte",
     "floor_bits_per_token",
     "excess_bits_per_token",
+    "end_bits_per_token",
+    "content_excess_bits_per_token",
     "gap_pct",
     "gap_pct_low",
     "gap_pct_high",
+    "content_gap_pct",
+    "content_gap_pct_low",
+    "content_gap_pct_high",
     "p_value",
     "p_value_sign_flip",
     "p_value_holm",
@@ -52,8 +58,20 @@ LEAF_FIELDS = (
     "seeds",
     "units",
     "tokens",
+    "unit_length",
     "groups",
     "documents",
+)
+
+#: which gap a reader should quote; shown in every report (docs/statistics.md, "Which gap
+#: to quote")
+WHICH_GAP = (
+    "Which gap to quote: where every test unit has the same length (calibration sources, "
+    "window units), quote the **content gap** (content tokens only, end marker left out): "
+    "the end marker then costs a model that cannot tell the position in a unit about "
+    "`log2(L+1)/L + log2((L+1)/L)` bits per token in every order alike, which only dilutes "
+    "the gap, and the exact floor charges it nothing. Where lengths vary (lines, "
+    "documents), where a unit ends is part of what is modelled: quote the **gap**."
 )
 
 
@@ -109,27 +127,54 @@ def _markdown_source(source: str, models: Mapping[str, Any], level: float | None
         ("bits_per_byte", "bits/byte"),
         ("floor_bits_per_token", "floor bits/token"),
         ("excess_bits_per_token", "excess bits/token"),
+        ("end_bits_per_token", "end bits/token"),
+        ("content_excess_bits_per_token", "content excess bits/token"),
     ]
     header += [title for key, title in optional if key in fields]
-    header += [f"gap % [{_interval_title(level)}]", "seed spread %", "p (Holm)", "significant"]
+    header.append(f"gap % [{_interval_title(level)}]")
+    with_content = "content_gap_pct" in fields
+    if with_content:
+        header.append(f"content gap % [{_interval_title(level)}]")
+    header += ["seed spread %", "p (Holm)", "significant"]
     lines = ["| " + " | ".join(header) + " |", "|" + "---|" * len(header)]
     for row in rows:
         reference = is_reference_leaf(row)
         cells = [f"`{row['model']}`", f"`{row['order']}`", _number(row["bits_per_token"], ".4f")]
         cells += [_number(row.get(key), ".4f") for key, _ in optional if key in fields]
         if reference:
-            cells += ["reference", "", "", ""]
+            cells += ["reference"] + [""] * (3 + with_content)
         else:
-            interval = f"[{row['gap_pct_low']:+.2f}, {row['gap_pct_high']:+.2f}]"
             p_holm = row.get("p_value_holm", row.get("p_value"))
+            cells.append(_gap_text(row, "gap_pct"))
+            if with_content:
+                cells.append(_gap_text(row, "content_gap_pct"))
             cells += [
-                f"{row['gap_pct']:+.2f} {interval}",
                 _number(row.get("seed_spread_pct"), ".2f"),
                 _p_text(p_holm),
                 "**yes**" if row.get("significant") else "",
             ]
         lines.append("| " + " | ".join(cells) + " |")
-    return f"### Source `{source}`\n\n" + "\n".join(lines) + "\n"
+    return f"### Source `{source}`\n\n" + _quote_line(rows) + "\n".join(lines) + "\n"
+
+
+def _gap_text(row: Mapping[str, Any], key: str) -> str:
+    """``+10.00 [+8.00, +12.50]`` for ``key`` and its ``_low``/``_high``; ``–`` if absent."""
+    if row.get(key) is None:
+        return "–"
+    return f"{row[key]:+.2f} [{row[key + '_low']:+.2f}, {row[key + '_high']:+.2f}]"
+
+
+def _quote_line(rows: Sequence[Mapping[str, Any]]) -> str:
+    """The sentence under a source's heading saying which gap column to read, or ``""``."""
+    if not rows or any("content_gap_pct" not in row for row in rows):
+        return ""
+    lengths = {row.get("unit_length") for row in rows}
+    if len(lengths) == 1 and None not in lengths:
+        return (
+            f"Every test unit has {lengths.pop()} tokens: quote the content gap (the end "
+            "marker's cost measures whether a model can count positions, not the order).\n\n"
+        )
+    return "Test units differ in length: quote the gap (end marker included).\n\n"
 
 
 def markdown_table(table: Table, level: float | None = None) -> str:
@@ -177,10 +222,10 @@ def render_report(
         parts += ["> **Warnings**", ">"] + [f"> - {w}" for w in warnings] + [""]
     parts += [
         "Each gap is `100 * (NLL(order) / NLL(reference) - 1)` on the same test units, with a "
-        f"{_interval_title(level)} from a bootstrap over units and seeds, and a p-value from a "
-        "paired sign-flip test on units (with 3 or more seeds, no smaller than the bootstrap's "
-        "own p-value), Holm-adjusted over every gap in this table. Positive gaps mean the "
-        "order is harder to learn than the reference.",
+        f"{_interval_title(level)} that accounts for both the test units drawn and the "
+        "training runs (seeds; from 3 of them), and a p-value from a paired sign-flip test "
+        "on units, no smaller than the interval's own, Holm-adjusted over every gap in this "
+        "table. Positive gaps mean the order is harder to learn than the reference. " + WHICH_GAP,
         "",
         markdown_table(table, level),
     ]
