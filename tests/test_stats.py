@@ -706,3 +706,17 @@ def test_end_losses_must_match_the_unit_losses():
             n_tokens=np.ones(4),
             end_nll={"forward": np.ones((2, 4)) * 5, "reverse": np.ones((2, 4))},
         )
+
+
+def test_a_reference_without_content_loss_gets_no_content_gap_but_keeps_the_end_cost():
+    # Units of one token the model always gets right: all the loss is the end marker's.
+    end = np.full((1, 12), 0.5)
+    losses = {"forward": end.copy(), "reverse": end * 1.2}
+    leaves = summarize_model(
+        losses,
+        reference_order="forward",
+        n_tokens=np.ones(12),
+        end_nll={"forward": end, "reverse": end * 1.2},
+    )
+    assert "content_gap_pct" not in leaves["reverse"]
+    assert leaves["reverse"]["end_bits_per_token"] == approx(0.6 / LN2)

@@ -321,6 +321,8 @@ def summarize_model(
     # (n_orders, n_seeds, n_groups) whole losses, then (with end_nll) content losses
     per_group = group_sums(nll, group_index.ravel(), n_groups)
     content = None if end is None else group_sums(nll - end, group_index.ravel(), n_groups)
+    if content is not None and np.any(content[0].sum(axis=1) <= 0):
+        content = None  # a reference with no content loss has no relative content gap
     rng = np.random.default_rng(seed)
 
     totals = nll.sum(axis=2).mean(axis=1)  # (n_orders,) nats, seed-averaged
@@ -368,7 +370,7 @@ def summarize_model(
             ),
             "units": n_units,
             "tokens": total_tokens,
-            "groups": n_groups,  # what the interval resampled: documents, or else units
+            "groups": n_groups,  # the interval's independent draws: documents, or else units
         }
         if fixed_length:
             leaf["unit_length"] = int(lengths[0])
@@ -381,15 +383,16 @@ def summarize_model(
             floor_bits = float(np.sum(floors)) / _LN2 / max(total_tokens, 1)
             leaf["floor_bits_per_token"] = rounded(floor_bits)
             leaf["excess_bits_per_token"] = rounded(bits_per_token - floor_bits)
-        if end is not None and parts is not None:
+        if end is not None:
             end_bits = float(end[index].sum(axis=1).mean()) / _LN2 / max(total_tokens, 1)
             leaf["end_bits_per_token"] = rounded(end_bits)
-            leaf["content_gap_pct"] = rounded(parts[index].gap_pct)
-            leaf["content_gap_pct_low"] = rounded(parts[index].low)
-            leaf["content_gap_pct_high"] = rounded(parts[index].high)
+            if parts is not None:
+                leaf["content_gap_pct"] = rounded(parts[index].gap_pct)
+                leaf["content_gap_pct_low"] = rounded(parts[index].low)
+                leaf["content_gap_pct_high"] = rounded(parts[index].high)
             if floor_bits is not None:
-                # The exact floor charges the end marker nothing (fixed-length units), so it is
-                # already a floor of the content tokens alone.
+                # The exact floor charges the end marker nothing (fixed-length units), so it
+                # is already a floor of the content tokens alone.
                 content_bits = bits_per_token - end_bits
                 leaf["content_excess_bits_per_token"] = rounded(content_bits - floor_bits)
         leaves[order] = leaf
