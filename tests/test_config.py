@@ -328,3 +328,21 @@ def test_every_shipped_source_config_composes_and_builds(host, source):
     spec = params["study"]["sources"][source]
     assert spec["kind"] in ("file", "calibration")
     assert (spec["kind"] == "calibration") == (spec["deps"] == [])
+
+
+def test_a_target_model_keeps_train_sample_beside_its_params():
+    from retrograde.config import normalize
+
+    raw = {
+        "study": {
+            "models": {
+                "m": {"_target_": "pkg.Model", "order": 2, "train_sample": "none", "code": None}
+            }
+        }
+    }
+    assert normalize(raw)["study"]["models"]["m"] == {
+        "family": "pkg.Model",
+        "params": {"order": 2},
+        "train_sample": "none",
+        "code": None,
+    }

@@ -178,7 +178,7 @@ def normalize(raw: dict[str, Any]) -> dict[str, Any]:
         return out
     for group, name_key, keep in (
         ("orders", "name", set()),
-        ("models", "family", {"code"}),
+        ("models", "family", {"code", "train_sample"}),
         ("sources", "name", _SOURCE_KEYS),
     ):
         entries = study.get(group)
