@@ -137,8 +137,9 @@ def gap_interval(
         unit_main = unit + sum(value for value, _ in interaction)
         terms = seed_terms + (terms + interaction if unit_main > 0 else [])
     variance = max(sum(value for value, _ in terms), 0.0)
-    # A negative term can make Satterthwaite's df collapse when it nearly cancels a positive
-    # one; the estimate is never less certain than its least certain positive part.
+    # A negative term that nearly cancels a positive one can make Satterthwaite's df
+    # collapse towards 0 (an unusable t quantile); take at least the df of the least
+    # certain positive part, the seeds' S - 1 when they count.
     floor = min((df for value, df in terms if value > 0), default=float("inf"))
     df = max(satterthwaite_df(terms), floor)
     if variance == 0.0:  # nothing varies: the interval is the point, and only 0 is no gap
