@@ -15,11 +15,11 @@ replication, e.g. Montgomery, *Design and Analysis of Experiments*, chapter 13):
 
 - **training runs** (3 or more seeds): ``var_s(Z_s) / S = G MS_seed / S`` with ``S - 1``
   degrees of freedom: the seed main effect plus the seed-by-unit interaction, as a t
-  interval over the seeds' own gaps would count them. *Paired* (seed ``s`` of every order
-  trained on one training sample the seed chose, ``retrograde._train_sample``) it is
-  computed on ``z``; *unpaired* (each fit's randomness is its own, so two orders' fits share
-  nothing) on each order apart, ``order / T_r`` and ``R reference / T_r``, and the two are
-  added (Welch's unequal-variance form, more degrees of freedom than the pairs' ``S - 1``);
+  interval over the seeds' own gaps would count them. *Paired* (the default: seed ``s`` of
+  every order is one pair, whatever the two fits share) it is computed on ``z``;
+  *unpaired* (only for fits of different orders that share nothing) on each order apart,
+  ``order / T_r`` and ``R reference / T_r``, and the two are added (Welch's
+  unequal-variance form, up to twice the pairs' ``S - 1`` degrees of freedom);
 - **test units**: the unit main effect ``G (MS_group - MS_interaction) / S``, i.e.
   ``G var_g(mean_s z[s, g])`` less the interaction already counted above, kept when
   positive. With fewer than 3 seeds it is ``G var_g(mean_s z[s, g])`` alone (``G - 1``
@@ -102,7 +102,7 @@ def gap_interval(
     """The gap of ``order`` over ``reference`` (both (S, G) per-group nats) with its t interval.
 
     ``with_seeds`` adds the training-run terms (callers use it from 3 seeds on); ``paired``
-    says whether seed ``s`` of both orders trained on one shared sample (module docstring).
+    takes seed ``s`` of both orders as one pair (module docstring).
 
     Examples
     --------

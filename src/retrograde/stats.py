@@ -268,9 +268,13 @@ def summarize_model(
         bootstrap with widened seed weights (:func:`retrograde._bootstrap.bootstrap_totals`),
         kept to reproduce older tables; too wide with few seeds (``docs/statistics.md``).
     paired_seeds : bool
-        Whether seed ``s`` of every order trained on one shared sample of training units (a
-        family whose seed chooses its training sample); ``False`` when each fit's randomness
-        is its own, so the orders' seed effects are estimated apart (more degrees of freedom).
+        ``True`` (default; what the table stage uses): seed ``s`` of every order forms one
+        pair, and the seeds' part of the interval comes from the per-seed gaps; valid
+        whatever two fits with the same seed share (a training sample, initial weights).
+        ``False`` treats the fits of different orders as independent and estimates each
+        order's seed variation apart (Welch's form, up to twice the degrees of freedom):
+        narrower only when they really share nothing; too wide when same-seed fits are
+        alike, too narrow when they are opposed (``docs/statistics.md``).
     n_boot, n_flips : int
         Bootstrap replicates (``interval="bootstrap"``) and Monte Carlo sign patterns.
     seed : int

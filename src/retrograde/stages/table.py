@@ -121,7 +121,7 @@ def collect(wdir: Path, params: dict[str, Any]) -> dict[str, Any]:
         data_hashes[source] = _data_hash(test)
         floors = np.load(folder / "floors.npy") if (folder / "floors.npy").is_file() else None
         table[source], profiles[source], curves[source] = {}, {}, {}
-        for model, spec in study["models"].items():
+        for model in study["models"]:
             unit_nll: dict[str, np.ndarray] = {}
             end_nll: dict[str, np.ndarray] = {}
             natural: dict[str, Ragged] = {}
@@ -142,7 +142,6 @@ def collect(wdir: Path, params: dict[str, Any]) -> dict[str, Any]:
                 end_nll=end_nll,
                 level=stats_config["level"],
                 interval=stats_config.get("interval", "t"),
-                paired_seeds=_seeds_share_a_sample(spec),
                 n_boot=stats_config["n_boot"],
                 seed=stats_config["seed"],
             )
@@ -168,15 +167,6 @@ def collect(wdir: Path, params: dict[str, Any]) -> dict[str, Any]:
         "warnings": [warning] if warning else [],
         "level": stats_config["level"],
     }
-
-
-def _seeds_share_a_sample(spec: dict[str, Any]) -> bool:
-    """Whether seed ``s`` of every order trained on one training sample the seed chose."""
-    from .. import families
-    from .._train_sample import resolve_train_sample
-
-    family = families.registry.get(spec["family"])
-    return resolve_train_sample(spec.get("train_sample", "auto"), family) != "none"
 
 
 def _sweeps(study: dict[str, Any]) -> dict[str, Any]:
