@@ -5,7 +5,7 @@ The corpus is real text that needs no download: the standard library's ``.py`` f
 needed, the ``.py`` files of the running interpreter's ``site-packages`` (numpy, scipy,
 scikit-learn, DVC, ... as installed here); each group in sorted path order. The text is
 cut exactly as the pipeline's ``units`` stage cuts a text source with ``unit: line``:
-:func:`retrograde.units.prepare_units` (salted-hash split 80/10/10, vocabulary fitted on
+:func:`retrograde.data.prepare_units` (salted-hash split 80/10/10, vocabulary fitted on
 the training lines) with the project's ``chars`` or ``words`` tokenizer.
 """
 
@@ -17,10 +17,8 @@ from pathlib import Path
 
 import numpy as np
 
-from retrograde._document import Document
-from retrograde.sequences import SequenceSet
-from retrograde.tokenize import make as make_tokenizer
-from retrograde.units import prepare_units
+from retrograde.data import Document, SequenceSet, prepare_units
+from retrograde.data.tokenizers import make as make_tokenizer
 
 __all__ = [
     "CHARS_PER_WORD_TOKEN",

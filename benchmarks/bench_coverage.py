@@ -45,8 +45,7 @@ import _common
 import numpy as np
 
 from retrograde import families, orders, sources
-from retrograde._train_sample import resample_train
-from retrograde.sequences import SequenceSet
+from retrograde.data import SequenceSet, resample_train
 from retrograde.stats import summarize_model
 
 #: the reversible chain and the split sizes (units of LENGTH tokens)
@@ -295,13 +294,13 @@ DEMO_MLP = {"window": 16, "hidden": 64, "epochs": 20, "lr": 0.01, "batch_size": 
 
 def demo_fits(repetitions: int, n_seeds: int = 3) -> dict[str, Any]:
     """Real ``mlp`` fits on the demo's ``linear_gf2``: the reverse gap, power and widths."""
-    from retrograde.stages.units import calibration_units
+    from retrograde.sources import source_units
 
     source = sources.make("linear_gf2", **DEMO_SOURCE)
     start = time.process_time()
     rows = []
     for repetition in range(repetitions):
-        splits, _ = calibration_units(source, seed=1000 + repetition, **DEMO_SPLIT)
+        splits = source_units(source, seed=1000 + repetition, **DEMO_SPLIT).splits
         losses: dict[str, np.ndarray] = {}
         for name in ("forward", "reverse"):
             order = orders.make(name)

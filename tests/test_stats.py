@@ -13,15 +13,17 @@ from scipy import stats as scipy_stats
 from statsmodels.stats.multitest import multipletests
 
 from retrograde import Ragged, SequenceSet
-from retrograde._bootstrap import bootstrap_totals, holm, sign_flip_pvalue
 from retrograde.errors import ConfigError, DataError
 from retrograde.stats import (
     adjust_holm,
     bootstrap_pvalue,
+    bootstrap_totals,
     grouping_warning,
+    holm,
     position_profile,
     seed_warning,
     segment_breakdown,
+    sign_flip_pvalue,
     span_breakdown,
     summarize_model,
 )
@@ -496,7 +498,7 @@ def test_mean_squares_match_statsmodels_two_way_anova():
     from statsmodels.formula.api import ols
     from statsmodels.stats.anova import anova_lm
 
-    from retrograde._intervals import mean_squares
+    from retrograde.stats import mean_squares
 
     rng = np.random.default_rng(8)
     z = rng.normal(size=(4, 30)) + rng.normal(size=(4, 1)) + rng.normal(size=(1, 30))
@@ -511,7 +513,7 @@ def test_mean_squares_match_statsmodels_two_way_anova():
 
 def test_satterthwaite_df_is_welchs_for_two_sample_variances():
     # Reference: scipy's Welch t-test (equal_var=False) reports the Satterthwaite df.
-    from retrograde._intervals import satterthwaite_df
+    from retrograde.stats import satterthwaite_df
 
     rng = np.random.default_rng(9)
     a, b = rng.normal(0.0, 1.0, size=5), rng.normal(0.0, 3.0, size=8)
@@ -559,7 +561,7 @@ def test_seed_only_variation_gives_the_one_sample_t_interval_of_the_per_seed_gap
 
 
 def test_the_p_value_agrees_with_the_interval():
-    from retrograde._intervals import gap_interval
+    from retrograde.stats import gap_interval
 
     rng = np.random.default_rng(12)
     for _ in range(200):

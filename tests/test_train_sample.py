@@ -6,9 +6,10 @@ import numpy as np
 import pytest
 
 from retrograde import SequenceSet, families, orders, sources
-from retrograde._train_sample import resample_train, resolve_train_sample, sample_index
+from retrograde.data import resample_train, resolve_train_sample, sample_index
 from retrograde.errors import ConfigError
-from retrograde.stages.fit import fit_cell
+from retrograde.config import ModelConfig
+from retrograde.stages.fit import fit_cell, training_units
 
 
 def units(n: int, *, doc_ids=None, vocab_size=None) -> SequenceSet:
@@ -90,9 +91,20 @@ def test_fit_cell_gives_an_ngram_a_different_sample_per_seed_unless_told_not_to(
         "valid": source.generate(5, seed=2),
         "test": source.generate(20, seed=3),
     }
-    spec = {"family": "ngram", "params": {"order": 2}}
+    spec = ModelConfig(family="ngram", params={"order": 2})  # train_sample: auto
     by_seed = [fit_cell(spec, splits, seed=seed)[1] for seed in (0, 1, 0)]
     assert not np.array_equal(by_seed[0], by_seed[1])
     assert np.array_equal(by_seed[0], by_seed[2])
-    fixed = {**spec, "train_sample": "none"}
+    fixed = ModelConfig(family="ngram", params={"order": 2}, train_sample="none")
     assert np.array_equal(fit_cell(fixed, splits, seed=0)[1], fit_cell(fixed, splits, seed=1)[1])
+
+
+def test_the_budget_counts_the_units_a_seed_trained_on():
+    # What budget.json's train_tokens falls back to: the sample, not the whole split.
+    train = units(40)
+    spec = ModelConfig(family="ngram", params={"order": 2})
+    sample = training_units(spec, families.registry.get("ngram"), train, seed=4)
+    assert len(sample) == 20
+    assert sample.tokens.tolist() == resample_train(train, 4).tokens.tolist()
+    mlp = ModelConfig(family="mlp", params={})
+    assert training_units(mlp, families.registry.get("mlp"), train, seed=4) is train

@@ -24,9 +24,8 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from .._io import atomic_dir, write_npz
+from ..data import Ragged, SequenceSet, atomic_dir, write_npz
 from ..errors import DataError, FitError
-from ..sequences import Ragged, SequenceSet
 
 __all__ = ["Family", "FAMILY_FORMAT"]
 
@@ -45,7 +44,7 @@ class Family(ABC):
     #: Whether ``fit`` draws random numbers of its own from ``seed`` (initial weights, batch
     #: order). A family that does not (its fit is a function of the training units alone) has
     #: seed ``s`` train on a sample of the units it chooses instead, so its seeds vary like
-    #: every other family's (``retrograde._train_sample``; ``train_sample`` in docs/config.md).
+    #: every other family's (``retrograde.data.resample_train``; ``train_sample`` in docs/config.md).
     has_own_randomness: ClassVar[bool] = True
 
     def __init__(self, **params: Any) -> None:
@@ -111,6 +110,11 @@ class Family(ABC):
         return int(self.vocab_size_)
 
     vocab_size_: int
+
+    def n_parameters(self) -> int | None:
+        """How many numbers the fitted model learned (weights, or stored counts), for the
+        report's budget; ``None`` when the family cannot tell (an external trainer)."""
+        return None
 
     def _check_fitted(self) -> None:
         if not hasattr(self, "vocab_size_"):

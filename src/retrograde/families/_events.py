@@ -12,7 +12,7 @@ from collections.abc import Callable
 
 import numpy as np
 
-from ..sequences import SequenceSet, index_dtype
+from ..data import SequenceSet, index_dtype
 from ._ngram_counts import gather
 
 __all__ = ["unit_events"]

@@ -26,7 +26,7 @@ from typing import Any
 
 import numpy as np
 
-from ..sequences import index_dtype
+from ..data import index_dtype
 from ._bitset_rank import bitset_rank
 
 __all__ = [

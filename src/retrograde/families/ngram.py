@@ -14,15 +14,14 @@ from collections.abc import Sequence
 from typing import Any, ClassVar
 
 import numpy as np
-from tqdm.auto import tqdm
 
-from .._validation import check_float, check_int
+from ..data import Ragged, SequenceSet
 from ..errors import DataError
-from ..sequences import Ragged, SequenceSet
-from . import registry
+from ..validation import check_float, check_int
 from ._base import Family
 from ._events import unit_events
 from ._ngram_counts import KneserNeyTables, count_tables, interpolated_probs
+from ._progress import progress_bar
 
 __all__ = ["NGram"]
 
@@ -30,7 +29,6 @@ __all__ = ["NGram"]
 _SCORE_TOKENS = 1 << 22
 
 
-@registry.register("ngram")
 class NGram(Family):
     """Interpolated modified Kneser–Ney n-gram model.
 
@@ -56,10 +54,10 @@ class NGram(Family):
     name: ClassVar[str] = "ngram"
     #: 2: context ids and keys in int64 on every look-up path (vocabularies above ~46 k)
     numerics_version: ClassVar[int] = 2
-    #: counting is exact: the seed only chooses the training sample (retrograde._train_sample)
+    #: counting is exact: the seed only chooses the training sample (retrograde.data.resample_train)
     has_own_randomness: ClassVar[bool] = False
-    #: small, fast parameters for the conformance test
-    _test_params: ClassVar[dict[str, Any]] = {"order": 3}
+    #: small, fast parameters for the conformance test and the docs
+    example_params: ClassVar[dict[str, Any]] = {"order": 3}
 
     order: int
     discount: float | None
@@ -83,8 +81,8 @@ class NGram(Family):
         self.vocab_size_ = train.effective_vocab_size()
         train = _with_vocab(train, self.vocab_size_)
         symbol_at_lag, outcomes, _ = unit_events(train)
-        # One step per pass over the events; tqdm shows it only on a terminal.
-        with tqdm(total=self.order, desc="ngram fit", unit="pass", disable=None) as bar:
+        # One step per pass over the events (a bar on a terminal, lines in a fit.log).
+        with progress_bar(total=self.order, desc="ngram fit", unit="pass") as bar:
             self.tables_ = count_tables(
                 symbol_at_lag,
                 outcomes,
@@ -100,6 +98,12 @@ class NGram(Family):
             bits = nats / math.log(2) / max(len(valid.tokens), 1)
             self.learning_curve_ = [{"epoch": 1, "valid_bits_per_token": bits}]
         return self
+
+    def n_parameters(self) -> int | None:
+        """Stored n-gram types (each with its count) over all levels, plus the discounts."""
+        self._check_fitted()
+        tables = self.tables_
+        return int(sum(len(c) for c in tables.type_counts[1:]) + tables.discounts.size)
 
     # -------------------------------------------------------------------- scoring
     def logprobs(self, units: SequenceSet) -> Ragged:
