@@ -6,9 +6,9 @@ import numpy as np
 import pytest
 
 from retrograde import SequenceSet, families, orders, sources
+from retrograde.config import ModelConfig
 from retrograde.data import resample_train, resolve_train_sample, sample_index
 from retrograde.errors import ConfigError
-from retrograde.config import ModelConfig
 from retrograde.stages.fit import fit_cell, training_units
 
 
