@@ -730,3 +730,17 @@ def test_a_reference_without_content_loss_gets_no_content_gap_but_keeps_the_end_
     )
     assert "content_gap_pct" not in leaves["reverse"]
     assert leaves["reverse"]["end_bits_per_token"] == approx(0.6 / LN2)
+
+
+def test_a_t_intervals_lower_end_stops_at_minus_100_percent():
+    # A gap is 100 (R - 1) with R a ratio of losses >= 0, so it is never below -100%
+    # (common practice, no source: an interval is cut to the parameter's range).
+    from retrograde.stats import gap_interval
+
+    rng = np.random.default_rng(3)
+    reference = rng.gamma(4.0, 10.0, size=(3, 20))
+    order = reference * np.array([[0.2], [1.0], [3.0]])  # seeds that disagree wildly
+    row = gap_interval(order, reference, level=0.99, with_seeds=True, paired=True)
+    assert row.low == -100.0 < row.gap_pct < row.high
+    low, high = row.at(0.999)
+    assert low == -100.0 and high > row.high

@@ -29,6 +29,8 @@ The variance is the sum of those parts; the critical value is Student's t with
 Satterthwaite's (1946, *Biometrics Bulletin* 2:110) degrees of freedom for that linear
 combination of mean squares (never fewer than its least certain positive part's), and the
 p-value is the same t statistic's, so ``p < 1 - level`` exactly when the interval excludes 0.
+A lower end below -100% is cut there (``LOWEST_GAP``): no order's loss is below 0, and
+the cut never moves an end across 0.
 """
 
 from __future__ import annotations
@@ -41,6 +43,7 @@ import numpy as np
 from ._bootstrap import bootstrap_pvalue, bootstrap_totals, seed_weight_scale
 
 __all__ = [
+    "LOWEST_GAP",
     "GapInterval",
     "bootstrap_intervals",
     "gap_interval",
@@ -48,6 +51,10 @@ __all__ = [
     "satterthwaite_df",
     "t_intervals",
 ]
+
+
+#: no gap is below -100% (a loss is never negative): a t interval's lower end stops there
+LOWEST_GAP = -100.0
 
 
 class GapInterval(NamedTuple):
@@ -72,7 +79,7 @@ class GapInterval(NamedTuple):
         (0.04, 3.96)
         """
         half_width = _half_width(level, self.df, self.standard_error)
-        return self.gap_pct - half_width, self.gap_pct + half_width
+        return max(self.gap_pct - half_width, LOWEST_GAP), self.gap_pct + half_width
 
 
 def _half_width(level: float, df: float, standard_error: float) -> float:
@@ -181,7 +188,12 @@ def gap_interval(
     half_width = _half_width(level, df, standard_error)
     p_value = float(2.0 * student_t.sf(abs(gap) / standard_error, df))
     return GapInterval(
-        gap, gap - half_width, gap + half_width, min(p_value, 1.0), df, standard_error
+        gap,
+        max(gap - half_width, LOWEST_GAP),
+        gap + half_width,
+        min(p_value, 1.0),
+        df,
+        standard_error,
     )
 
 
