@@ -213,6 +213,89 @@ def pipeline_section(result: dict[str, Any]) -> list[str]:
     ]
 
 
+def coverage_section(result: dict[str, Any]) -> list[str]:
+    """``bench_coverage.py``: the interval's coverage, width and power, and the schemes."""
+    real = result["real"]
+    machine = result.get("machine", {})
+    sizes = real["sizes"]
+    lines = [
+        "### Coverage of the gap interval (`bench_coverage.py`, owned by the stats engineer)",
+        "",
+        f"_Measured {machine.get('date_utc', '?')}, retrograde "
+        f"{machine.get('retrograde_commit', '?')}; 1-minute load average "
+        f"{machine.get('load_average_1min', '?')}. {real['repetitions']} repetitions of real "
+        f"fits (fits {real['fit_cpu_s']:.0f} s CPU, intervals {real['evaluate_cpu_s']:.0f} s "
+        f"CPU; simulated rows {result.get('simulated_cpu_s', 0):.0f} s CPU)._",
+        "",
+        f"Reversible chain over {sizes['vocab_size']} symbols (stationary law "
+        f"{real['chain']['stationary']}), units of {sizes['unit_length']} tokens; "
+        f"{sizes['train_units']} training, {sizes['valid_units']} validation and "
+        f"{sizes['test_units']} test units drawn afresh in every repetition; `ngram` "
+        f"{sizes['ngram']}, `mlp` {sizes['mlp']}; {sizes['seeds_fitted']} seeds per order, "
+        "split into disjoint blocks of 3, 5 or 10. True gap 0. *ratio* = mean width / "
+        "(3.92 x the spread of the point gap across repetitions); *power demo*: reverse "
+        "losses x 1.16 (1 + N(0, 1%) per seed); *power 4 sd*: a true gap of 4 spreads.",
+        "",
+    ]
+    header = [
+        "family",
+        "train_sample",
+        "seeds paired",
+        "seeds",
+        "gap",
+        "interval",
+        "covers 0",
+        "mean width %",
+        "3.92 x spread %",
+        "ratio",
+        "power demo",
+        "power 4 sd",
+    ]
+    rows = [
+        [
+            f"`{r['family']}`",
+            r["train_sample"],
+            "yes" if r["paired"] else "no",
+            str(r["seeds"]),
+            r["gap"],
+            r["interval"],
+            f"{r['coverage']:.3f}",
+            f"{r['mean_width_pct']:.3g}",
+            f"{r['ideal_width_pct']:.3g}",
+            f"{r['width_over_ideal']:.2f}",
+            f"{r['power_demo']:.3f}",
+            f"{r['power_4_spreads']:.3f}",
+        ]
+        for r in real["rows"]
+    ]
+    lines += [_table(header, rows), ""]
+    quality = [
+        [
+            f"`{key}`",
+            f"{value['excess_bits_per_token']:.5f}",
+            f"{value['content_excess_bits_per_token']:.5f}",
+        ]
+        for key, value in real["quality"].items()
+    ]
+    lines += [
+        "Model quality (forward order, mean over repetitions and seeds), bits per token above "
+        "the exact floor:",
+        "",
+        _table(["fits", "excess", "content excess"], quality),
+        "",
+        "Simulated noise (the model of `tests/test_stats.py`, 300 units), coverage of 0:",
+        "",
+        _table(
+            ["setting", "t", "bootstrap"],
+            [
+                [label, f"{value['t']:.3f}", f"{value['bootstrap']:.3f}"]
+                for label, value in result["simulated"].items()
+            ],
+        ),
+    ]
+    return lines
+
+
 def _scalar_leaves(value: Any, prefix: str = "") -> list[tuple[str, Any]]:
     """``(dotted key, value)`` for every scalar leaf, skipping lists and ``machine``."""
     if isinstance(value, dict):
@@ -238,7 +321,6 @@ def other_sections() -> list[str]:
         "torch_loop": "torch",
         "torch_calibration": "torch",
         "stats": "stats",
-        "coverage": "stats",
     }
     for name, owner in owners.items():
         result = _load(name)
@@ -264,6 +346,9 @@ def main() -> int:
     if pipeline is not None:
         sections += [*pipeline_section(pipeline), ""]
     sections += other_sections()
+    coverage = _load("coverage")
+    if coverage is not None and "real" in coverage:
+        sections += ["", *coverage_section(coverage)]
     readme = HERE / "README.md"
     text = readme.read_text()
     head, rest = text.split(START, 1)

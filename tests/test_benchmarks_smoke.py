@@ -112,6 +112,36 @@ def test_pipeline_benchmark_times_scratch_noop_and_one_model_edit(tmp_path):
         assert 0 <= run["dvc_share"] < 1
 
 
+def test_coverage_benchmark_chain_is_reversible_with_a_non_uniform_stationary_law():
+    import bench_coverage
+
+    from retrograde import orders
+
+    transition, stationary = bench_coverage.reversible_chain(4, 0)
+    flux = stationary[:, None] * transition  # detailed balance: pi_i P_ij = pi_j P_ji
+    np.testing.assert_allclose(flux, flux.T, rtol=0, atol=1e-15)
+    assert stationary.max() > 1.5 * stationary.min()
+    # Outside reference: the source's own exact NLL gives a unit and its reversal one value.
+    source = bench_coverage.reversible_source()
+    units = source.generate(50, seed=1)
+    reversed_units = orders.make("reverse").apply_set(units)
+    np.testing.assert_allclose(source.nll(units), source.nll(reversed_units), rtol=1e-12)
+
+
+@pytest.mark.slow
+def test_coverage_benchmark_runs_quick_for_both_families_and_every_seed_count(tmp_path):
+    results = _run_quick("bench_coverage.py", tmp_path / "coverage.json")
+    rows = results["real"]["rows"]
+    defaults = {(r["family"], r["seeds"], r["gap"]) for r in rows if r["interval"] == "t"}
+    assert {
+        (f, n, g) for f in ("ngram", "mlp") for n in (3, 5, 10) for g in ("whole", "content")
+    } <= defaults
+    for row in rows:
+        assert 0.0 <= row["coverage"] <= 1.0 and 0.0 <= row["power_demo"] <= 1.0
+        assert row["mean_width_pct"] > 0 and row["intervals"] >= 4
+    assert set(results["real"]["quality"]) >= {"ngram_none", "ngram_half", "mlp"}
+
+
 def test_torch_calibration_benchmark_runs_quick_and_records_both_orders(tmp_path):
     pytest.importorskip("torch")
     results = _run_quick("bench_torch_calibration.py", tmp_path / "calibration.json")

@@ -78,6 +78,9 @@ def test_default_config_composes_into_the_documented_shape(host):
             "code": None,
             "seeds": None,
             "sources": None,
+            # composed from auto: an n-gram has no randomness of its own, so the seed picks
+            # half of the training units (changing how auto resolves reruns its cells)
+            "train_sample": "half",
             "numerics_version": 2,
             "package_version": __version__,
             "trainer_sha256": None,
@@ -91,7 +94,13 @@ def test_default_config_composes_into_the_documented_shape(host):
         "code": "data/corpus/units",
     }
     assert study["seeds"] == [0, 1, 2] and study["reference_order"] == "forward"
-    assert params["stats"] == {"level": 0.95, "n_boot": 2000, "seed": 0, "position_buckets": 50}
+    assert params["stats"] == {
+        "level": 0.95,
+        "interval": "t",
+        "n_boot": 2000,
+        "seed": 0,
+        "position_buckets": 50,
+    }
 
 
 def test_composed_params_read_back_identically_with_pyyaml_and_omegaconf(host):
@@ -233,6 +242,11 @@ def test_unknown_plugin_names_fail_with_did_you_mean(host, override, expected):
         ("study.reference_order=forwad", "did you mean 'forward'"),
         ("stats.level=1.5", "parameter level=1.5 is invalid"),
         ("stats.n_boot=many", "'stats.n_boot'"),
+        ("stats.interval=normal", "parameter interval='normal' is invalid; allowed: one of 't'"),
+        (
+            "+study.models.ngram.train_sample=halves",
+            "study.models.ngram: parameter train_sample='halves' is invalid",
+        ),
         ("study.sources.corpus.split.fractions=[0.5,0.1,0.1]", "summing to 1"),
         ("study.sources.corpus.units.mode=paragraph", "mode='paragraph' is invalid"),
         ("study.sources.corpus.units.mode=window", "window=None is invalid"),
@@ -420,3 +434,21 @@ def test_a_source_no_model_fits_is_refused(host):
         host, ["source=[corpus,markov]", "+study.models.ngram.sources=[corpus]"]
     )
     assert "study.sources.markov is fitted by no model" in message
+
+
+def test_a_target_model_keeps_train_sample_beside_its_params():
+    from retrograde.config import normalize
+
+    raw = {
+        "study": {
+            "models": {
+                "m": {"_target_": "pkg.Model", "order": 2, "train_sample": "none", "code": None}
+            }
+        }
+    }
+    assert normalize(raw)["study"]["models"]["m"] == {
+        "family": "pkg.Model",
+        "params": {"order": 2},
+        "train_sample": "none",
+        "code": None,
+    }

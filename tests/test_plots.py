@@ -43,7 +43,7 @@ def test_gap_figure_has_one_labelled_panel_per_source_with_intervals(run):
             for x in container.lines[0].get_xdata():
                 assert abs(x - round(x)) <= 0.15 + 1e-9
     caption = figure.get_supxlabel()
-    assert "simultaneous bootstrap intervals" in caption and "Holm" in caption
+    assert "simultaneous intervals" in caption and "Holm" in caption
 
 
 def test_series_differ_by_marker_not_only_colour(run):
@@ -130,7 +130,7 @@ def test_gap_bars_are_the_simultaneous_intervals_the_report_shows(run):
 def test_without_simultaneous_intervals_the_caption_states_the_per_cell_level(run):
     table = {"s": {"m": {"forward": dict(FORWARD), "reverse": dict(REVERSE)}}}
     caption = plots.gap_figure(table, level=0.9).get_supxlabel()
-    assert "90% per-cell bootstrap intervals" in caption
+    assert "90% per-cell intervals" in caption
 
 
 FORWARD = {"gap_pct": 0.0, "gap_pct_low": 0.0, "gap_pct_high": 0.0, "bits_per_token": 2.0}

@@ -42,7 +42,7 @@ def build_run(n_seeds: int = 3, seed: int = 0) -> dict:
             draws.setdefault(source, {})[model] = {}
             table[source][model] = summarize_model(
                 losses,
-                bootstrap_gaps=draws[source][model],
+                gap_distributions=draws[source][model],
                 reference_order="forward",
                 n_tokens=np.full(60, 12),
                 n_bytes=np.full(60, 15) if source == "demo" else None,

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import contextlib
 import io
+import os
 import shutil
 import sys
 from pathlib import Path
@@ -58,8 +59,9 @@ def _write_plugin(host: Path, *, order: int = 2, version: int = 1) -> None:
 
 def _run(host: Path) -> set[str]:
     """`retrograde run`; the fit stages DVC ran."""
-    with contextlib.redirect_stdout(io.StringIO()), contextlib.redirect_stderr(io.StringIO()):
-        assert main(["run", "--dir", str(host)]) == 0
+    err = io.StringIO()
+    with contextlib.redirect_stdout(io.StringIO()), contextlib.redirect_stderr(err):
+        assert main(["run", "--dir", str(host)]) == 0, err.getvalue()[-3000:]
     return {stage for stage in dvc_events(host)["ran"] if stage.startswith("fit@")}
 
 
@@ -76,7 +78,9 @@ def host(tmp_path, monkeypatch) -> Path:
     shutil.copy(TOY, host / "trainers" / "toy.py")
     # The plug-in module is importable here and in the stage processes DVC starts.
     monkeypatch.syspath_prepend(str(host / "plugins"))
-    monkeypatch.setenv("PYTHONPATH", str(host / "plugins"))
+    # (ahead of any path the caller set, so a checkout's sources stay first for the stages)
+    paths = [str(host / "plugins"), *filter(None, [os.environ.get("PYTHONPATH")])]
+    monkeypatch.setenv("PYTHONPATH", os.pathsep.join(paths))
     with contextlib.redirect_stdout(io.StringIO()):
         assert main(["init", "--dir", str(host)]) == 0
     conf = host / "conf" / "retrograde"
@@ -110,3 +114,9 @@ def test_each_change_of_code_reruns_exactly_the_cells_it_can_change(host, monkey
 
     monkeypatch.setattr(retrograde.config._plugins, "__version__", "99.0.0")
     assert _run(host) == _cells("builtin") | _cells("plugged") | _cells("trainer")
+    # 5. A family gains randomness of its own, so `train_sample: auto` no longer draws a
+    #    sample per seed for it (nor for its subclass): the composed params say so.
+    from retrograde.families.ngram import NGram
+
+    monkeypatch.setattr(NGram, "has_own_randomness", True)
+    assert _run(host) == _cells("builtin") | _cells("plugged")

@@ -12,8 +12,16 @@ from retrograde.report import format_table
 from retrograde.stats import adjust_holm, simultaneous_intervals, summarize_model
 
 
-def build_table(seed: int, n_seeds: int, n_units: int, effects: list[float], noise: float):
-    """A table of len(effects) sources x one model x (forward, reverse), and its draws."""
+def build_table(
+    seed: int,
+    n_seeds: int,
+    n_units: int,
+    effects: list[float],
+    noise: float,
+    interval: str = "t",
+):
+    """A table of len(effects) sources x one model x (forward, reverse), with Holm's verdict
+    and the simultaneous intervals of the ``interval`` kind."""
     rng = np.random.default_rng(seed)
     table, draws = {}, {}
     for index, effect in enumerate(effects):
@@ -27,9 +35,10 @@ def build_table(seed: int, n_seeds: int, n_units: int, effects: list[float], noi
                 {"forward": forward, "reverse": reverse},
                 reference_order="forward",
                 n_tokens=np.full(n_units, 10),
+                interval=interval,
                 n_boot=400,
                 seed=index,
-                bootstrap_gaps=draws[source]["m"],
+                gap_distributions=draws[source]["m"],
             )
         }
     adjust_holm(table)
@@ -41,10 +50,12 @@ def reverse_rows(table):
     return [models["m"]["reverse"] for models in table.values()]
 
 
-# Sizes and seed counts cover: 1-2 seeds (the p-value is the sign-flip test's alone),
-# 3 and 5 seeds (the bootstrap p-value counts too), gaps near and far from the threshold.
+# Sizes and seed counts cover: 1-2 seeds (with the bootstrap the p-value is the sign-flip
+# test's alone), 3 and 5 seeds (the interval's p-value counts too), gaps near and far from
+# the threshold; both kinds of interval.
 CASES = [
-    (seed, n_seeds, effects)
+    (seed, n_seeds, effects, interval)
+    for interval in ("t", "bootstrap")
     for seed in range(6)
     for n_seeds in (1, 2, 3, 5)
     for effects in (
@@ -54,11 +65,11 @@ CASES = [
 ]
 
 
-@pytest.mark.parametrize(("seed", "n_seeds", "effects"), CASES)
+@pytest.mark.parametrize(("seed", "n_seeds", "effects", "interval"), CASES)
 def test_every_rows_interval_excludes_zero_exactly_when_the_row_is_significant(
-    seed, n_seeds, effects
+    seed, n_seeds, effects, interval
 ):
-    table = build_table(seed, n_seeds, 40, effects, noise=3.0)
+    table = build_table(seed, n_seeds, 40, effects, noise=3.0, interval=interval)
     for leaf in reverse_rows(table):
         excludes = leaf["gap_pct_simultaneous_low"] > 0 or leaf["gap_pct_simultaneous_high"] < 0
         assert excludes == leaf["significant"], leaf
@@ -90,8 +101,9 @@ def test_the_level_of_a_significant_row_is_holms_step_and_the_rest_share_the_sto
         assert leaf["simultaneous_level"] == pytest.approx(1 - 0.05 / divisor, rel=1e-6)
 
 
-def test_simultaneous_intervals_contain_the_per_cell_ones_which_metrics_json_keeps():
-    table = build_table(1, 3, 50, [0.0, 0.03, 0.1], noise=2.0)
+@pytest.mark.parametrize("interval", ["t", "bootstrap"])
+def test_simultaneous_intervals_contain_the_per_cell_ones_which_metrics_json_keeps(interval):
+    table = build_table(1, 3, 50, [0.0, 0.03, 0.1], noise=2.0, interval=interval)
     for leaf in reverse_rows(table):
         assert leaf["gap_pct_simultaneous_low"] <= leaf["gap_pct_low"]
         assert leaf["gap_pct_high"] <= leaf["gap_pct_simultaneous_high"]
@@ -99,8 +111,9 @@ def test_simultaneous_intervals_contain_the_per_cell_ones_which_metrics_json_kee
     assert '"gap_pct_simultaneous_low"' in format_table(table, "json")
 
 
-def test_one_tested_gap_gets_the_plain_percentile_interval_at_95_percent():
-    table = build_table(2, 3, 50, [0.2], noise=2.0)
+@pytest.mark.parametrize("interval", ["t", "bootstrap"])
+def test_one_tested_gap_gets_its_per_cell_interval_at_95_percent(interval):
+    table = build_table(2, 3, 50, [0.2], noise=2.0, interval=interval)
     (leaf,) = reverse_rows(table)
     assert leaf["simultaneous_level"] == 0.95 and leaf["significant"]
     assert leaf["gap_pct_simultaneous_low"] == leaf["gap_pct_low"]
@@ -129,5 +142,40 @@ def test_without_a_holm_verdict_or_draws_it_says_what_to_call_first():
     with pytest.raises(DataError, match="adjust_holm"):
         simultaneous_intervals(table, {})
     adjust_holm(table)
-    with pytest.raises(DataError, match="bootstrap draws"):
+    with pytest.raises(DataError, match="no interval to widen"):
         simultaneous_intervals(table, {})
+
+
+def test_with_the_t_interval_the_simultaneous_one_is_the_t_interval_at_holms_level():
+    # Same centre, standard error and degrees of freedom as the per-cell t interval: the
+    # half-width scales with Student's t quantile (scipy.stats.t.ppf, the reference).
+    from scipy.stats import t as student_t
+
+    from retrograde.stats import GapInterval
+
+    table = {"s": {"m": {"forward": {}, "reverse": {"p_value": 0.001}, "block": {"p_value": 0.02}}}}
+    adjust_holm(table)
+    rows = {
+        "reverse": GapInterval(3.0, 0.0, 0.0, 0.001, 7.0, standard_error=0.8),
+        "block": GapInterval(2.0, 0.0, 0.0, 0.02, 12.0, standard_error=0.7),
+    }
+    simultaneous_intervals(table, {"s": {"m": rows}})
+    for order, divisor in (("reverse", 2), ("block", 1)):  # Holm's steps: 0.05/2, then 0.05
+        leaf, row = table["s"]["m"][order], rows[order]
+        half = student_t.ppf(1 - 0.05 / divisor / 2, row.df) * row.standard_error
+        assert leaf["simultaneous_level"] == pytest.approx(1 - 0.05 / divisor)
+        assert leaf["gap_pct_simultaneous_low"] == pytest.approx(row.gap_pct - half, rel=1e-5)
+        assert leaf["gap_pct_simultaneous_high"] == pytest.approx(row.gap_pct + half, rel=1e-5)
+        assert leaf["significant"] is True
+
+
+def test_a_t_row_whose_sign_flips_do_not_pass_is_stretched_to_zero():
+    # Constructed: the t interval excludes 0, the (larger) sign-flip p-value fails Holm.
+    from retrograde.stats import GapInterval
+
+    table = {"s": {"m": {"forward": {}, "reverse": {"gap_pct": 2.0, "p_value": 0.2}}}}
+    adjust_holm(table)
+    row = GapInterval(2.0, 0.0, 0.0, 0.001, 30.0, standard_error=0.5)
+    leaf = simultaneous_intervals(table, {"s": {"m": {"reverse": row}}})["s"]["m"]["reverse"]
+    assert leaf["significant"] is False and leaf["gap_pct_simultaneous_extended"] is True
+    assert leaf["gap_pct_simultaneous_low"] == 0.0 < leaf["gap_pct_simultaneous_high"]

@@ -261,13 +261,21 @@ def test_interval_excludes_zero_most_of_the_time_on_a_shifted_source():
 # ------------------------------------------------------ resampling behaviour
 
 
-def test_same_seed_gives_identical_leaves_and_another_seed_another_interval():
+def test_same_seed_gives_identical_leaves_and_only_random_draws_depend_on_it():
     losses = simulate(np.random.default_rng(0), n_units=100, n_seeds=3, shift=0.01)
-    first = summarize_model(losses, reference_order="forward", n_tokens=np.ones(100), seed=5)
-    again = summarize_model(losses, reference_order="forward", n_tokens=np.ones(100), seed=5)
-    other = summarize_model(losses, reference_order="forward", n_tokens=np.ones(100), seed=6)
-    assert first == again
-    assert first["reverse"]["gap_pct_low"] != other["reverse"]["gap_pct_low"]
+
+    def run(seed, **options):
+        return summarize_model(
+            losses, reference_order="forward", n_tokens=np.ones(100), seed=seed, **options
+        )["reverse"]
+
+    assert run(5) == run(5)
+    # The t interval is a formula: the seed moves only the Monte Carlo sign-flip p-value.
+    assert run(5)["gap_pct_low"] == run(6)["gap_pct_low"]
+    assert run(5)["p_value_sign_flip"] != run(6)["p_value_sign_flip"]
+    bootstrapped = run(5, interval="bootstrap")
+    assert bootstrapped == run(5, interval="bootstrap")
+    assert bootstrapped["gap_pct_low"] != run(6, interval="bootstrap")["gap_pct_low"]
 
 
 def test_an_orders_interval_does_not_depend_on_which_other_orders_are_present():
@@ -479,3 +487,260 @@ def test_below_floor_accepts_the_true_model_and_chance_dips_but_not_a_leak():
     assert below_floor(near, floors) is None
     # 5% under the floor on every unit: no model can do that.
     assert below_floor(floors * 0.95, floors) == pytest.approx(-0.05 * floors.mean())
+
+
+# ------------------------------------------- the t interval against outside references
+
+
+def test_mean_squares_match_statsmodels_two_way_anova():
+    # Reference: statsmodels anova_lm of the additive model z ~ seed + unit (one value a cell).
+    import pandas as pd
+    from statsmodels.formula.api import ols
+    from statsmodels.stats.anova import anova_lm
+
+    from retrograde.stats import mean_squares
+
+    rng = np.random.default_rng(8)
+    z = rng.normal(size=(4, 30)) + rng.normal(size=(4, 1)) + rng.normal(size=(1, 30))
+    frame = pd.DataFrame(
+        {"z": z.ravel(), "seed": np.repeat(np.arange(4), 30), "unit": np.tile(np.arange(30), 4)}
+    )
+    anova = anova_lm(ols("z ~ C(seed) + C(unit)", frame).fit())
+    expected = anova["sum_sq"] / anova["df"]
+    got = mean_squares(z)
+    assert got == pytest.approx((expected["C(seed)"], expected["C(unit)"], expected["Residual"]))
+
+
+def test_satterthwaite_df_is_welchs_for_two_sample_variances():
+    # Reference: scipy's Welch t-test (equal_var=False) reports the Satterthwaite df.
+    from retrograde.stats import satterthwaite_df
+
+    rng = np.random.default_rng(9)
+    a, b = rng.normal(0.0, 1.0, size=5), rng.normal(0.0, 3.0, size=8)
+    welch = scipy_stats.ttest_ind(a, b, equal_var=False)
+    terms = [(a.var(ddof=1) / 5, 4), (b.var(ddof=1) / 8, 7)]
+    assert satterthwaite_df(terms) == pytest.approx(welch.df)
+
+
+def test_one_seed_interval_is_the_textbook_ratio_estimator_interval():
+    # Reference: Cochran (1977), Sampling Techniques, section 6.3: the variance of a ratio of
+    # totals R = sum y / sum x is n sum (y_i - R x_i)**2 / ((n - 1) (sum x)**2); with Student's
+    # t on n - 1 degrees of freedom.
+    rng = np.random.default_rng(10)
+    x = rng.gamma(3.0, 5.0, size=80)
+    y = x * 1.05 + rng.normal(0.0, 2.0, size=80)
+    ratio = y.sum() / x.sum()
+    se = np.sqrt(80 * ((y - ratio * x) ** 2).sum() / (79 * x.sum() ** 2))
+    half = scipy_stats.t.ppf(0.975, 79) * se * 100
+    leaf = summarize_model(
+        {"forward": x[None], "reverse": y[None]}, reference_order="forward", n_tokens=np.ones(80)
+    )["reverse"]
+    assert leaf["gap_pct"] == approx(100 * (ratio - 1))
+    assert leaf["gap_pct_low"] == approx(100 * (ratio - 1) - half)
+    assert leaf["gap_pct_high"] == approx(100 * (ratio - 1) + half)
+
+
+@pytest.mark.parametrize("paired", [True, False])
+def test_seed_only_variation_gives_the_one_sample_t_interval_of_the_per_seed_gaps(paired):
+    # Reference: scipy.stats.ttest_1samp(...).confidence_interval. When every unit of a seed
+    # moves by the same factor (no unit-to-unit variation), the gap's uncertainty is that of
+    # the mean of the seeds' gaps alone.
+    rng = np.random.default_rng(11)
+    effect = rng.normal(0.0, 0.02, size=5)  # per-seed relative effect of the order
+    reference = np.full((5, 40), 30.0)
+    order = reference * (1.0 + effect[:, None])
+    leaf = summarize_model(
+        {"forward": reference, "reverse": order},
+        reference_order="forward",
+        n_tokens=np.ones(40),
+        paired_seeds=paired,
+    )["reverse"]
+    expected = scipy_stats.ttest_1samp(100 * effect, 0.0).confidence_interval(0.95)
+    assert leaf["gap_pct_low"] == approx(expected.low)
+    assert leaf["gap_pct_high"] == approx(expected.high)
+
+
+def test_the_p_value_agrees_with_the_interval():
+    from retrograde.stats import gap_interval
+
+    rng = np.random.default_rng(12)
+    for _ in range(200):
+        reference = rng.gamma(4.0, 10.0, size=(4, 30))
+        order = reference * (1 + rng.normal(0.0, 0.02, size=(4, 1))) + rng.normal(0, 2, (4, 30))
+        for paired in (True, False):
+            out = gap_interval(order, reference, level=0.95, with_seeds=True, paired=paired)
+            assert (out.p_value < 0.05) == (out.low > 0 or out.high < 0)
+            assert out.low < out.gap_pct < out.high
+
+
+def test_significant_gaps_have_intervals_that_exclude_zero():
+    rng = np.random.default_rng(13)
+    for repetition in range(30):
+        losses = simulate(rng, n_units=60, n_seeds=3, shift=0.02)
+        leaf = summarize_model(
+            losses, reference_order="forward", n_tokens=np.ones(60), seed=repetition
+        )["reverse"]
+        if leaf["p_value"] < 0.05:
+            assert leaf["gap_pct_low"] > 0 or leaf["gap_pct_high"] < 0
+
+
+@pytest.mark.parametrize(
+    ("n_seeds", "paired", "widest"),
+    # Paired, 3 seeds leave the seed variance 2 degrees of freedom: a t interval on them is
+    # on average about 1.95x the known-variance width (t_2 quantile 4.30 x E[s]/sigma 0.886
+    # / 1.96). Unpaired (Welch) it has up to 4.
+    [(3, True, 2.1), (10, True, 1.5), (3, False, 1.6), (10, False, 1.5)],
+)
+def test_t_interval_covers_zero_at_its_level_and_is_not_much_wider_than_needed(
+    n_seeds, paired, widest
+):
+    # Calibration on the noise model above (true gap 0; independent training effects per
+    # order): 300 repetitions, binomial sd of the coverage ~1.3%. The longer version, with
+    # real fits, is benchmarks/bench_coverage.py.
+    rng = np.random.default_rng(2025 + n_seeds)
+    covered, widths, gaps = [], [], []
+    for repetition in range(300):
+        leaf = summarize_model(
+            simulate(rng, n_units=100, n_seeds=n_seeds, shift=0.0, seed_sd=0.01),
+            reference_order="forward",
+            n_tokens=np.ones(100),
+            paired_seeds=paired,
+            n_flips=10,
+            seed=repetition,
+        )["reverse"]
+        covered.append(leaf["gap_pct_low"] <= 0.0 <= leaf["gap_pct_high"])
+        widths.append(leaf["gap_pct_high"] - leaf["gap_pct_low"])
+        gaps.append(leaf["gap_pct"])
+    assert 0.92 <= np.mean(covered) <= 0.98
+    assert np.mean(widths) <= widest * 3.92 * np.std(gaps, ddof=1)
+
+
+def test_bootstrap_interval_is_still_available_and_close_on_a_large_sample():
+    losses = simulate(np.random.default_rng(14), n_units=400, n_seeds=1, shift=0.02)
+    t_leaf, boot_leaf = (
+        summarize_model(
+            losses, reference_order="forward", n_tokens=np.ones(400), interval=kind, n_boot=4000
+        )["reverse"]
+        for kind in ("t", "bootstrap")
+    )
+    width = t_leaf["gap_pct_high"] - t_leaf["gap_pct_low"]
+    assert boot_leaf["gap_pct_low"] == approx(t_leaf["gap_pct_low"], abs=0.1 * width)
+    assert boot_leaf["gap_pct_high"] == approx(t_leaf["gap_pct_high"], abs=0.1 * width)
+    with pytest.raises(ConfigError, match="interval='z' is invalid"):
+        summarize_model(losses, reference_order="forward", n_tokens=np.ones(400), interval="z")
+
+
+# ------------------------------------------------------------- end-of-unit cost
+
+
+def test_end_marker_cost_has_the_closed_form_for_a_model_that_never_knows_the_position():
+    from retrograde.stats import end_marker_cost
+
+    for length in (1, 20, 64, 1000):
+        end, content = end_marker_cost(length)
+        assert end == pytest.approx(math.log2(length + 1) / length)
+        assert content == pytest.approx(math.log2((length + 1) / length))
+    assert sum(end_marker_cost(64)) == pytest.approx(0.1165, abs=5e-5)
+    assert sum(end_marker_cost(20)) == pytest.approx(0.2900, abs=5e-5)
+    assert end_marker_cost(5, known_positions=5) == (0.0, 0.0)  # knows every position
+
+
+def test_a_bigram_on_long_fixed_length_units_pays_the_position_blind_end_cost():
+    # A bigram sees the begin marker only before the first token, so at the other L events
+    # (L - 1 tokens, then the end marker) it cannot tell where it is; on a long first-order
+    # chain it learns the transitions almost exactly, so its excess over the exact floor is
+    # the end-of-unit cost alone.
+    from retrograde import families, sources
+    from retrograde.stats import end_marker_cost
+
+    length = 128
+    source = sources.make("markov", vocab_size=4, order=1, length=length, chain_seed=0)
+    test = source.generate(1000, seed=101)
+    logprobs = families.make("ngram", order=2).fit(source.generate(3000, seed=1)).logprobs(test)
+    unit = -logprobs.sums()
+    end = -logprobs.values[logprobs.offsets[1:] - 1]
+    leaf = summarize_model(
+        {"forward": unit[None]},
+        reference_order="forward",
+        n_tokens=test.lengths,
+        floors=source.nll(test),
+        end_nll={"forward": end[None]},
+    )["forward"]
+    # The formula of a model that never knows the position, to 1e-3 bits per token:
+    assert leaf["excess_bits_per_token"] == pytest.approx(sum(end_marker_cost(length)), abs=1e-3)
+    # and, closer, its form for one known position (the bigram's begin marker):
+    end_bits, content_bits = end_marker_cost(length, known_positions=1)
+    assert leaf["end_bits_per_token"] == pytest.approx(end_bits, abs=1e-4)
+    assert leaf["content_excess_bits_per_token"] == pytest.approx(content_bits, abs=5e-4)
+    assert leaf["unit_length"] == length
+
+
+def test_content_gap_leaves_out_the_end_marker_the_whole_gap_keeps():
+    # Two orders that differ only in their content tokens; both pay the same end marker.
+    rng = np.random.default_rng(15)
+    content = rng.gamma(4.0, 10.0, size=(3, 50))
+    end = np.full((3, 50), 8.0)
+    losses = {"forward": content + end, "reverse": content * 1.10 + end}
+    leaves = summarize_model(
+        losses,
+        reference_order="forward",
+        n_tokens=np.full(50, 16),
+        end_nll={"forward": end, "reverse": end},
+        floors=np.full(50, 20.0),
+    )
+    reverse = leaves["reverse"]
+    assert reverse["content_gap_pct"] == approx(10.0)
+    whole = 100 * (losses["reverse"].sum() / losses["forward"].sum() - 1)
+    assert reverse["gap_pct"] == approx(whole) and reverse["gap_pct"] < 10.0  # diluted
+    assert reverse["content_gap_pct_low"] <= 10.0 <= reverse["content_gap_pct_high"]
+    assert reverse["end_bits_per_token"] == approx(8.0 / LN2 / 16)
+    assert reverse["content_excess_bits_per_token"] == approx(
+        reverse["excess_bits_per_token"] - reverse["end_bits_per_token"]
+    )
+    assert leaves["forward"]["content_gap_pct"] == 0.0
+
+
+def test_end_losses_must_match_the_unit_losses():
+    losses = {"forward": np.ones((2, 4)) * 3, "reverse": np.ones((2, 4)) * 4}
+    with pytest.raises(DataError, match="end_nll has no losses for order"):
+        summarize_model(
+            losses,
+            reference_order="forward",
+            n_tokens=np.ones(4),
+            end_nll={"forward": np.ones((2, 4))},
+        )
+    with pytest.raises(DataError, match="no larger than the unit's whole loss"):
+        summarize_model(
+            losses,
+            reference_order="forward",
+            n_tokens=np.ones(4),
+            end_nll={"forward": np.ones((2, 4)) * 5, "reverse": np.ones((2, 4))},
+        )
+
+
+def test_a_reference_without_content_loss_gets_no_content_gap_but_keeps_the_end_cost():
+    # Units of one token the model always gets right: all the loss is the end marker's.
+    end = np.full((1, 12), 0.5)
+    losses = {"forward": end.copy(), "reverse": end * 1.2}
+    leaves = summarize_model(
+        losses,
+        reference_order="forward",
+        n_tokens=np.ones(12),
+        end_nll={"forward": end, "reverse": end * 1.2},
+    )
+    assert "content_gap_pct" not in leaves["reverse"]
+    assert leaves["reverse"]["end_bits_per_token"] == approx(0.6 / LN2)
+
+
+def test_a_t_intervals_lower_end_stops_at_minus_100_percent():
+    # A gap is 100 (R - 1) with R a ratio of losses >= 0, so it is never below -100%
+    # (common practice, no source: an interval is cut to the parameter's range).
+    from retrograde.stats import gap_interval
+
+    rng = np.random.default_rng(3)
+    reference = rng.gamma(4.0, 10.0, size=(3, 20))
+    order = reference * np.array([[0.2], [1.0], [3.0]])  # seeds that disagree wildly
+    row = gap_interval(order, reference, level=0.99, with_seeds=True, paired=True)
+    assert row.low == -100.0 < row.gap_pct < row.high
+    low, high = row.at(0.999)
+    assert low == -100.0 and high > row.high

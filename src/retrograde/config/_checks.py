@@ -9,7 +9,8 @@ from __future__ import annotations
 
 from ..data import check_fractions, check_units
 from ..errors import ConfigError
-from ..validation import check_float, check_int, did_you_mean
+from ..stats import INTERVALS
+from ..validation import check_choice, check_float, check_int, did_you_mean
 from ._schema import SourceConfig, StatsConfig, StudyConfig
 
 __all__ = ["MIN_BOOT", "check_source_values", "check_stats", "check_study"]
@@ -19,8 +20,9 @@ MIN_BOOT = 10
 
 
 def check_stats(stats: StatsConfig) -> None:
-    """``stats.*``: the interval level, bootstrap size and seed, the profile's buckets."""
+    """``stats.*``: the interval level and kind, bootstrap size and seed, the profile's buckets."""
     check_float("stats", "level", stats.level, 0.0, 1.0, low_open=True, high_open=True)
+    check_choice("stats", "interval", stats.interval, INTERVALS)
     check_int("stats", "n_boot", stats.n_boot, MIN_BOOT)
     check_int("stats", "seed", stats.seed, 0)
     check_int("stats", "position_buckets", stats.position_buckets, 1)

@@ -25,7 +25,7 @@ from pathlib import Path
 from typing import Any
 
 from .. import __version__
-from ..data import tokenizers, working_directory
+from ..data import resolve_train_sample, tokenizers, working_directory
 from ..errors import ConfigError, DataError, MissingFileError, PluginError, RetrogradeError
 from ..validation import did_you_mean
 from ._checks import check_source_values
@@ -144,6 +144,9 @@ def _resolve_model(where: str, entry: ModelConfig, root: Path) -> None:
         check_param_names(where, f"family {entry.family!r}", factory, entry.params)
         model = families.make(entry.family, **entry.params)
         model._validate_params()  # families check their params in fit; do it now
+        # What each seed trains on, resolved: a changed resolution (a family that gained or
+        # lost randomness of its own) changes the composed params, so its cells rerun.
+        entry.train_sample = resolve_train_sample(entry.train_sample, factory, where)
     except RetrogradeError as exc:
         raise _prefixed(where, exc) from exc
     entry.params = resolved_params(factory, entry.params)

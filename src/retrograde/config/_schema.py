@@ -114,6 +114,9 @@ class ModelConfig:
     seeds: list[int] | None = None
     #: the sources this model is fitted on (names in ``study.sources``); all when null
     sources: list[str] | None = None
+    #: which training units each seed trains on: auto | none | half | bootstrap
+    #: (docs/config.md); composing resolves ``auto`` to what the fit stage will do
+    train_sample: str = "auto"
     numerics_version: int | None = _composed()
     package_version: str | None = _composed()
     #: a trainer outside the repository: the sha256 of its program and files
@@ -156,6 +159,7 @@ class StudyConfig:
 @dataclass
 class StatsConfig:
     level: float = 0.95
+    interval: str = "t"  # t | bootstrap (docs/statistics.md)
     n_boot: int = 2000
     seed: int = 0
     position_buckets: int = 50
@@ -273,7 +277,7 @@ def normalize(raw: dict[str, Any]) -> dict[str, Any]:
         return out
     for group, name_key, keep in (
         ("orders", "name", set()),
-        ("models", "family", {"code", "seeds", "sources"}),
+        ("models", "family", {"code", "seeds", "sources", "train_sample"}),
         ("sources", "name", _SOURCE_KEYS),
     ):
         entries = study.get(group)

@@ -11,6 +11,8 @@ layer needs is imported from here (``from retrograde.data import SequenceSet``);
 - :func:`prepare_units` — cut, split by a salted content hash, fit the vocabulary on train;
 - the one rule for split fractions (:func:`check_fractions`) and for unit cutting
   (:func:`check_units`), with the package's only defaults;
+- which training units a seed trains on (:func:`resample_train`, :func:`resolve_train_sample`)
+  for families with no randomness of their own;
 - atomic file writing (a temporary sibling, then a rename).
 """
 
@@ -29,6 +31,14 @@ from ._files import (
 )
 from ._sequences import FORMAT, INT32_LIMIT, MAX_VOCAB_SIZE, Ragged, SequenceSet, index_dtype
 from ._splits import DEFAULT_FRACTIONS, DEFAULT_SALT, SPLITS, assign_splits, check_fractions
+from ._train_sample import (
+    DEFAULT_TRAIN_SAMPLE,
+    TRAIN_SAMPLE_SCHEMES,
+    TRAIN_SAMPLES,
+    resample_train,
+    resolve_train_sample,
+    sample_index,
+)
 from ._units import (
     DEFAULT_UNIT_MODE,
     REMAINDERS,
@@ -41,12 +51,15 @@ from ._units import (
 __all__ = [
     "DEFAULT_FRACTIONS",
     "DEFAULT_SALT",
+    "DEFAULT_TRAIN_SAMPLE",
     "DEFAULT_UNIT_MODE",
     "FORMAT",
     "INT32_LIMIT",
     "MAX_VOCAB_SIZE",
     "REMAINDERS",
     "SPLITS",
+    "TRAIN_SAMPLES",
+    "TRAIN_SAMPLE_SCHEMES",
     "UNIT_MODES",
     "Document",
     "PreparedUnits",
@@ -62,6 +75,9 @@ __all__ = [
     "index_dtype",
     "open_for_writing",
     "prepare_units",
+    "resample_train",
+    "resolve_train_sample",
+    "sample_index",
     "tokenizers",
     "working_directory",
     "write_npz",

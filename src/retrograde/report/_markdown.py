@@ -17,6 +17,7 @@ __all__ = [
     "CELL_FIELDS",
     "CONCLUSION",
     "LEAF_FIELDS",
+    "WHICH_GAP",
     "markdown_budget",
     "fields_present",
     "is_reference_leaf",
@@ -42,8 +43,9 @@ CAUTIONS = (
 
 #: what a reader may conclude from a table with simultaneous intervals (one sentence)
 CONCLUSION = (
-    "Intervals are simultaneous: each row's interval is the bootstrap interval at the "
-    "level (column *level*) at which Holm's procedure judged that row, so a row is "
+    "Intervals are simultaneous: each row's interval is the gap's interval (Student-t, or "
+    "with `stats.interval: bootstrap` the bootstrap percentile one) at the level (column "
+    "*level*) at which Holm's procedure judged that row, so a row is "
     "significant exactly when its interval excludes 0, and you may conclude, with at most "
     "a 5% chance that any one of them is wrong, that every significant row's order "
     "changes the test loss in the direction of its sign; a row that is not significant "
@@ -56,9 +58,14 @@ LEAF_FIELDS = (
     "bits_per_byte",
     "floor_bits_per_token",
     "excess_bits_per_token",
+    "end_bits_per_token",
+    "content_excess_bits_per_token",
     "gap_pct",
     "gap_pct_low",
     "gap_pct_high",
+    "content_gap_pct",
+    "content_gap_pct_low",
+    "content_gap_pct_high",
     "gap_pct_simultaneous_low",
     "gap_pct_simultaneous_high",
     "simultaneous_level",
@@ -71,8 +78,23 @@ LEAF_FIELDS = (
     "seeds",
     "units",
     "tokens",
+    "unit_length",
     "groups",
     "documents",
+)
+
+#: which gap a reader should quote; shown in every report (docs/statistics.md, "Which gap
+#: to quote")
+WHICH_GAP = (
+    "Which gap to quote: where every test unit has the same length (calibration sources, "
+    "window units), quote the **content gap** (content tokens only, end marker left out): "
+    "the end marker then costs a model that cannot tell the position in a unit about "
+    "`log2(L+1)/L + log2((L+1)/L)` bits per token in every order alike, which only dilutes "
+    "the gap, and the exact floor charges it nothing. Where lengths vary (lines, "
+    "documents), where a unit ends is part of what is modelled: quote the **gap**. The "
+    "p-values and *significant* always test the gap (where the end marker costs every "
+    "order the same, the gap has the content gap's sign and is only smaller); the content "
+    "gap's interval is per cell."
 )
 
 
@@ -128,6 +150,8 @@ def _markdown_source(source: str, models: Mapping[str, Any], level: float | None
         ("bits_per_byte", "bits/byte"),
         ("floor_bits_per_token", "floor bits/token"),
         ("excess_bits_per_token", "excess bits/token"),
+        ("end_bits_per_token", "end bits/token"),
+        ("content_excess_bits_per_token", "content excess bits/token"),
     ]
     header += [title for key, title in optional if key in fields]
     simultaneous = "gap_pct_simultaneous_low" in fields
@@ -135,6 +159,9 @@ def _markdown_source(source: str, models: Mapping[str, Any], level: float | None
         header += ["gap % [simultaneous interval]", "level"]
     else:
         header += [f"gap % [{_interval_title(level)}]"]
+    with_content = "content_gap_pct" in fields
+    if with_content:
+        header.append(f"content gap % [{_interval_title(level)}, per cell]")
     header += ["seed spread %", "p (Holm)", "significant"]
     lines = ["| " + " | ".join(header) + " |", "|" + "---|" * len(header)]
     stretched = False
@@ -146,18 +173,11 @@ def _markdown_source(source: str, models: Mapping[str, Any], level: float | None
             cells += ["reference", *([""] * (len(header) - len(cells) - 1))]
         else:
             p_holm = row.get("p_value_holm", row.get("p_value"))
-            if simultaneous and "gap_pct_simultaneous_low" in row:
-                low, high = row["gap_pct_simultaneous_low"], row["gap_pct_simultaneous_high"]
-                mark = "†" if row.get("gap_pct_simultaneous_extended") else ""
-                stretched = stretched or bool(mark)
-                cells += [
-                    f"{row['gap_pct']:+.2f} [{low:+.2f}, {high:+.2f}]{mark}",
-                    _level_text(row.get("simultaneous_level")),
-                ]
-            else:
-                interval = f"[{row['gap_pct_low']:+.2f}, {row['gap_pct_high']:+.2f}]"
-                cells += [f"{row['gap_pct']:+.2f} {interval}"]
-                cells += [_level_text(level)] if simultaneous else []
+            gap_cells, mark = _gap_cells(row, simultaneous, level)
+            stretched = stretched or bool(mark)
+            cells += gap_cells
+            if with_content:
+                cells.append(_gap_text(row, "content_gap_pct"))
             cells += [
                 _number(row.get("seed_spread_pct"), ".2f"),
                 _p_text(p_holm),
@@ -167,10 +187,45 @@ def _markdown_source(source: str, models: Mapping[str, Any], level: float | None
     if stretched:
         lines += [
             "",
-            "† interval stretched to 0: the bootstrap alone excludes 0 at this level, but the "
+            "† interval stretched to 0: the interval alone excludes 0 at this level, but the "
             "test that decided the row (sign flips over units) does not.",
         ]
-    return f"### Source `{source}`\n\n" + "\n".join(lines) + "\n"
+    return f"### Source `{source}`\n\n" + _quote_line(rows) + "\n".join(lines) + "\n"
+
+
+def _gap_cells(
+    row: Mapping[str, Any], simultaneous: bool, level: float | None
+) -> tuple[list[str], str]:
+    """The gap cell (and the level cell when the table has simultaneous intervals) of a
+    tested row, and its mark (``†`` when the interval was stretched to 0, else ``""``)."""
+    if simultaneous and "gap_pct_simultaneous_low" in row:
+        low, high = row["gap_pct_simultaneous_low"], row["gap_pct_simultaneous_high"]
+        mark = "†" if row.get("gap_pct_simultaneous_extended") else ""
+        text = f"{row['gap_pct']:+.2f} [{low:+.2f}, {high:+.2f}]{mark}"
+        return [text, _level_text(row.get("simultaneous_level"))], mark
+    cells = [_gap_text(row, "gap_pct")]
+    return cells + ([_level_text(level)] if simultaneous else []), ""
+
+
+def _gap_text(row: Mapping[str, Any], key: str) -> str:
+    """``+10.00 [+8.00, +12.50]`` for ``key`` and its ``_low``/``_high``; ``–`` if absent."""
+    if row.get(key) is None:
+        return "–"
+    return f"{row[key]:+.2f} [{row[key + '_low']:+.2f}, {row[key + '_high']:+.2f}]"
+
+
+def _quote_line(rows: Sequence[Mapping[str, Any]]) -> str:
+    """The sentence under a source's heading saying which gap column to read, or ``""``."""
+    if not rows or any("content_gap_pct" not in row for row in rows):
+        return ""
+    lengths = {row.get("unit_length") for row in rows}
+    if len(lengths) == 1 and None not in lengths:
+        return (
+            f"Every test unit has {lengths.pop()} tokens: quote the **content gap** for the "
+            "size of an effect (the end marker's cost measures whether a model can count "
+            "positions, not the order); *p* and *significant* test the whole gap.\n\n"
+        )
+    return "Test units differ in length: quote the **gap** (end marker included).\n\n"
 
 
 def _level_text(level: float | None) -> str:
@@ -302,10 +357,10 @@ def render_report(
     parts += [
         "Each gap is `100 * (NLL(order) / NLL(reference) - 1)` on the same test units, with a "
         f"{_interval_title(level) if not _has_simultaneous(table) else 'simultaneous interval'}"
-        " from a bootstrap over units and seeds, and a p-value from a "
-        "paired sign-flip test on units (with 3 or more seeds, no smaller than the bootstrap's "
-        "own p-value), Holm-adjusted over every gap in this table. Positive gaps mean the "
-        "order is harder to learn than the reference.",
+        " that accounts for both the test units drawn and the training runs (seeds; from 3 of "
+        "them), and a p-value from a paired sign-flip test on units, no smaller than the "
+        "interval's own, Holm-adjusted over every gap in this table. Positive gaps mean the "
+        "order is harder to learn than the reference. " + WHICH_GAP,
         "",
         *([CONCLUSION, ""] if _has_simultaneous(table) else []),
         markdown_table(table, level),

@@ -90,12 +90,12 @@ def _interval_caption(table: Mapping[str, Any], level: float | None) -> str:
     leaves = [leaf for models in table.values() for m in models.values() for leaf in m.values()]
     if any("gap_pct_simultaneous_low" in leaf for leaf in leaves):
         return (
-            "bars: simultaneous bootstrap intervals, each at the level Holm's procedure judged "
+            "bars: simultaneous intervals, each at the level Holm's procedure judged "
             "its row (the report's 'level' column; 5% family-wise); filled marker: "
             "significant, hollow: not"
         )
     shown = "per-cell" if level is None else f"{level:.0%} per-cell"
-    return f"bars: {shown} bootstrap intervals; filled marker: significant (Holm), hollow: not"
+    return f"bars: {shown} intervals; filled marker: significant (Holm), hollow: not"
 
 
 def _offsets(n_series: int, span: float = 0.3) -> list[float]:

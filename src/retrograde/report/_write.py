@@ -117,7 +117,8 @@ def table_warnings(table: Table) -> list[str]:
                 f"source {source!r}: model{'s' if len(deterministic) > 1 else ''} {names} gave "
                 "identical losses for every seed (a deterministic fit), so the interval leaves "
                 "out training randomness, including which training units were drawn; judge "
-                "the size of the gap, not only its significance"
+                "the size of the gap, not only its significance (with train_sample: auto or "
+                "half in the model's config each seed trains on its own sample of units)"
             )
         documents = [
             leaf["documents"]

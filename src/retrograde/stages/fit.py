@@ -33,11 +33,19 @@ from typing import Any, TextIO
 import numpy as np
 
 from ..config import ModelConfig, cell_dir, load_params, order_dir
-from ..data import SPLITS, SequenceSet, atomic_write_bytes, atomic_write_json, open_for_writing
+from ..data import (
+    SPLITS,
+    SequenceSet,
+    atomic_write_bytes,
+    atomic_write_json,
+    open_for_writing,
+    resample_train,
+    resolve_train_sample,
+)
 from ..errors import FitError, RetrogradeError
 from . import run_stage
 
-__all__ = ["BUDGET_FIELDS", "cell_budget", "fit_cell", "main"]
+__all__ = ["BUDGET_FIELDS", "cell_budget", "fit_cell", "main", "training_units"]
 
 #: the fields of ``budget.json``, in order
 BUDGET_FIELDS = ("train_tokens", "steps", "cpu_s", "wall_s", "n_params")
@@ -57,6 +65,9 @@ def fit_cell(
 ) -> tuple[Any, np.ndarray, list[dict[str, Any]]]:
     """Fit the model ``model_spec`` describes on train (valid for early stopping).
 
+    ``model_spec.train_sample`` chooses the training units seed ``seed`` sees
+    (:func:`training_units`).
+
     Returns ``(model, test_logprobs, curve)``; ``test_logprobs`` is the flat float64 array
     of the test units' log-probabilities (``len + 1`` per unit, end marker last).
     """
@@ -69,6 +80,10 @@ def fit_cell(
     model = families.make(model_spec.family, **model_spec.params)
     train, valid, test = splits["train"], splits["valid"], splits["test"]
     note(f"fit {model_spec.family} {model_spec.params} seed={seed}")
+    scheme = resolve_train_sample(model_spec.train_sample, model)
+    if scheme != "none":
+        note(f"train sample: {scheme} of {len(train)} units chosen by seed {seed}")
+    train = training_units(model_spec, model, train, seed)
     note(
         f"train {len(train)} units / {len(train.tokens)} tokens; valid {len(valid)}; test {len(test)}"
     )
@@ -104,6 +119,21 @@ def fit_cell(
     note(f"probe: {len(positions)} test positions score distributions that sum to 1")
     note(f"test nats {-values.sum():.6f} over {len(test.tokens)} tokens")
     return model, values, curve
+
+
+def training_units(
+    model_spec: ModelConfig, family: Any, train: SequenceSet, seed: int
+) -> SequenceSet:
+    """The training units seed ``seed`` of ``model_spec`` trains on.
+
+    All of them, or with ``train_sample`` (``auto`` for a ``family`` class or instance
+    without randomness of its own) a sample chosen by the seed alone
+    (:func:`retrograde.data.resample_train`), the same units in every order.
+    """
+    scheme = resolve_train_sample(model_spec.train_sample, family)
+    if scheme == "none" or not len(train):  # an empty split: the family says so itself
+        return train
+    return resample_train(train, seed, scheme=scheme)
 
 
 def _cpu_seconds() -> float:
@@ -165,7 +195,7 @@ def _body(args: argparse.Namespace) -> None:
             model, values, curve = fit_cell(spec, splits, seed=args.seed, log=log)
             budget = cell_budget(
                 model,
-                splits["train"],
+                training_units(spec, model, splits["train"], args.seed),
                 curve,
                 cpu_s=_cpu_seconds() - cpu_started,
                 wall_s=time.perf_counter() - wall_started,

@@ -20,6 +20,7 @@ import numpy as np
 
 from .. import __version__, stats
 from ..config import (
+    ModelConfig,
     RetrogradeConfig,
     StudyConfig,
     cell_dir,
@@ -28,9 +29,10 @@ from ..config import (
     order_dir,
     units_dir,
 )
-from ..data import Ragged, SequenceSet
+from ..data import Ragged, SequenceSet, resolve_train_sample
 from ..errors import DataError
 from . import run_stage
+from .fit import training_units
 
 __all__ = ["collect", "main"]
 
@@ -97,17 +99,27 @@ def _seed_rows(
     return rows
 
 
-def _baseline_bits(wdir: Path, source: str, reference: str) -> float:
+def _baseline_bits(
+    wdir: Path, source: str, reference: str, spec: ModelConfig, seeds: list[int]
+) -> float:
     """Bits per token of a bigram (``ngram``, order ``stats.BASELINE_NGRAM_ORDER``) fitted on
     the reference order's training units and scored on its test units: a floor of effort
-    that any model worth reading should beat."""
+    that any model worth reading should beat. When the model's seeds train on samples of
+    the units (``train_sample``), the bigram is fitted on each seed's sample and its losses
+    averaged over the seeds, so both saw the same units."""
     from .. import families
 
     folder = wdir / str(order_dir(source, reference))
     train, test = SequenceSet.load(folder / "train"), SequenceSet.load(folder / "test")
-    model = families.make("ngram", order=stats.BASELINE_NGRAM_ORDER).fit(train, seed=0)
-    nats = -float(model.logprobs(test).values.sum())
-    return nats / float(np.log(2)) / max(int(len(test.tokens)), 1)
+    family = families.registry.get(spec.family)
+    samples = {seed: training_units(spec, family, train, seed) for seed in seeds}
+    if all(sample is train for sample in samples.values()):
+        samples = {0: train}  # every seed saw every unit: one fit
+    nats = 0.0
+    for seed, units in samples.items():
+        model = families.make("ngram", order=stats.BASELINE_NGRAM_ORDER).fit(units, seed=seed)
+        nats -= float(model.logprobs(test).values.sum())
+    return nats / len(samples) / float(np.log(2)) / max(int(len(test.tokens)), 1)
 
 
 def _training_flags(
@@ -115,12 +127,15 @@ def _training_flags(
     models: dict[str, dict[str, dict[str, Any]]],
     curves: dict[str, dict[str, list[Any]]],
     reference: str,
-    baseline: float,
+    baselines: dict[str, float],
 ) -> list[str]:
-    """Mark under-trained cells in their leaves; return the report's warning lines."""
+    """Mark under-trained cells in their leaves; return the report's warning lines.
+
+    ``baselines`` holds each model's :func:`_baseline_bits`."""
     lines = []
     name = f"a bigram (ngram order {stats.BASELINE_NGRAM_ORDER}) fitted on the same training units"
     for model, leaves in models.items():
+        baseline = baselines[model]
         falling: list[str] = []
         n_fits = 0
         for order, leaf in leaves.items():
@@ -150,6 +165,21 @@ def _training_flags(
     return lines
 
 
+def _baselines(wdir: Path, source: str, config: RetrogradeConfig) -> dict[str, float]:
+    """:func:`_baseline_bits` of every model fitted on ``source`` (fitted once per sample)."""
+    from .. import families
+
+    study, found, out = config.study, {}, {}
+    for model in study.models_on(source):
+        spec, seeds = study.models[model], study.seeds_of(model)
+        scheme = resolve_train_sample(spec.train_sample, families.registry.get(spec.family))
+        key = (scheme, tuple(seeds) if scheme != "none" else ())
+        if key not in found:
+            found[key] = _baseline_bits(wdir, source, study.reference_order, spec, seeds)
+        out[model] = found[key]
+    return out
+
+
 def _data_hash(units: SequenceSet) -> str:
     digest = hashlib.sha256()
     digest.update(np.ascontiguousarray(units.tokens, dtype="<i4").tobytes())
@@ -159,11 +189,12 @@ def _data_hash(units: SequenceSet) -> str:
 
 def _order_losses(
     wdir: Path, where: tuple[str, str, str], seeds: list[int], test: SequenceSet
-) -> tuple[np.ndarray, Ragged, list[Any]]:
+) -> tuple[np.ndarray, np.ndarray, Ragged, list[Any]]:
     """One (source, model, order) over its seeds.
 
-    Returns ``(unit_nll, natural, curves)``: (n_seeds, n_units) nats per test unit, the
-    seed-averaged per-position losses in natural order (end marker last), one curve a seed.
+    Returns ``(unit_nll, end_nll, natural, curves)``: (n_seeds, n_units) nats per test unit,
+    the end marker's share of them, the seed-averaged per-position losses in natural order
+    (end marker last), one curve a seed.
     """
     source, model, order = where
     positions_path = wdir / str(order_dir(source, order)) / "positions_test.npy"
@@ -175,15 +206,16 @@ def _order_losses(
     positions = np.load(positions_path, allow_pickle=False)
     # Each unit has len + 1 scores (end marker last): offsets of the flat score arrays.
     score_offsets = np.concatenate([[0], np.cumsum(test.lengths + 1)]).astype(np.int64)
-    unit_nll, losses, curves = [], [], []
+    unit_nll, end_nll, losses, curves = [], [], [], []
     for seed in seeds:
         values, curve = _read_cell(wdir, source, model, order, seed)
         logprobs = Ragged(values, score_offsets)
         unit_nll.append(stats.unit_nll(logprobs))
+        end_nll.append(-values[score_offsets[1:] - 1])  # the last score of each unit
         losses.append(stats.natural_order_losses(logprobs, positions, test).values)
         curves.append(curve)
     natural = Ragged(np.mean(losses, axis=0), score_offsets)
-    return np.stack(unit_nll), natural, curves
+    return np.stack(unit_nll), np.stack(end_nll), natural, curves
 
 
 def _check_floor(
@@ -215,21 +247,24 @@ def _model_results(
     config: RetrogradeConfig,
     test: SequenceSet,
     floors: Any,
-    replicates: dict[str, np.ndarray] | None = None,
+    replicates: dict[str, Any] | None = None,
     seed_rows: list[dict[str, Any]] | None = None,
 ) -> tuple[dict[str, Any], dict[str, Ragged], dict[str, Any]]:
     """One model on one source: (its table leaves, natural-order losses, curves) per order.
 
-    ``replicates``, when given, receives each order's bootstrap gaps; ``seed_rows`` one row
-    per fit cell (:func:`_seed_rows`)."""
+    ``replicates``, when given, receives what each order's interval was drawn from (for the
+    simultaneous intervals); ``seed_rows`` one row per fit cell (:func:`_seed_rows`)."""
     study, stats_config = config.study, config.stats
     seeds = study.seeds_of(model)
     unit_nll: dict[str, np.ndarray] = {}
+    end_nll: dict[str, np.ndarray] = {}
     natural: dict[str, Ragged] = {}
     curves: dict[str, Any] = {}
     for order in study.orders:
         where = (source, model, order)
-        unit_nll[order], natural[order], curves[order] = _order_losses(wdir, where, seeds, test)
+        unit_nll[order], end_nll[order], natural[order], curves[order] = _order_losses(
+            wdir, where, seeds, test
+        )
         if floors is not None:
             _check_floor(unit_nll[order], floors, where, seeds, test)
     leaves = stats.summarize_model(
@@ -239,10 +274,12 @@ def _model_results(
         n_bytes=test.n_bytes,
         doc_ids=test.doc_ids,
         floors=floors,
+        end_nll=end_nll,
         level=stats_config.level,
+        interval=stats_config.interval,
         n_boot=stats_config.n_boot,
         seed=stats_config.seed,
-        bootstrap_gaps=replicates,
+        gap_distributions=replicates,
     )
     if seed_rows is not None:
         seed_rows += _seed_rows(
@@ -260,7 +297,7 @@ def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
     profiles: dict[str, Any] = {}
     spans: dict[str, Any] = {}
     curves: dict[str, Any] = {}
-    replicates: dict[str, dict[str, dict[str, np.ndarray]]] = {}
+    replicates: dict[str, dict[str, dict[str, Any]]] = {}
     cells: list[dict[str, Any]] = []
     data_hashes: dict[str, str] = {}
     for source in study.sources:
@@ -288,11 +325,7 @@ def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
         line
         for source in study.sources
         for line in _training_flags(
-            source,
-            table[source],
-            curves[source],
-            reference,
-            _baseline_bits(wdir, source, reference),
+            source, table[source], curves[source], reference, _baselines(wdir, source, config)
         )
     ]
     return {

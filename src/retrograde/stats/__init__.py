@@ -6,9 +6,12 @@ every number written out goes through :func:`rounded`.
 
 - scoring: :func:`unit_nll`, :func:`bits_per_token`, :func:`bits_per_byte`,
   :func:`natural_order_losses` (per-position losses mapped back to the natural order);
-- gaps: :func:`summarize_model` (bits per token, gap, interval, p-values per order),
-  :func:`adjust_holm`, :func:`simultaneous_intervals` (intervals at the level Holm judged
-  each row), :func:`below_floor`, the report's cautions;
+- gaps: :func:`summarize_model` (bits per token, gap, interval, p-values per order; the
+  content gap without the end marker), :func:`adjust_holm`, :func:`simultaneous_intervals`
+  (intervals at the level Holm judged each row), :func:`below_floor`,
+  :func:`end_marker_cost`, the report's cautions;
+- the t interval: :func:`gap_interval` (a :class:`GapInterval` from a variance
+  decomposition), :func:`mean_squares`, :func:`satterthwaite_df`;
 - training: :func:`still_falling`, :func:`worse_than_baseline` (signs of an under-trained
   model);
 - profiles: :func:`position_profile`, :func:`span_breakdown`, :func:`segment_breakdown`;
@@ -27,8 +30,10 @@ from ._bootstrap import (
     seed_weight_scale,
     sign_flip_pvalue,
 )
+from ._end_marker import end_marker_cost
 from ._gaps import (
     FLOOR_Z,
+    INTERVALS,
     MIN_DOCUMENTS_FOR_GROUPING,
     MIN_SEEDS_FOR_TRAINING_NOISE,
     adjust_holm,
@@ -37,6 +42,7 @@ from ._gaps import (
     seed_warning,
     summarize_model,
 )
+from ._intervals import GapInterval, gap_interval, mean_squares, satterthwaite_df
 from ._numbers import SIGNIFICANT_DIGITS, rounded
 from ._profiles import position_profile, segment_breakdown, span_breakdown
 from ._scoring import bits_per_byte, bits_per_token, natural_order_losses, unit_nll
@@ -46,23 +52,29 @@ from ._training import BASELINE_NGRAM_ORDER, STEEP_FALL, still_falling, worse_th
 __all__ = [
     "BASELINE_NGRAM_ORDER",
     "FLOOR_Z",
+    "INTERVALS",
     "MIN_DOCUMENTS_FOR_GROUPING",
     "MIN_SEEDS_FOR_TRAINING_NOISE",
     "SIGNIFICANT_DIGITS",
     "STEEP_FALL",
+    "GapInterval",
     "adjust_holm",
     "below_floor",
     "bits_per_byte",
     "bits_per_token",
     "bootstrap_pvalue",
     "bootstrap_totals",
+    "end_marker_cost",
+    "gap_interval",
     "group_sums",
     "grouping_warning",
     "holm",
+    "mean_squares",
     "natural_order_losses",
     "position_profile",
     "resample_counts",
     "rounded",
+    "satterthwaite_df",
     "seed_weight_scale",
     "seed_warning",
     "segment_breakdown",

@@ -6,13 +6,17 @@ under the model trained with seed ``s`` on that order (end marker included). The
 
 - ``bits_per_token = sum_i mean_s NLL[s, i] / ln 2 / sum_i n_tokens[i]``;
 - ``gap_pct = 100 * (T_order / T_reference - 1)`` with ``T = sum_i mean_s NLL[s, i]``;
-- the interval is a percentile bootstrap of that ratio that resamples units (grouped by
-  document when ``doc_ids`` is given) and, with 3 or more seeds, seeds as well (with
-  widened seed weights, see :func:`retrograde._bootstrap.seed_weight_scale`);
+- the interval is, by default, a Student-t interval from a variance decomposition of that
+  ratio over test units (grouped by document when ``doc_ids`` is given) and, with 3 or
+  more seeds, training runs (:func:`retrograde.stats.gap_interval`); with
+  ``interval="bootstrap"`` the earlier two-level percentile bootstrap (widened seed
+  weights, :func:`retrograde.stats.seed_weight_scale`);
 - ``p_value_sign_flip`` is a paired sign-flip test on the seed-averaged per-unit
-  (per-document) differences; ``p_value`` is that, or with 3 or more seeds the larger of it
-  and the two-level bootstrap p-value (:func:`bootstrap_pvalue`), so that training
-  randomness cannot make a gap "significant" that its interval does not support;
+  (per-document) differences; ``p_value`` is the larger of it and the interval's own
+  p-value (the bootstrap's only from 3 seeds on), so that training randomness cannot make
+  a gap "significant" that its interval does not support;
+- with the end marker's losses, the same gap over the content tokens alone
+  (``content_gap_pct``) and the end marker's bits per token;
 - ``seed_spread_pct`` is the standard deviation over seeds of the per-seed gap.
 
 Every function is pure and deterministic for a given ``seed``; floats in the returned
@@ -29,19 +33,15 @@ from typing import Any
 import numpy as np
 
 from ..errors import DataError
-from ..validation import check_float, check_int
-from ._bootstrap import (
-    bootstrap_pvalue,
-    bootstrap_totals,
-    group_sums,
-    holm,
-    seed_weight_scale,
-    sign_flip_pvalue,
-)
+from ..validation import check_choice, check_float, check_int
+from ._bootstrap import holm, sign_flip_pvalue
+from ._intervals import GapInterval, bootstrap_intervals, t_intervals
+from ._losses import MIN_DOCUMENTS_FOR_GROUPING, ModelLosses, checked_inputs, model_losses
 from ._numbers import rounded
 
 __all__ = [
     "FLOOR_Z",
+    "INTERVALS",
     "MIN_DOCUMENTS_FOR_GROUPING",
     "MIN_SEEDS_FOR_TRAINING_NOISE",
     "adjust_holm",
@@ -53,9 +53,8 @@ __all__ = [
 
 #: with fewer seeds the interval resamples units only (seed resampling of 1-2 values is noise)
 MIN_SEEDS_FOR_TRAINING_NOISE = 3
-#: with fewer test documents the bootstrap resamples units one by one (resampling 1-9
-#: documents would give a degenerate or wildly unstable interval); the report warns
-MIN_DOCUMENTS_FOR_GROUPING = 10
+#: how the gap interval is computed (``stats.interval``): see :func:`summarize_model`
+INTERVALS = ("t", "bootstrap")
 _LN2 = math.log(2.0)
 _OWNER = "stats 'summarize_model'"
 
@@ -111,55 +110,6 @@ def grouping_warning(source: str, n_documents: int) -> str | None:
     )
 
 
-def _checked_inputs(
-    unit_nll: Mapping[str, np.ndarray], reference_order: str, n_tokens: np.ndarray
-) -> tuple[list[str], np.ndarray]:
-    """(orders with the reference first, stacked (n_orders, n_seeds, n_units) float64)."""
-    if reference_order not in unit_nll:
-        raise DataError(
-            f"reference order {reference_order!r} has no losses (orders: {sorted(unit_nll)}); "
-            "add it to study.orders or set the reference order to one that was fitted"
-        )
-    orders = [reference_order, *(o for o in unit_nll if o != reference_order)]
-    shapes = {o: np.shape(unit_nll[o]) for o in orders}
-    reference_shape = shapes[reference_order]
-    if len(reference_shape) != 2 or 0 in reference_shape:
-        raise DataError(
-            f"order {reference_order!r}: losses must be a non-empty (n_seeds, n_units) array, "
-            f"got shape {reference_shape}"
-        )
-    for order, shape in shapes.items():
-        if shape != reference_shape:
-            raise DataError(
-                f"order {order!r}: losses have shape {shape} but {reference_order!r} has "
-                f"{reference_shape}; every order must be scored on the same test units and seeds"
-            )
-    if np.shape(n_tokens) != (reference_shape[1],):
-        raise DataError(
-            f"n_tokens has shape {np.shape(n_tokens)}; expected one count per test unit "
-            f"({reference_shape[1]})"
-        )
-    stacked = np.stack([np.asarray(unit_nll[o], dtype=np.float64) for o in orders])
-    if not np.all(np.isfinite(stacked)):
-        bad = orders[int(np.argwhere(~np.isfinite(stacked))[0][0])]
-        raise DataError(
-            f"order {bad!r}: some unit losses are infinite or NaN; the model gave a zero "
-            "probability, use a family that smooths every outcome"
-        )
-    return orders, stacked
-
-
-def _optional_per_unit(name: str, values: np.ndarray | None, n_units: int) -> np.ndarray | None:
-    if values is None:
-        return None
-    values = np.asarray(values)
-    if values.shape != (n_units,):
-        raise DataError(
-            f"{name} has shape {values.shape}; expected one value per test unit ({n_units})"
-        )
-    return values
-
-
 def summarize_model(
     unit_nll: Mapping[str, np.ndarray],
     *,
@@ -168,11 +118,14 @@ def summarize_model(
     n_bytes: np.ndarray | None = None,
     doc_ids: np.ndarray | None = None,
     floors: np.ndarray | None = None,
+    end_nll: Mapping[str, np.ndarray] | None = None,
     level: float = 0.95,
+    interval: str = "t",
+    paired_seeds: bool = True,
     n_boot: int = 2000,
     seed: int = 0,
     n_flips: int = 2000,
-    bootstrap_gaps: dict[str, np.ndarray] | None = None,
+    gap_distributions: dict[str, Any] | None = None,
 ) -> dict[str, dict[str, Any]]:
     """Bits per token and paired gaps to the reference order for one model on one source.
 
@@ -188,122 +141,172 @@ def summarize_model(
     n_bytes : (n_units,) int, optional
         Natural UTF-8 bytes per unit; adds ``bits_per_byte``.
     doc_ids : (n_units,) int, optional
-        Document of each unit; the bootstrap and the sign flips then work on whole documents
+        Document of each unit; the interval and the sign flips then work on whole documents
         (when there are at least ``MIN_DOCUMENTS_FOR_GROUPING`` of them; else on units, and
         :func:`grouping_warning` explains why).
     floors : (n_units,) float, optional
         Exact NLL in nats of each unit (calibration sources); adds ``floor_bits_per_token``
         and ``excess_bits_per_token``.
+    end_nll : mapping order -> (n_seeds, n_units) float, optional
+        The end marker's share of ``unit_nll``; adds ``end_bits_per_token`` and the same gap
+        over the content tokens alone: ``content_gap_pct`` with its interval (and
+        ``content_excess_bits_per_token`` with ``floors``).
     level : float
         Confidence level of the interval, in (0, 1).
+    interval : {"t", "bootstrap"}
+        ``t`` (default): Student-t interval from a variance decomposition of the gap
+        (:func:`retrograde.stats.gap_interval`); ``bootstrap``: the earlier two-level
+        percentile bootstrap with widened seed weights (:func:`retrograde.stats.bootstrap_totals`),
+        kept to reproduce older tables; too wide with few seeds (``docs/statistics.md``).
+    paired_seeds : bool
+        ``True`` (default; what the table stage uses): seed ``s`` of every order forms one
+        pair, and the seeds' part of the interval comes from the per-seed gaps; valid
+        whatever two fits with the same seed share (a training sample, initial weights).
+        ``False`` treats the fits of different orders as independent and estimates each
+        order's seed variation apart (Welch's form, up to twice the degrees of freedom):
+        narrower only when they really share nothing; too wide when same-seed fits are
+        alike, too narrow when they are opposed (``docs/statistics.md``).
     n_boot, n_flips : int
-        Bootstrap replicates and Monte Carlo sign patterns.
+        Bootstrap replicates (``interval="bootstrap"``) and Monte Carlo sign patterns.
     seed : int
         Seed of every random draw: the same inputs and seed give the same numbers.
-    bootstrap_gaps : dict, optional
-        When given, filled with ``{order: (n_boot,) bootstrap gaps in percent}`` (the draws
-        behind the interval), for :func:`retrograde.stats.simultaneous_intervals`.
+    gap_distributions : dict, optional
+        When given, filled with what each order's interval was drawn from, for
+        :func:`retrograde.stats.simultaneous_intervals`: its :class:`GapInterval` (the t
+        distribution: centre, standard error, degrees of freedom), or with
+        ``interval="bootstrap"`` its (n_boot,) bootstrap gaps in percent.
 
     Returns
     -------
     dict
         ``{order: leaf}``; a leaf has ``bits_per_token``, ``gap_pct``, ``gap_pct_low``,
-        ``gap_pct_high``, ``p_value``, ``p_value_sign_flip``, ``seeds``, ``seed_spread_pct`` (``None`` with one
-        seed), ``units``, ``tokens``, ``groups`` (documents or units resampled) and, when
-        known, ``documents``, ``bits_per_byte``, ``floor_bits_per_token``,
-        ``excess_bits_per_token``.
+        ``gap_pct_high``, ``p_value``, ``p_value_sign_flip``, ``seeds``, ``seed_spread_pct``
+        (``None`` with one seed), ``units``, ``tokens``, ``groups`` (documents or units
+        resampled) and, when known, ``unit_length`` (every test unit has that many tokens),
+        ``documents``, ``bits_per_byte``, ``floor_bits_per_token``,
+        ``excess_bits_per_token``, ``end_bits_per_token``, ``content_gap_pct``,
+        ``content_gap_pct_low``, ``content_gap_pct_high`` and
+        ``content_excess_bits_per_token``.
 
     Examples
     --------
     >>> rng = np.random.default_rng(1)
     >>> forward = rng.gamma(5.0, 2.0, size=(3, 40))
     >>> leaves = summarize_model({"forward": forward, "reverse": forward * 1.1},
-    ...                          reference_order="forward", n_tokens=np.full(40, 5), n_boot=200)
+    ...                          reference_order="forward", n_tokens=np.full(40, 5))
     >>> leaves["reverse"]["gap_pct"], leaves["forward"]["gap_pct"]
     (10.0, 0.0)
     """
     level = check_float(_OWNER, "level", level, 0.0, 1.0, low_open=True, high_open=True)
+    interval = check_choice(_OWNER, "interval", interval, INTERVALS)
     n_boot = check_int(_OWNER, "n_boot", n_boot, 10)
     n_flips = check_int(_OWNER, "n_flips", n_flips, 10)
     seed = check_int(_OWNER, "seed", seed, 0)
-    orders, nll = _checked_inputs(unit_nll, reference_order, np.asarray(n_tokens))
-    n_orders, n_seeds, n_units = nll.shape
-    n_bytes = _optional_per_unit("n_bytes", n_bytes, n_units)
-    doc_ids = _optional_per_unit("doc_ids", doc_ids, n_units)
-    floors = _optional_per_unit("floors", floors, n_units)
-    total_tokens = int(np.sum(n_tokens))
-
-    group_index, n_groups = np.arange(n_units), n_units
-    n_documents = None
-    if doc_ids is not None:
-        _, document_index = np.unique(doc_ids, return_inverse=True)
-        n_documents = int(document_index.max()) + 1
-        if n_documents >= MIN_DOCUMENTS_FOR_GROUPING:
-            group_index, n_groups = document_index.ravel(), n_documents
-    per_group = group_sums(nll, group_index.ravel(), n_groups)  # (n_orders, n_seeds, n_groups)
+    orders, nll = checked_inputs(unit_nll, reference_order, np.asarray(n_tokens))
+    data = model_losses(nll, orders, n_tokens, n_bytes, doc_ids, floors, end_nll)
     rng = np.random.default_rng(seed)
-
-    totals = nll.sum(axis=2).mean(axis=1)  # (n_orders,) nats, seed-averaged
-    if np.any(nll[0].sum(axis=1) <= 0):
-        raise DataError(
-            f"order {reference_order!r}: the total test loss of some seed is not positive, so "
-            "gaps relative to it are undefined; check that the test units are not empty"
+    with_seeds = nll.shape[1] >= MIN_SEEDS_FOR_TRAINING_NOISE
+    if interval == "t":
+        whole = t_intervals(data.per_group, level, with_seeds, paired_seeds)
+        parts = (
+            None
+            if data.content is None
+            else t_intervals(data.content, level, with_seeds, paired_seeds)
         )
-    gaps = 100.0 * (totals / totals[0] - 1.0)
-    per_seed_gaps = 100.0 * (nll.sum(axis=2) / nll[0].sum(axis=1) - 1.0)  # (n_orders, n_seeds)
-    replicates = bootstrap_totals(
-        per_group,
-        n_boot=n_boot,
-        rng=rng,
-        seed_weight_scale=(
-            seed_weight_scale(n_seeds, level) if n_seeds >= MIN_SEEDS_FOR_TRAINING_NOISE else None
-        ),
-    )  # (n_boot, n_orders)
-    boot_gaps = 100.0 * (replicates / replicates[:, :1] - 1.0)
-    tail = (1.0 - level) / 2.0
-    lows, highs = np.quantile(boot_gaps, [tail, 1.0 - tail], axis=0)
-    if bootstrap_gaps is not None:
-        bootstrap_gaps.update({order: boot_gaps[:, i].copy() for i, order in enumerate(orders)})
-    differences = per_group[1:].mean(axis=1) - per_group[0].mean(axis=0)  # (n_orders-1, n_groups)
-    sign_flip = np.ones(n_orders)
-    if n_orders > 1:
-        sign_flip[1:], _ = sign_flip_pvalue(differences.T, n_flips=n_flips, rng=rng)
+        distributions: list[Any] = list(whole)
+    else:
+        whole, parts, distributions = _bootstrap_rows(data, level, with_seeds, n_boot, rng)
+    if gap_distributions is not None:
+        gap_distributions.update(zip(orders, distributions, strict=True))
+    # The sign flips treat the seed-averaged losses as fixed, so training randomness alone
+    # makes them reject a true null (measured: 49% at level 0.05 with a 1% seed effect).
+    # The interval's own p-value includes it; taking the larger keeps `significant` in line
+    # with the interval (with the bootstrap, as before, only from 3 seeds on).
+    sign_flip = _sign_flip_pvalues(data.per_group, n_flips, rng)
     p_values = sign_flip.copy()
-    if n_seeds >= MIN_SEEDS_FOR_TRAINING_NOISE:
-        # The sign flips treat the seed-averaged losses as fixed, so training randomness
-        # alone makes them reject a true null (measured: 49% at level 0.05 with a 1% seed
-        # effect). The bootstrap p-value includes it; taking the larger keeps the
-        # `significant` flag in line with the interval.
-        p_values = np.maximum(sign_flip, bootstrap_pvalue(boot_gaps))
-
-    leaves: dict[str, dict[str, Any]] = {}
+    if interval == "t" or with_seeds:
+        p_values = np.maximum(sign_flip, [row.p_value for row in whole])
+    leaves = {}
     for index, order in enumerate(orders):
-        bits_per_token = totals[index] / _LN2 / max(total_tokens, 1)
-        leaf: dict[str, Any] = {
-            "bits_per_token": rounded(bits_per_token),
-            "gap_pct": rounded(gaps[index]),
-            "gap_pct_low": rounded(lows[index]),
-            "gap_pct_high": rounded(highs[index]),
-            "p_value": rounded(p_values[index]),
-            "p_value_sign_flip": rounded(sign_flip[index]),
-            "seeds": n_seeds,
-            "seed_spread_pct": (
-                rounded(np.std(per_seed_gaps[index], ddof=1)) if n_seeds > 1 else None
-            ),
-            "units": n_units,
-            "tokens": total_tokens,
-            "groups": n_groups,  # what the bootstrap resampled: documents, or else units
-        }
-        if n_documents is not None:
-            leaf["documents"] = n_documents
-        if n_bytes is not None:
-            leaf["bits_per_byte"] = rounded(totals[index] / _LN2 / max(int(n_bytes.sum()), 1))
-        if floors is not None:
-            floor_bits = float(np.sum(floors)) / _LN2 / max(total_tokens, 1)
-            leaf["floor_bits_per_token"] = rounded(floor_bits)
-            leaf["excess_bits_per_token"] = rounded(bits_per_token - floor_bits)
-        leaves[order] = leaf
+        leaves[order] = _leaf(data, index, whole[index], p_values[index], sign_flip[index])
+        leaves[order].update(_end_fields(data, index, None if parts is None else parts[index]))
     return {order: leaves[order] for order in unit_nll}
+
+
+def _sign_flip_pvalues(per_group: np.ndarray, n_flips: int, rng: np.random.Generator) -> Any:
+    """(n_orders,) sign-flip p-values of the seed-averaged per-group differences (1 for the
+    reference)."""
+    sign_flip = np.ones(per_group.shape[0])
+    if per_group.shape[0] > 1:
+        differences = per_group[1:].mean(axis=1) - per_group[0].mean(axis=0)  # (n_orders-1, G)
+        sign_flip[1:], _ = sign_flip_pvalue(differences.T, n_flips=n_flips, rng=rng)
+    return sign_flip
+
+
+def _leaf(
+    data: ModelLosses, index: int, gap: GapInterval, p_value: float, p_sign_flip: float
+) -> dict[str, Any]:
+    """The leaf of order ``index``: bits, gap, interval, p-values, sizes (floor with floors)."""
+    n_seeds, n_units = data.nll.shape[1:]
+    spread = np.std(data.per_seed_gaps[index], ddof=1) if n_seeds > 1 else None
+    leaf: dict[str, Any] = {
+        "bits_per_token": rounded(data.bits_per_token(index)),
+        "gap_pct": rounded(gap.gap_pct),
+        "gap_pct_low": rounded(gap.low),
+        "gap_pct_high": rounded(gap.high),
+        "p_value": rounded(p_value),
+        "p_value_sign_flip": rounded(p_sign_flip),
+        "seeds": n_seeds,
+        "seed_spread_pct": None if spread is None else rounded(spread),
+        "units": n_units,
+        "tokens": data.total_tokens,
+        "groups": data.n_groups,  # the interval's independent draws: documents, or else units
+    }
+    lengths = data.n_tokens
+    if np.all(lengths == lengths[0]):
+        leaf["unit_length"] = int(lengths[0])
+    if data.n_documents is not None:
+        leaf["documents"] = data.n_documents
+    if data.n_bytes is not None:
+        bits = data.totals[index] / _LN2 / max(int(data.n_bytes.sum()), 1)
+        leaf["bits_per_byte"] = rounded(bits)
+    if data.floors is not None:
+        floor_bits = float(np.sum(data.floors)) / _LN2 / max(data.total_tokens, 1)
+        leaf["floor_bits_per_token"] = rounded(floor_bits)
+        leaf["excess_bits_per_token"] = rounded(data.bits_per_token(index) - floor_bits)
+    return leaf
+
+
+def _end_fields(data: ModelLosses, index: int, content: GapInterval | None) -> dict[str, Any]:
+    """The end marker's bits, the content gap and the content excess (with end losses)."""
+    if data.end is None:
+        return {}
+    end_bits = float(data.end[index].sum(axis=1).mean()) / _LN2 / max(data.total_tokens, 1)
+    fields: dict[str, Any] = {"end_bits_per_token": rounded(end_bits)}
+    if content is not None:
+        fields["content_gap_pct"] = rounded(content.gap_pct)
+        fields["content_gap_pct_low"] = rounded(content.low)
+        fields["content_gap_pct_high"] = rounded(content.high)
+    if data.floors is not None:
+        # The exact floor charges the end marker nothing (fixed-length units), so it is
+        # already a floor of the content tokens alone.
+        floor_bits = float(np.sum(data.floors)) / _LN2 / max(data.total_tokens, 1)
+        content_bits = data.bits_per_token(index) - end_bits
+        fields["content_excess_bits_per_token"] = rounded(content_bits - floor_bits)
+    return fields
+
+
+def _bootstrap_rows(
+    data: ModelLosses, level: float, with_seeds: bool, n_boot: int, rng: np.random.Generator
+) -> tuple[list[GapInterval], list[GapInterval] | None, list[np.ndarray]]:
+    """Bootstrap intervals of the whole gaps, of the content gaps (or None), and each
+    order's (n_boot,) bootstrap gaps; whole and content losses share one set of weights."""
+    n_orders = data.nll.shape[0]
+    content = data.content
+    stacked = data.per_group if content is None else np.concatenate([data.per_group, content])
+    rows, boot_gaps = bootstrap_intervals(stacked, n_orders, level, with_seeds, n_boot, rng)
+    parts = None if content is None else rows[n_orders:]
+    return rows[:n_orders], parts, [boot_gaps[:, i].copy() for i in range(n_orders)]
 
 
 def adjust_holm(
