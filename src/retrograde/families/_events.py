@@ -13,7 +13,6 @@ from collections.abc import Callable
 import numpy as np
 
 from ..sequences import SequenceSet, index_dtype
-from ._ngram_counts import gather
 
 __all__ = ["unit_events"]
 
@@ -32,30 +31,27 @@ def unit_events(units: SequenceSet) -> tuple[Callable[[int], np.ndarray], np.nda
     n_events = int(event_offsets[-1])
     # int32 halves the memory of these (n_events,) arrays at 25 M tokens.
     dtype = index_dtype(n_events)
-    unit_of_event: np.ndarray = np.repeat(np.arange(n_units, dtype=dtype), lengths + 1)
-    # Flat token index of each event's own position (== next unit's start for end markers).
-    token_index = np.arange(n_events, dtype=dtype) - unit_of_event
-    # Position inside the unit, capped: only "is it at least lag?" is asked, lag <= 127.
-    # Computed in place in that dtype: int64 temporaries here were the fit's memory peak.
-    starts = gather(units.offsets[:-1].astype(dtype), unit_of_event)
-    del unit_of_event
-    np.subtract(token_index, starts, out=starts)
-    np.minimum(starts, 127, out=starts)
-    position = starts.astype(np.int8)
-    del starts
-    # One dummy token when there are none keeps the clipped look-ups below in range.
-    tokens = np.asarray(units.tokens) if len(units.tokens) else np.zeros(1, dtype=np.int32)
+    # (n_events,) position of each event inside its unit, capped: only "is it at least
+    # lag?" is asked, lag <= 127. Computed in place: int64 temporaries were the fit's peak.
+    position_wide = np.arange(n_events, dtype=dtype)
+    position_wide -= np.repeat(event_offsets[:-1].astype(dtype), lengths + 1)
+    np.minimum(position_wide, 127, out=position_wide)
+    position = position_wide.astype(np.int8)
+    del position_wide
+    # (n_events,) the tokens in order, an end marker after each unit's last token.
     outcomes = np.full(n_events, end, dtype=np.int32)
     is_token = np.ones(n_events, dtype=bool)
     is_token[event_offsets[1:] - 1] = False
-    outcomes[is_token] = gather(tokens, token_index[is_token])
+    outcomes[is_token] = units.tokens
     del is_token
 
     def symbol_at_lag(lag: int) -> np.ndarray:
-        # Clipped at the first token; positions before the unit start get the begin marker.
-        symbols = gather(tokens, np.maximum(token_index, lag), offset=-lag)
-        symbols = symbols.astype(np.int32, copy=False)
-        symbols[position < lag] = begin
+        # Inside a unit the symbol lag back is the outcome of the event lag earlier (a
+        # shifted copy, no gather); before the unit starts it is the begin marker.
+        symbols = np.empty(n_events, dtype=np.int32)
+        symbols[lag:] = outcomes[: max(n_events - lag, 0)]
+        symbols[:lag] = begin
+        np.copyto(symbols, begin, where=position < lag)
         return symbols
 
     return symbol_at_lag, outcomes, event_offsets

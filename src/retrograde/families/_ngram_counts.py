@@ -20,14 +20,16 @@ family. Notation (``V`` = vocabulary size, ``N`` = n-gram order):
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass
+from itertools import chain
 from typing import Any
 
 import numpy as np
 
 from ..sequences import index_dtype
 from ._bitset_rank import bitset_rank
+from ._packed_sort import packed_fits, packed_rank
 
 __all__ = [
     "FALLBACK_DISCOUNT",
@@ -38,6 +40,7 @@ __all__ = [
     "interpolated_probs",
     "lookup",
     "modified_kn_discounts",
+    "rank_keys",
     "rank_pairs",
 ]
 
@@ -54,6 +57,8 @@ _BITSET_KEYS_PER_EVENT = 32
 _DENSE_KEYS_PER_EVENT = 8
 # Key tables above this many entries (8 bytes each) no longer fit in a typical L2 cache.
 _CACHE_KEYS = 1 << 16
+#: largest window key space ranked by one sort of int64 windows (keys below 2**63)
+_WINDOW_LIMIT = 1 << 63
 
 
 #: events per step when gathering: numpy converts int32 indices to int64 (intp) first, and
@@ -98,10 +103,28 @@ def rank_pairs(
         keys += low
     else:
         keys = _pair_keys(high, low, n_low, dtype)
+    return rank_keys(keys, space, overwrite=True)
+
+
+def rank_keys(
+    keys: np.ndarray, space: int, *, overwrite: bool = False
+) -> tuple[np.ndarray, np.ndarray]:
+    """``(ids, distinct)`` of non-negative ``keys < space``, as ``np.unique(return_inverse)``.
+
+    ``distinct`` is the sorted distinct keys (int64) and ``ids[e]`` the index of ``keys[e]``
+    in it. The method depends on the space next to the number of keys ``n``: a dense rank
+    table (linear, ~5 bytes per possible key), a bitset (linear, space / 4 bytes), else one
+    sort of keys packed with their positions (:mod:`._packed_sort`), else ``argsort``.
+    ``overwrite=True`` lets the last two reuse an int64 ``keys`` array's memory.
+
+    >>> ids, distinct = rank_keys(np.array([9, 2, 9]), 10)
+    >>> ids.tolist(), distinct.tolist()
+    ([1, 0, 1], [2, 9])
+    """
     # A dense table costs ~5 bytes per possible key whatever the number of events: with few
     # events and a large vocabulary (word tokens) it would dominate, so it also needs the
     # space to be small next to the events.
-    if space <= min(_DENSE_KEYS, max(1 << 16, _DENSE_KEYS_PER_EVENT * len(keys))):
+    if space <= _dense_limit(len(keys)):
         present = np.zeros(space, dtype=bool)
         for start in range(0, len(keys), _GATHER_CHUNK):
             present[keys[start : start + _GATHER_CHUNK].astype(np.intp)] = True
@@ -112,6 +135,8 @@ def rank_pairs(
         return gather(rank, keys), distinct.astype(np.int64)
     if space <= _BITSET_KEYS_PER_EVENT * len(keys):
         return bitset_rank(keys, space)  # linear; at most ~8 bytes per event of memory
+    if packed_fits(space, len(keys)):
+        return packed_rank(keys, space, overwrite=overwrite)
     order = np.argsort(keys)
     sorted_keys = keys[order]
     del keys
@@ -121,6 +146,11 @@ def rank_pairs(
     ids = np.empty(len(order), dtype=index_dtype(len(order)))
     ids[order] = np.cumsum(is_new, dtype=ids.dtype) - 1
     return ids, sorted_keys[is_new].astype(np.int64)
+
+
+def _dense_limit(n_keys: int) -> int:
+    """Largest key space ranked with a dense table for ``n_keys`` keys."""
+    return min(_DENSE_KEYS, max(1 << 16, _DENSE_KEYS_PER_EVENT * n_keys))
 
 
 def _pair_keys(high: np.ndarray, low: np.ndarray, n_low: int, dtype: Any) -> np.ndarray:
@@ -239,25 +269,55 @@ def count_tables(
 
     ``symbol_at_lag(j)`` returns the ``(n_events,)`` context symbol ``j`` positions back
     (the begin marker before the unit starts); ``outcomes`` is ``(n_events,)``.
-    ``on_level()`` is called after each of the ``order`` passes over the events (progress).
+    ``on_level()`` is called ``order`` times, once per level counted (progress).
+
+    An event's *window* is its context symbols nearest first, then its outcome:
+    ``(s_1, ..., s_{N-1}, o)``. Context ids are ranks in the lexicographic order of these
+    tuples, so every level is a prefix of the window. When the whole window fits one int64
+    in mixed radix ``n_symbols``, one sort of the windows gives every level: the sorted
+    distinct windows are the ``N``-gram types, their distinct prefixes the contexts
+    (:func:`_prefix_levels`). Otherwise the leading symbols are first replaced by the id of
+    their prefix, ranked per event several symbols at a time (as many as one packed
+    sort or a dense table takes, :func:`_jump_length`), until the rest fits.
     """
-    context_keys: list[np.ndarray] = [np.zeros(0, dtype=np.int64)]
-    context_ids = np.zeros(len(outcomes), dtype=np.int32)  # the empty context
-    for lag in range(1, order):
-        context_ids, keys = rank_pairs(
-            context_ids, symbol_at_lag(lag), n_symbols, overwrite_high=True
-        )
-        context_keys.append(keys)
-        if on_level is not None:
-            on_level()
-    top_keys = _pair_keys(context_ids, outcomes, n_symbols, np.int64)
-    del context_ids
+    n_events = len(outcomes)
+    context_keys: list[np.ndarray] = [np.zeros(0, dtype=np.int64)] * order
+    # (n_events,) id of each event's context of length ``level``; None: all 0 (empty context)
+    ids: np.ndarray | None = None
+    n_ids = 1
+    level = 0
+    while level < order - 1 and n_ids * n_symbols ** (order - level) > _WINDOW_LIMIT:
+        if n_ids * n_symbols >= 1 << 62:
+            raise OverflowError(f"n-gram key space {n_ids} x {n_symbols} does not fit in 63 bits")
+        step = _jump_length(n_ids, n_symbols, n_events, order - 1 - level)
+        lags = range(level + 1, level + step + 1)
+        space = n_ids * n_symbols**step
+        keys = _append_symbols(ids, n_symbols, (symbol_at_lag(lag) for lag in lags), space)
+        del ids
+        ids, distinct = rank_keys(keys, space, overwrite=True)
+        del keys
+        context_keys[level + 1 : level + step + 1] = _prefix_levels(distinct, n_symbols, step)
+        level += step
+        n_ids = len(distinct)
+        for _ in lags:
+            if on_level is not None:
+                on_level()
+    symbols = (symbol_at_lag(lag) for lag in range(level + 1, order))
+    space = n_ids * n_symbols ** (order - level)
+    if space > 1 << 63:
+        raise OverflowError(f"n-gram key space {n_ids} x {n_symbols} does not fit in 63 bits")
+    windows = _append_symbols(ids, n_symbols, chain(symbols, [outcomes]), space)
+    del ids
+    windows, top_counts = distinct_counts(windows)
+    levels = _prefix_levels(windows, n_symbols, order - level)
+    del windows
+    context_keys[level + 1 : order] = levels[:-1]
     type_keys = [np.zeros(0, dtype=np.int64)] * (order + 1)
     type_counts = [np.zeros(0, dtype=np.int64)] * (order + 1)
-    type_keys[order], type_counts[order] = distinct_counts(top_keys)
-    del top_keys
-    if on_level is not None:
-        on_level()
+    type_keys[order], type_counts[order] = levels[-1], top_counts
+    for _ in range(level, order):
+        if on_level is not None:
+            on_level()
     for k in range(order - 1, 0, -1):
         # Continuation count of a k-gram: how many distinct (k+1)-gram types end with it.
         longer = type_keys[k + 1]
@@ -272,6 +332,72 @@ def count_tables(
         else:
             discounts[k] = fixed_discount
     return KneserNeyTables(order, n_symbols, context_keys, type_keys, type_counts, discounts)
+
+
+def _jump_length(n_ids: int, n_symbols: int, n_events: int, most: int) -> int:
+    """How many context symbols (1..``most``) to rank per event in one step.
+
+    As many as one pass ranks cheaply: a dense table or a packed sort (no ``argsort``).
+    """
+    step = 1
+    while step < most:
+        space = n_ids * n_symbols ** (step + 1)
+        if space > _dense_limit(n_events) and not packed_fits(space, n_events):
+            break
+        step += 1
+    return step
+
+
+def _append_symbols(
+    ids: np.ndarray | None, n_symbols: int, symbols: Iterable[np.ndarray], space: int
+) -> np.ndarray:
+    """``(n_events,)`` keys ``((ids * n_symbols + s_a) * n_symbols + s_b) ...``.
+
+    ``ids`` None stands for all zeros. The keys are int32 only when every key is below
+    ``space <= 2**31`` (``index_dtype``); each symbol array is consumed as it comes, so at
+    most one of them is alive.
+    """
+    dtype = index_dtype(space)
+    keys: np.ndarray | None = None if ids is None else ids.astype(dtype)
+    for column in symbols:
+        if keys is None:
+            keys = column.astype(dtype)
+        else:
+            keys *= n_symbols
+            keys += column
+        del column
+    assert keys is not None
+    return keys
+
+
+def _prefix_levels(keys: np.ndarray, n_symbols: int, depth: int) -> list[np.ndarray]:
+    """Keys of ``depth`` consecutive levels from sorted distinct keys of their last level.
+
+    ``keys`` is ``(D,)`` sorted distinct ``base * n_symbols**depth + digits``, with ``base``
+    the id of a prefix at the level before the first. Level ``i`` (1..depth) holds the
+    distinct ``keys // n_symbols**(depth - i)``; its key for the table is (id of its own
+    prefix one level down) ``* n_symbols +`` its last digit. Returns ``depth`` sorted int64
+    arrays; the last has ``D`` entries.
+
+    Three keys ``(base, digit, digit)`` in radix 3: (1, 2, 0), (1, 2, 2), (2, 0, 1). Level 1
+    holds (1, 2) and (2, 0), keyed 1 * 3 + 2 and 2 * 3 + 0; level 2 their ids 0, 0, 1 with
+    the last digits:
+
+    >>> [k.tolist() for k in _prefix_levels(np.array([15, 17, 19]), 3, 2)]
+    [[5, 6], [0, 2, 4]]
+    """
+    keys = keys.astype(np.int64, copy=False)
+    parent = keys // np.int64(n_symbols) ** depth  # (D,) base ids: ids one level down
+    levels = []
+    for i in range(1, depth + 1):
+        prefix = keys // np.int64(n_symbols) ** (depth - i) if i < depth else keys
+        is_new = np.empty(len(prefix), dtype=bool)
+        is_new[:1] = True
+        np.not_equal(prefix[1:], prefix[:-1], out=is_new[1:])
+        levels.append(parent[is_new] * n_symbols + prefix[is_new] % n_symbols)
+        # Ids of each entry's prefix at this level: the parents of the next level.
+        parent = np.cumsum(is_new, dtype=np.int64) - 1
+    return levels
 
 
 def interpolated_probs(
