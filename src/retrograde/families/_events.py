@@ -8,21 +8,21 @@ plus the end marker ``V`` (predicted after the last token, never context).
 
 from __future__ import annotations
 
-from collections.abc import Callable
-
 import numpy as np
 
 from ..sequences import SequenceSet, index_dtype
+from ._ngram_counts import SymbolsAtLag
 
 __all__ = ["unit_events"]
 
 
-def unit_events(units: SequenceSet) -> tuple[Callable[[int], np.ndarray], np.ndarray, np.ndarray]:
+def unit_events(units: SequenceSet) -> tuple[SymbolsAtLag, np.ndarray, np.ndarray]:
     """Events of ``units``: ``(symbol_at_lag, outcomes, event_offsets)``.
 
     Unit ``i`` owns events ``event_offsets[i]:event_offsets[i+1]`` (its tokens, then the end
     marker). ``symbol_at_lag(j)`` gives each event's symbol ``j`` back, the begin marker
-    (= ``vocab_size``) before the unit starts.
+    (= ``vocab_size``) before the unit starts; ``symbol_at_lag(j, start, stop)`` the same
+    for events ``start:stop`` only.
     """
     begin = end = int(units.vocab_size if units.vocab_size is not None else 0)
     lengths = units.lengths
@@ -45,13 +45,16 @@ def unit_events(units: SequenceSet) -> tuple[Callable[[int], np.ndarray], np.nda
     outcomes[is_token] = units.tokens
     del is_token
 
-    def symbol_at_lag(lag: int) -> np.ndarray:
+    def symbol_at_lag(lag: int, start: int = 0, stop: int | None = None) -> np.ndarray:
         # Inside a unit the symbol lag back is the outcome of the event lag earlier (a
         # shifted copy, no gather); before the unit starts it is the begin marker.
-        symbols = np.empty(n_events, dtype=np.int32)
-        symbols[lag:] = outcomes[: max(n_events - lag, 0)]
-        symbols[:lag] = begin
-        np.copyto(symbols, begin, where=position < lag)
+        stop = n_events if stop is None else stop
+        symbols = np.empty(stop - start, dtype=np.int32)
+        # events start .. start + before - 1 have no event lag earlier in the whole set
+        before = min(max(lag - start, 0), len(symbols))
+        symbols[:before] = begin
+        symbols[before:] = outcomes[start + before - lag : stop - lag]
+        np.copyto(symbols, begin, where=position[start:stop] < lag)
         return symbols
 
     return symbol_at_lag, outcomes, event_offsets

@@ -20,16 +20,15 @@ family. Notation (``V`` = vocabulary size, ``N`` = n-gram order):
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterable
+from collections.abc import Callable
 from dataclasses import dataclass
-from itertools import chain
-from typing import Any
+from typing import Any, Protocol
 
 import numpy as np
 
 from ..sequences import index_dtype
 from ._bitset_rank import bitset_rank
-from ._packed_sort import packed_fits, packed_rank
+from ._packed_sort import packed_fits, packed_rank, packed_sorted_blocks
 
 __all__ = [
     "FALLBACK_DISCOUNT",
@@ -43,6 +42,13 @@ __all__ = [
     "rank_keys",
     "rank_pairs",
 ]
+
+
+class SymbolsAtLag(Protocol):
+    """Context symbols ``lag`` positions back of events ``start:stop`` (all events by default)."""
+
+    def __call__(self, lag: int, start: int = 0, stop: int | None = None, /) -> np.ndarray: ...
+
 
 #: Single discount used when a level has no singletons (``n1 == 0``), so eq. 26 is
 #: undefined. 0.5 is the usual middle value (common practice, no source).
@@ -66,9 +72,15 @@ _WINDOW_LIMIT = 1 << 63
 _GATHER_CHUNK = 1 << 20
 
 
-def gather(values: np.ndarray, index: np.ndarray, offset: int = 0) -> np.ndarray:
-    """``values[index + offset]`` computed in chunks, so no full-size int64 copy of ``index``."""
-    out = np.empty(len(index), dtype=values.dtype)
+def gather(
+    values: np.ndarray, index: np.ndarray, offset: int = 0, out: np.ndarray | None = None
+) -> np.ndarray:
+    """``values[index + offset]`` computed in chunks, so no full-size int64 copy of ``index``.
+
+    ``out``, when given, is ``(len(index),)`` of ``values``' dtype and receives the result.
+    """
+    if out is None:
+        out = np.empty(len(index), dtype=values.dtype)
     for start in range(0, len(index), _GATHER_CHUNK):
         chunk = index[start : start + _GATHER_CHUNK].astype(np.intp)
         if offset:
@@ -107,7 +119,7 @@ def rank_pairs(
 
 
 def rank_keys(
-    keys: np.ndarray, space: int, *, overwrite: bool = False
+    keys: np.ndarray, space: int, *, overwrite: bool = False, out: np.ndarray | None = None
 ) -> tuple[np.ndarray, np.ndarray]:
     """``(ids, distinct)`` of non-negative ``keys < space``, as ``np.unique(return_inverse)``.
 
@@ -115,7 +127,8 @@ def rank_keys(
     in it. The method depends on the space next to the number of keys ``n``: a dense rank
     table (linear, ~5 bytes per possible key), a bitset (linear, space / 4 bytes), else one
     sort of keys packed with their positions (:mod:`._packed_sort`), else ``argsort``.
-    ``overwrite=True`` lets the last two reuse an int64 ``keys`` array's memory.
+    ``overwrite=True`` lets the last two reuse an int64 ``keys`` array's memory; ``out``
+    is memory for the ids, used when its dtype and length are those of the result.
 
     >>> ids, distinct = rank_keys(np.array([9, 2, 9]), 10)
     >>> ids.tolist(), distinct.tolist()
@@ -132,11 +145,14 @@ def rank_keys(
         del present
         rank = np.empty(space, dtype=index_dtype(len(distinct)))
         rank[distinct] = np.arange(len(distinct))
-        return gather(rank, keys), distinct.astype(np.int64)
+        return gather(rank, keys, out=_fitting(out, len(keys), rank.dtype)), distinct.astype(
+            np.int64
+        )
     if space <= _BITSET_KEYS_PER_EVENT * len(keys):
         return bitset_rank(keys, space)  # linear; at most ~8 bytes per event of memory
     if packed_fits(space, len(keys)):
-        return packed_rank(keys, space, overwrite=overwrite)
+        ids = _fitting(out, len(keys), index_dtype(len(keys)))
+        return packed_rank(keys, space, overwrite=overwrite, out=ids)
     order = np.argsort(keys)
     sorted_keys = keys[order]
     del keys
@@ -146,6 +162,13 @@ def rank_keys(
     ids = np.empty(len(order), dtype=index_dtype(len(order)))
     ids[order] = np.cumsum(is_new, dtype=ids.dtype) - 1
     return ids, sorted_keys[is_new].astype(np.int64)
+
+
+def _fitting(out: np.ndarray | None, length: int, dtype: Any) -> np.ndarray | None:
+    """``out`` when it has ``length`` entries of ``dtype``, else None (allocate anew)."""
+    if out is not None and len(out) == length and out.dtype == dtype:
+        return out
+    return None
 
 
 def _dense_limit(n_keys: int) -> int:
@@ -162,10 +185,38 @@ def _pair_keys(high: np.ndarray, low: np.ndarray, n_low: int, dtype: Any) -> np.
 
 
 def distinct_counts(keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Sorted distinct values of ``keys`` and how often each occurs (sorts ``keys`` in place)."""
+    """Sorted distinct values of ``keys`` and how often each occurs (sorts ``keys`` in place).
+
+    Two passes a block at a time (mark each value's last occurrence, then copy), so the
+    only full-size temporary is one byte per key.
+
+    >>> values, counts = distinct_counts(np.array([7, 2, 7, 7, 0]))
+    >>> values.tolist(), counts.tolist()
+    ([0, 2, 7], [1, 1, 3])
+    """
     keys.sort()
-    starts = np.flatnonzero(np.concatenate([[True], keys[1:] != keys[:-1]]))
-    return keys[starts], np.diff(np.append(starts, len(keys))).astype(np.int64)
+    # (n,) whether each sorted key is the last of its value
+    is_last = np.empty(len(keys), dtype=bool)
+    for start in range(0, len(keys) - 1, _GATHER_CHUNK):
+        stop = min(start + _GATHER_CHUNK, len(keys) - 1)
+        np.not_equal(keys[start:stop], keys[start + 1 : stop + 1], out=is_last[start:stop])
+    is_last[-1:] = True
+    n_distinct = int(np.count_nonzero(is_last))
+    values = np.empty(n_distinct, dtype=keys.dtype)
+    counts = np.empty(n_distinct, dtype=np.int64)
+    filled = 0
+    previous_end = -1  # index of the last occurrence of the previous value
+    for start in range(0, len(keys), _GATHER_CHUNK):
+        block = is_last[start : start + _GATHER_CHUNK]
+        ends = np.flatnonzero(block)
+        if len(ends) == 0:
+            continue
+        ends += start
+        values[filled : filled + len(ends)] = keys[ends]
+        counts[filled : filled + len(ends)] = np.diff(ends, prepend=np.int64(previous_end))
+        filled += len(ends)
+        previous_end = int(ends[-1])
+    return values, counts
 
 
 def lookup(sorted_keys: np.ndarray, keys: np.ndarray) -> np.ndarray:
@@ -188,6 +239,9 @@ def lookup(sorted_keys: np.ndarray, keys: np.ndarray) -> np.ndarray:
     if len(sorted_keys) > _CACHE_KEYS and len(keys) > 1024:
         # Sorted queries let each binary search start where the last one ended, which
         # keeps a table larger than the CPU cache from missing on every step.
+        low, high = int(keys.min()), int(keys.max())
+        if low >= 0 and packed_fits(high + 1, len(keys)):
+            return _lookup_sorted(sorted_keys, keys, high + 1)
         order = np.argsort(keys)
         where = np.empty(len(keys), dtype=np.intp)
         where[order] = np.searchsorted(sorted_keys, keys[order])
@@ -195,6 +249,21 @@ def lookup(sorted_keys: np.ndarray, keys: np.ndarray) -> np.ndarray:
         where = np.searchsorted(sorted_keys, keys)
     np.minimum(where, len(sorted_keys) - 1, out=where)
     return np.where(sorted_keys[where] == keys, where, -1)
+
+
+def _lookup_sorted(sorted_keys: np.ndarray, keys: np.ndarray, space: int) -> np.ndarray:
+    """:func:`lookup` of non-negative ``keys < space``, taken in sorted order a block at a time.
+
+    The blocks come from one packed sort (:func:`packed_sorted_blocks`); the binary searches
+    and the equality checks of a block then touch the table in increasing order.
+    """
+    where = np.empty(len(keys), dtype=np.int64)
+    last = len(sorted_keys) - 1
+    for block, positions in packed_sorted_blocks(keys, space):
+        found = np.searchsorted(sorted_keys, block)
+        np.minimum(found, last, out=found)
+        where[positions] = np.where(sorted_keys[found] == block, found, -1)
+    return where
 
 
 def modified_kn_discounts(counts: np.ndarray) -> np.ndarray:
@@ -242,22 +311,66 @@ class KneserNeyTables:
     discounts: np.ndarray
 
     def __post_init__(self) -> None:
-        # Derived per level: alpha for each type, (total, gamma) for each context.
-        self.alphas: list[np.ndarray] = [np.zeros(0)]
+        # Derived per level: (total, gamma) for each context. A type's alpha is computed
+        # where it is scored (:meth:`alphas`), so no per-type float array is kept.
+        self.totals: list[np.ndarray] = [np.zeros(0)]
         self.gammas: list[np.ndarray] = [np.zeros(0)]
         for k in range(1, self.order + 1):
-            counts = self.type_counts[k].astype(np.float64)
-            context = self.type_keys[k] // self.n_symbols
             n_contexts = 1 if k == 1 else len(self.context_keys[k - 1])
-            totals = np.bincount(context, weights=counts, minlength=n_contexts)
-            per_type = self.discounts[k][np.minimum(self.type_counts[k], 3) - 1]
-            discounted = np.bincount(context, weights=per_type, minlength=n_contexts)
-            self.alphas.append((counts - per_type) / totals[context])
+            totals = np.zeros(n_contexts)
+            discounted = np.zeros(n_contexts)
+            keys, counts = self.type_keys[k], self.type_counts[k]
+            # Blocks end where a context ends: every context's sums are then taken in one
+            # bincount, in type order from 0.0, exactly as over the whole level at once.
+            for start, stop in _context_blocks(keys, self.n_symbols):
+                context = keys[start:stop] // self.n_symbols
+                first = int(context[0])
+                context -= first
+                span = int(context[-1]) + 1
+                block_counts = counts[start:stop]
+                per_type = self.discounts[k][np.minimum(block_counts, 3) - 1]
+                totals[first : first + span] = np.bincount(
+                    context, weights=block_counts.astype(np.float64), minlength=span
+                )
+                discounted[first : first + span] = np.bincount(
+                    context, weights=per_type, minlength=span
+                )
+            self.totals.append(totals)
             self.gammas.append(discounted / totals)
+
+    def alphas(self, k: int, where: np.ndarray, context_ids: np.ndarray) -> np.ndarray:
+        """``max(c - D(c), 0) / c(h)`` of the level-``k`` types at ``where`` (``-1``: unseen, 0).
+
+        ``context_ids`` are the types' context ids (``where`` and ``context_ids`` are
+        ``(n,)``); the arithmetic is the same float64 operations for every type, so a type
+        scores the same whatever else is scored with it.
+        """
+        alpha = np.zeros(len(where))
+        seen = where >= 0
+        counts = self.type_counts[k][where[seen]]
+        per_type = self.discounts[k][np.minimum(counts, 3) - 1]
+        alpha[seen] = (counts.astype(np.float64) - per_type) / self.totals[k][context_ids[seen]]
+        return alpha
+
+
+def _context_blocks(keys: np.ndarray, n_symbols: int) -> list[tuple[int, int]]:
+    """``(start, stop)`` blocks of about a million sorted type keys, cut between contexts."""
+    blocks = []
+    start = 0
+    while start < len(keys):
+        stop = start + _GATHER_CHUNK
+        if stop < len(keys):
+            # The first key of the next context (``keys // n_symbols`` one higher).
+            next_context = int(keys[stop - 1]) // n_symbols + 1
+            stop = int(np.searchsorted(keys, next_context * n_symbols))
+        stop = min(stop, len(keys))
+        blocks.append((start, stop))
+        start = stop
+    return blocks
 
 
 def count_tables(
-    symbol_at_lag: Callable[[int], np.ndarray],
+    symbol_at_lag: SymbolsAtLag,
     outcomes: np.ndarray,
     *,
     order: int,
@@ -267,9 +380,9 @@ def count_tables(
 ) -> KneserNeyTables:
     """Count every level and derive modified-KN discounts.
 
-    ``symbol_at_lag(j)`` returns the ``(n_events,)`` context symbol ``j`` positions back
-    (the begin marker before the unit starts); ``outcomes`` is ``(n_events,)``.
-    ``on_level()`` is called ``order`` times, once per level counted (progress).
+    ``symbol_at_lag(j, start, stop)`` returns the context symbols ``j`` positions back of
+    events ``start:stop`` (the begin marker before the unit starts); ``outcomes`` is
+    ``(n_events,)``. ``on_level()`` is called ``order`` times, once per level (progress).
 
     An event's *window* is its context symbols nearest first, then its outcome:
     ``(s_1, ..., s_{N-1}, o)``. Context ids are ranks in the lexicographic order of these
@@ -278,7 +391,9 @@ def count_tables(
     distinct windows are the ``N``-gram types, their distinct prefixes the contexts
     (:func:`_prefix_levels`). Otherwise the leading symbols are first replaced by the id of
     their prefix, ranked per event several symbols at a time (as many as one packed
-    sort or a dense table takes, :func:`_jump_length`), until the rest fits.
+    sort or a dense table takes, :func:`_jump_length`), until the rest fits. Per event
+    there are two ``(n_events,)`` buffers, reused by every step: the keys (int64) and
+    the ids.
     """
     n_events = len(outcomes)
     context_keys: list[np.ndarray] = [np.zeros(0, dtype=np.int64)] * order
@@ -286,45 +401,54 @@ def count_tables(
     ids: np.ndarray | None = None
     n_ids = 1
     level = 0
+    # (n_events,) int64 memory for the keys of every step, then the windows
+    work = np.empty(n_events, dtype=np.int64)
     while level < order - 1 and n_ids * n_symbols ** (order - level) > _WINDOW_LIMIT:
         if n_ids * n_symbols >= 1 << 62:
             raise OverflowError(f"n-gram key space {n_ids} x {n_symbols} does not fit in 63 bits")
         step = _jump_length(n_ids, n_symbols, n_events, order - 1 - level)
         lags = range(level + 1, level + step + 1)
         space = n_ids * n_symbols**step
-        keys = _append_symbols(ids, n_symbols, (symbol_at_lag(lag) for lag in lags), space)
-        del ids
-        ids, distinct = rank_keys(keys, space, overwrite=True)
+        keys = _append_symbols(work, ids, n_symbols, symbol_at_lag, lags, None, space)
+        ids, distinct = rank_keys(keys, space, overwrite=True, out=ids)
         del keys
         context_keys[level + 1 : level + step + 1] = _prefix_levels(distinct, n_symbols, step)
         level += step
         n_ids = len(distinct)
+        del distinct
         for _ in lags:
             if on_level is not None:
                 on_level()
-    symbols = (symbol_at_lag(lag) for lag in range(level + 1, order))
     space = n_ids * n_symbols ** (order - level)
-    if space > 1 << 63:
+    if space > 1 << 63:  # int64 keys
         raise OverflowError(f"n-gram key space {n_ids} x {n_symbols} does not fit in 63 bits")
-    windows = _append_symbols(ids, n_symbols, chain(symbols, [outcomes]), space)
+    lags = range(level + 1, order)
+    windows = _append_symbols(work, ids, n_symbols, symbol_at_lag, lags, outcomes, space)
     del ids
-    windows, top_counts = distinct_counts(windows)
-    levels = _prefix_levels(windows, n_symbols, order - level)
-    del windows
+    distinct_windows, top_counts = distinct_counts(windows)
+    del windows, work
+    levels = _prefix_levels(distinct_windows, n_symbols, order - level)
+    del distinct_windows
     context_keys[level + 1 : order] = levels[:-1]
     type_keys = [np.zeros(0, dtype=np.int64)] * (order + 1)
     type_counts = [np.zeros(0, dtype=np.int64)] * (order + 1)
     type_keys[order], type_counts[order] = levels[-1], top_counts
+    del levels
     for _ in range(level, order):
         if on_level is not None:
             on_level()
     for k in range(order - 1, 0, -1):
         # Continuation count of a k-gram: how many distinct (k+1)-gram types end with it.
         longer = type_keys[k + 1]
-        longer_context = longer // n_symbols
-        shorter_context = context_keys[k][longer_context] // n_symbols
-        suffix_keys = shorter_context * n_symbols + longer % n_symbols
+        suffix_keys = np.empty(len(longer), dtype=np.int64)
+        for start in range(0, len(longer), _GATHER_CHUNK):
+            longer_context, outcome = np.divmod(longer[start : start + _GATHER_CHUNK], n_symbols)
+            shorter_context = context_keys[k][longer_context] // n_symbols
+            shorter_context *= n_symbols
+            shorter_context += outcome
+            suffix_keys[start : start + _GATHER_CHUNK] = shorter_context
         type_keys[k], type_counts[k] = distinct_counts(suffix_keys)
+        del suffix_keys
     discounts = np.zeros((order + 1, 3))
     for k in range(1, order + 1):
         if fixed_discount is None:
@@ -349,24 +473,41 @@ def _jump_length(n_ids: int, n_symbols: int, n_events: int, most: int) -> int:
 
 
 def _append_symbols(
-    ids: np.ndarray | None, n_symbols: int, symbols: Iterable[np.ndarray], space: int
+    work: np.ndarray,
+    ids: np.ndarray | None,
+    n_symbols: int,
+    symbol_at_lag: SymbolsAtLag,
+    lags: range,
+    last: np.ndarray | None,
+    space: int,
 ) -> np.ndarray:
-    """``(n_events,)`` keys ``((ids * n_symbols + s_a) * n_symbols + s_b) ...``.
+    """``(n_events,)`` keys ``((ids * n_symbols + s_a) * n_symbols + s_b) ... * n_symbols + last``.
 
-    ``ids`` None stands for all zeros. The keys are int32 only when every key is below
-    ``space <= 2**31`` (``index_dtype``); each symbol array is consumed as it comes, so at
-    most one of them is alive.
+    ``s_a, s_b, ...`` are the symbols at ``lags``; ``ids`` None stands for all zeros and
+    ``last`` None for no last column. Every key is below ``space``: the keys are int32
+    when ``space <= 2**31`` (``index_dtype``), else int64. Written into ``work``'s memory
+    (``(n_events,)`` int64) a block at a time, so no full-size symbol array exists.
     """
     dtype = index_dtype(space)
-    keys: np.ndarray | None = None if ids is None else ids.astype(dtype)
-    for column in symbols:
-        if keys is None:
-            keys = column.astype(dtype)
+    keys = work if dtype == np.int64 else work.view(dtype)[: len(work)]
+    for start in range(0, len(keys), _GATHER_CHUNK):
+        stop = min(start + _GATHER_CHUNK, len(keys))
+        block = keys[start:stop]
+        rest = list(lags)
+        if ids is not None:
+            block[...] = ids[start:stop]
+        elif rest:
+            block[...] = symbol_at_lag(rest.pop(0), start, stop)
         else:
-            keys *= n_symbols
-            keys += column
-        del column
-    assert keys is not None
+            assert last is not None
+            block[...] = last[start:stop]
+            continue
+        for lag in rest:
+            block *= n_symbols
+            block += symbol_at_lag(lag, start, stop)
+        if last is not None:
+            block *= n_symbols
+            block += last[start:stop]
     return keys
 
 
@@ -386,18 +527,33 @@ def _prefix_levels(keys: np.ndarray, n_symbols: int, depth: int) -> list[np.ndar
     >>> [k.tolist() for k in _prefix_levels(np.array([15, 17, 19]), 3, 2)]
     [[5, 6], [0, 2, 4]]
     """
-    keys = keys.astype(np.int64, copy=False)
-    parent = keys // np.int64(n_symbols) ** depth  # (D,) base ids: ids one level down
-    levels = []
-    for i in range(1, depth + 1):
-        prefix = keys // np.int64(n_symbols) ** (depth - i) if i < depth else keys
-        is_new = np.empty(len(prefix), dtype=bool)
-        is_new[:1] = True
-        np.not_equal(prefix[1:], prefix[:-1], out=is_new[1:])
-        levels.append(parent[is_new] * n_symbols + prefix[is_new] % n_symbols)
-        # Ids of each entry's prefix at this level: the parents of the next level.
-        parent = np.cumsum(is_new, dtype=np.int64) - 1
-    return levels
+    pieces: list[list[np.ndarray]] = [[np.zeros(0, dtype=np.int64)] for _ in range(depth)]
+    # Carried from block to block, per level: the last prefix seen, distinct prefixes so far.
+    last = [-1] * depth
+    n_distinct = [0] * depth
+    for start in range(0, len(keys), _GATHER_CHUNK):
+        block = keys[start : start + _GATHER_CHUNK].astype(np.int64)
+        parent = block  # unused at i = 1: a level-1 prefix is its own key
+        for i in range(1, depth + 1):
+            prefix = block // np.int64(n_symbols) ** (depth - i) if i < depth else block
+            is_new = np.empty(len(prefix), dtype=bool)
+            is_new[0] = prefix[0] != last[i - 1]
+            np.not_equal(prefix[1:], prefix[:-1], out=is_new[1:])
+            if i == 1:
+                pieces[0].append(prefix[is_new])
+            else:
+                # (id of the prefix one level down) * n_symbols + last digit
+                level_keys = parent[is_new]
+                level_keys *= n_symbols
+                level_keys += prefix[is_new] % n_symbols
+                pieces[i - 1].append(level_keys)
+            if i < depth:
+                # Ids of each entry's prefix at this level: the parents of the next level.
+                parent = np.cumsum(is_new, dtype=np.int64)
+                parent += n_distinct[i - 1] - 1
+            n_distinct[i - 1] += int(np.count_nonzero(is_new))
+            last[i - 1] = int(prefix[-1])
+    return [np.concatenate(level) for level in pieces]
 
 
 def interpolated_probs(
@@ -411,18 +567,31 @@ def interpolated_probs(
     """
     n_symbols = tables.n_symbols
     probs = np.full(len(outcomes), 1.0 / n_symbols)
+    # (n_active,) the events whose length k-1 context was seen in training (None: all) and
+    # that context's id. An unseen context stays unseen when extended, so the set shrinks.
     # Ids and keys stay int64 throughout: ``id * n_symbols`` passes 2**31 at large
     # vocabularies, and an int32 operand would wrap silently (numpy keeps array dtypes).
+    active: np.ndarray | None = None
     context_ids = np.zeros(len(outcomes), dtype=np.int64)
     for k in range(1, tables.order + 1):
         if k > 1:
-            # Extend the context by one symbol; once unseen (-1), it stays unseen.
-            keys = np.maximum(context_ids, 0) * n_symbols + symbol_at_lag(k - 1).astype(np.int64)
-            found = lookup(tables.context_keys[k - 1], keys)
-            context_ids = np.where(context_ids >= 0, found, np.int64(-1))
-        seen = context_ids >= 0
-        seen_ids = context_ids[seen]
-        where = lookup(tables.type_keys[k], seen_ids * n_symbols + outcomes[seen].astype(np.int64))
-        alpha = np.where(where >= 0, tables.alphas[k][np.maximum(where, 0)], 0.0)
-        probs[seen] = alpha + tables.gammas[k][seen_ids] * probs[seen]
+            symbols = symbol_at_lag(k - 1)
+            if active is not None:
+                symbols = symbols[active]
+            found = lookup(tables.context_keys[k - 1], context_ids * n_symbols + symbols)
+            del symbols
+            seen = found >= 0
+            if seen.all():
+                context_ids = found
+            else:
+                active = np.flatnonzero(seen) if active is None else active[seen]
+                context_ids = found[seen]
+        active_outcomes = outcomes if active is None else outcomes[active]
+        where = lookup(tables.type_keys[k], context_ids * n_symbols + active_outcomes)
+        alpha = tables.alphas(k, where, context_ids)
+        gamma = tables.gammas[k][context_ids]
+        if active is None:
+            probs = alpha + gamma * probs
+        else:
+            probs[active] = alpha + gamma * probs[active]
     return probs

@@ -82,19 +82,20 @@ def packed_sorted_blocks(
 
 
 def packed_rank(
-    keys: np.ndarray, space: int, *, overwrite: bool = False
+    keys: np.ndarray, space: int, *, overwrite: bool = False, out: np.ndarray | None = None
 ) -> tuple[np.ndarray, np.ndarray]:
     """``(ids, distinct)`` of non-negative ``keys < space``, as ``np.unique(return_inverse)``.
 
     ``distinct`` is the sorted distinct keys (int64); ``ids[e]`` is the index of ``keys[e]``
     in it (int32 when ``len(keys)`` fits). ``overwrite=True`` lets the sort reuse an int64
-    ``keys`` array's memory (its values are lost).
+    ``keys`` array's memory (its values are lost); ``out`` is memory for the ids, of that
+    dtype and ``(len(keys),)``.
 
     >>> ids, distinct = packed_rank(np.array([70, 3, 70, 64]), 100)
     >>> ids.tolist(), distinct.tolist()
     ([2, 0, 2, 1], [3, 64, 70])
     """
-    ids = np.empty(len(keys), dtype=index_dtype(len(keys)))
+    ids = np.empty(len(keys), dtype=index_dtype(len(keys))) if out is None else out
     pieces = [np.zeros(0, dtype=np.int64)]
     # Running state across blocks: distinct keys so far and the last key seen.
     n_distinct = 0
