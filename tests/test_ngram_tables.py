@@ -148,3 +148,101 @@ def test_prefix_levels_split_radix_keys_into_levels():
     first, second = _prefix_levels(keys, 4, 2)
     assert first.tolist() == [0 * 4 + 3, 2 * 4 + 0, 2 * 4 + 1]
     assert second.tolist() == [0 * 4 + 1, 1 * 4 + 0, 1 * 4 + 3, 2 * 4 + 2]
+
+
+def test_tiny_blocks_give_the_same_tables_and_scores(monkeypatch):
+    # Every helper that scans in blocks (ranking, distinct counts, prefix levels, context
+    # blocks of the totals, the per-event arrays) carries state from block to block;
+    # blocks of 3 put a boundary inside nearly every run of equal keys.
+    from retrograde.families import _events, _packed_sort, make
+
+    rng = np.random.default_rng(8)
+    units = random_units(rng, 50, 120, max_length=12)
+    train = SequenceSet.from_list(units, vocab_size=50)
+    whole = {order: make("ngram", order=order).fit(train) for order in (1, 2, 4, 7)}
+    for module, name in [
+        (_ngram_counts, "_GATHER_CHUNK"),
+        (_packed_sort, "_CHUNK"),
+        (_events, "_BLOCK"),
+    ]:
+        monkeypatch.setattr(module, name, 3)
+    # Jumps too (window limit), ranked by packed sort (no dense table, no bitset).
+    monkeypatch.setattr(_ngram_counts, "_WINDOW_LIMIT", 10**6)
+    monkeypatch.setattr(_ngram_counts, "_DENSE_KEYS", 0)
+    monkeypatch.setattr(_ngram_counts, "_BITSET_KEYS_PER_EVENT", 0)
+    for order, reference in whole.items():
+        blocked = assert_tables_match(units, order, 50)
+        model = make("ngram", order=order).fit(train)
+        for j in range(1, order):
+            np.testing.assert_array_equal(model.tables_.context_keys[j], blocked.context_keys[j])
+        for k in range(1, order + 1):
+            np.testing.assert_array_equal(model.tables_.totals[k], reference.tables_.totals[k])
+            np.testing.assert_array_equal(model.tables_.gammas[k], reference.tables_.gammas[k])
+        np.testing.assert_array_equal(
+            model.logprobs(train).values, reference.logprobs(train).values
+        )
+
+
+@pytest.mark.parametrize("vocab_size", [5, 300, 70_000])
+def test_scoring_in_context_order_gives_the_same_values_as_in_event_order(monkeypatch, vocab_size):
+    # Above _SORT_SCORED_EVENTS events the scored events are sorted by their nearest
+    # context symbols first; the values must be bit-identical to scoring them unsorted.
+    from retrograde.families import make
+
+    rng = np.random.default_rng(vocab_size)
+    train = SequenceSet.from_list(random_units(rng, vocab_size, 400), vocab_size=vocab_size)
+    test = SequenceSet.from_list(random_units(rng, vocab_size, 300), vocab_size=vocab_size)
+    calls = []
+    original = _ngram_counts._score_order
+
+    def counted(*args):
+        order = original(*args)
+        calls.append(order is not None)
+        return order
+
+    monkeypatch.setattr(_ngram_counts, "_score_order", counted)
+    for order in (1, 3, 6):
+        model = make("ngram", order=order).fit(train)
+        monkeypatch.setattr(_ngram_counts, "_SORT_SCORED_EVENTS", 10**9)
+        unsorted = model.logprobs(test).values
+        monkeypatch.setattr(_ngram_counts, "_SORT_SCORED_EVENTS", 0)
+        np.testing.assert_array_equal(model.logprobs(test).values, unsorted)
+    # The sorted path was taken (a permutation was returned) for orders above 1, which
+    # have context symbols to sort by.
+    assert calls == [False, False, False, True, False, True]
+
+
+def test_lookup_finds_the_same_indices_ordered_or_not():
+    rng = np.random.default_rng(2)
+    table = np.unique(rng.integers(0, 10**12, 100_000))
+    queries = np.concatenate([rng.choice(table, 3000), rng.integers(0, 10**12, 3000)])
+    expected = [int(np.flatnonzero(table == q)[0]) if q in table else -1 for q in queries[:200]]
+    for ordered in (False, True):
+        found = _ngram_counts.lookup(table, queries, ordered=ordered)
+        assert found.dtype == np.int64
+        assert found[:200].tolist() == expected
+        np.testing.assert_array_equal(found, _ngram_counts.lookup(table, queries))
+        sorted_queries = np.sort(queries)
+        assert np.array_equal(
+            _ngram_counts.lookup(table, sorted_queries, ordered=ordered),
+            _ngram_counts.lookup(table, sorted_queries),
+        )
+
+
+@pytest.mark.parametrize("block", [1, 2, 3, 1 << 20])
+def test_unit_events_in_blocks_match_a_plain_reference(monkeypatch, block):
+    from retrograde.families import _events
+
+    monkeypatch.setattr(_events, "_BLOCK", block)
+    units = [[4, 1], [], [2, 2, 2, 3, 0, 1], [3], [], []]
+    symbol_at_lag, outcomes, offsets = unit_events(SequenceSet.from_list(units, vocab_size=5))
+    begin = end = 5
+    expected_outcomes = [t for unit in units for t in [*unit, end]]
+    assert outcomes.tolist() == expected_outcomes
+    assert offsets.tolist() == np.cumsum([0] + [len(u) + 1 for u in units]).tolist()
+    for lag in range(1, 9):
+        expected = [([begin] * lag + unit)[t] for unit in units for t in range(len(unit) + 1)]
+        assert symbol_at_lag(lag).tolist() == expected
+        for start in range(len(expected) + 1):
+            for stop in range(start, len(expected) + 1):
+                assert symbol_at_lag(lag, start, stop).tolist() == expected[start:stop]

@@ -10,10 +10,13 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..sequences import SequenceSet, index_dtype
+from ..sequences import SequenceSet
 from ._ngram_counts import SymbolsAtLag
 
 __all__ = ["unit_events"]
+
+#: events per block when building the per-event arrays
+_BLOCK = 1 << 20
 
 
 def unit_events(units: SequenceSet) -> tuple[SymbolsAtLag, np.ndarray, np.ndarray]:
@@ -29,21 +32,26 @@ def unit_events(units: SequenceSet) -> tuple[SymbolsAtLag, np.ndarray, np.ndarra
     n_units = len(units)
     event_offsets = units.offsets + np.arange(n_units + 1, dtype=np.int64)
     n_events = int(event_offsets[-1])
-    # int32 halves the memory of these (n_events,) arrays at 25 M tokens.
-    dtype = index_dtype(n_events)
     # (n_events,) position of each event inside its unit, capped: only "is it at least
-    # lag?" is asked, lag <= 127. Computed in place: int64 temporaries were the fit's peak.
-    position_wide = np.arange(n_events, dtype=dtype)
-    position_wide -= np.repeat(event_offsets[:-1].astype(dtype), lengths + 1)
-    np.minimum(position_wide, 127, out=position_wide)
-    position = position_wide.astype(np.int8)
-    del position_wide
-    # (n_events,) the tokens in order, an end marker after each unit's last token.
-    outcomes = np.full(n_events, end, dtype=np.int32)
-    is_token = np.ones(n_events, dtype=bool)
-    is_token[event_offsets[1:] - 1] = False
-    outcomes[is_token] = units.tokens
-    del is_token
+    # lag?" is asked, lag <= 127. (n_events,) outcomes: the tokens in order, an end marker
+    # after each unit's last token. Both filled for whole units about a million events at
+    # a time, so no other (n_events,) array is ever made.
+    position = np.empty(n_events, dtype=np.int8)
+    outcomes = np.empty(n_events, dtype=np.int32)
+    cuts = np.searchsorted(event_offsets, np.arange(_BLOCK, n_events, _BLOCK))
+    bounds = [0, *np.unique(cuts[(cuts > 0) & (cuts < n_units)]).tolist(), n_units]
+    for first, last in zip(bounds[:-1], bounds[1:], strict=True):
+        start, stop = int(event_offsets[first]), int(event_offsets[last])
+        # (block,) offset of each event's unit start inside the block
+        unit_start = np.repeat(event_offsets[first:last] - start, lengths[first:last] + 1)
+        np.subtract(np.arange(stop - start), unit_start, out=unit_start)
+        np.minimum(unit_start, 127, out=unit_start)
+        position[start:stop] = unit_start
+        block = outcomes[start:stop]
+        block[...] = end
+        is_token = np.ones(stop - start, dtype=bool)
+        is_token[event_offsets[first + 1 : last + 1] - 1 - start] = False
+        block[is_token] = units.tokens[units.offsets[first] : units.offsets[last]]
 
     def symbol_at_lag(lag: int, start: int = 0, stop: int | None = None) -> np.ndarray:
         # Inside a unit the symbol lag back is the outcome of the event lag earlier (a

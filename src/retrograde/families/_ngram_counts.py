@@ -63,6 +63,8 @@ _BITSET_KEYS_PER_EVENT = 32
 _DENSE_KEYS_PER_EVENT = 8
 # Key tables above this many entries (8 bytes each) no longer fit in a typical L2 cache.
 _CACHE_KEYS = 1 << 16
+#: above this many scored events, they are sorted by context first (:func:`_score_order`)
+_SORT_SCORED_EVENTS = 1 << 14
 #: largest window key space ranked by one sort of int64 windows (keys below 2**63)
 _WINDOW_LIMIT = 1 << 63
 
@@ -187,6 +189,8 @@ def _pair_keys(high: np.ndarray, low: np.ndarray, n_low: int, dtype: Any) -> np.
 def distinct_counts(keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Sorted distinct values of ``keys`` and how often each occurs (sorts ``keys`` in place).
 
+    The counts are int32 when there are fewer than 2**31 keys (``index_dtype``).
+
     Two passes a block at a time (mark each value's last occurrence, then copy), so the
     only full-size temporary is one byte per key.
 
@@ -203,7 +207,7 @@ def distinct_counts(keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     is_last[-1:] = True
     n_distinct = int(np.count_nonzero(is_last))
     values = np.empty(n_distinct, dtype=keys.dtype)
-    counts = np.empty(n_distinct, dtype=np.int64)
+    counts = np.empty(n_distinct, dtype=index_dtype(len(keys)))  # int32 below 2**31 keys
     filled = 0
     previous_end = -1  # index of the last occurrence of the previous value
     for start in range(0, len(keys), _GATHER_CHUNK):
@@ -219,8 +223,11 @@ def distinct_counts(keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return values, counts
 
 
-def lookup(sorted_keys: np.ndarray, keys: np.ndarray) -> np.ndarray:
+def lookup(sorted_keys: np.ndarray, keys: np.ndarray, *, ordered: bool = False) -> np.ndarray:
     """(len(keys),) int64 index of each key in ``sorted_keys``, or ``-1`` where it is absent.
+
+    ``ordered=True`` says the keys come mostly in increasing order already (the caller
+    sorted the events), so they are searched as they are.
 
     A dense table (one slot per possible key) replaces the binary search when the key space
     is small next to the number of queries: random binary searches miss the cache. The
@@ -236,7 +243,7 @@ def lookup(sorted_keys: np.ndarray, keys: np.ndarray) -> np.ndarray:
         table[sorted_keys] = np.arange(len(sorted_keys))
         # keys >= space are absent (slot ``space``)
         return table[np.minimum(keys, space)].astype(np.int64, copy=False)
-    if len(sorted_keys) > _CACHE_KEYS and len(keys) > 1024:
+    if len(sorted_keys) > _CACHE_KEYS and len(keys) > 1024 and not ordered:
         # Sorted queries let each binary search start where the last one ended, which
         # keeps a table larger than the CPU cache from missing on every step.
         low, high = int(keys.min()), int(keys.max())
@@ -317,11 +324,12 @@ class KneserNeyTables:
         self.gammas: list[np.ndarray] = [np.zeros(0)]
         for k in range(1, self.order + 1):
             n_contexts = 1 if k == 1 else len(self.context_keys[k - 1])
-            totals = np.zeros(n_contexts)
-            discounted = np.zeros(n_contexts)
+            totals = np.empty(n_contexts)
+            gammas = np.empty(n_contexts)
             keys, counts = self.type_keys[k], self.type_counts[k]
             # Blocks end where a context ends: every context's sums are then taken in one
             # bincount, in type order from 0.0, exactly as over the whole level at once.
+            # (Every context has at least one type, so every slot is written.)
             for start, stop in _context_blocks(keys, self.n_symbols):
                 context = keys[start:stop] // self.n_symbols
                 first = int(context[0])
@@ -329,14 +337,14 @@ class KneserNeyTables:
                 span = int(context[-1]) + 1
                 block_counts = counts[start:stop]
                 per_type = self.discounts[k][np.minimum(block_counts, 3) - 1]
-                totals[first : first + span] = np.bincount(
+                block_totals = np.bincount(
                     context, weights=block_counts.astype(np.float64), minlength=span
                 )
-                discounted[first : first + span] = np.bincount(
-                    context, weights=per_type, minlength=span
-                )
+                discounted = np.bincount(context, weights=per_type, minlength=span)
+                totals[first : first + span] = block_totals
+                np.divide(discounted, block_totals, out=gammas[first : first + span])
             self.totals.append(totals)
-            self.gammas.append(discounted / totals)
+            self.gammas.append(gammas)
 
     def alphas(self, k: int, where: np.ndarray, context_ids: np.ndarray) -> np.ndarray:
         """``max(c - D(c), 0) / c(h)`` of the level-``k`` types at ``where`` (``-1``: unseen, 0).
@@ -345,11 +353,16 @@ class KneserNeyTables:
         ``(n,)``); the arithmetic is the same float64 operations for every type, so a type
         scores the same whatever else is scored with it.
         """
-        alpha = np.zeros(len(where))
-        seen = where >= 0
-        counts = self.type_counts[k][where[seen]]
+        if len(self.type_counts[k]) == 0:
+            return np.zeros(len(where))
+        # Computed at every place (index 0 where unseen) and zeroed where unseen: no
+        # boolean gathers, and the same operations for every seen type.
+        counts = self.type_counts[k][np.maximum(where, 0)]
         per_type = self.discounts[k][np.minimum(counts, 3) - 1]
-        alpha[seen] = (counts.astype(np.float64) - per_type) / self.totals[k][context_ids[seen]]
+        alpha = counts.astype(np.float64)
+        alpha -= per_type
+        alpha /= self.totals[k][context_ids]
+        alpha[where < 0] = 0.0
         return alpha
 
 
@@ -564,34 +577,78 @@ def interpolated_probs(
     ``p_0 = 1 / n_symbols`` (uniform over tokens and the end marker); for ``k = 1..N``,
     ``p_k = max(c - D(c), 0) / c(h) + gamma(h) p_{k-1}`` when the length ``k-1`` context
     ``h`` was seen in training, else ``p_k = p_{k-1}`` (Chen & Goodman 1998, eqs. 17 and 19).
+
+    Many events are first put in the lexicographic order of their nearest context symbols
+    (one packed sort, :func:`_score_order`): every level's look-ups then walk the tables
+    mostly forwards, and the probabilities are put back in event order once, at the end.
     """
     n_symbols = tables.n_symbols
+    # (n_events,) event index at each sorted place, None: events in their own order
+    perm = _score_order(symbol_at_lag, n_symbols, tables.order - 1, len(outcomes))
+    ordered = perm is not None
     probs = np.full(len(outcomes), 1.0 / n_symbols)
-    # (n_active,) the events whose length k-1 context was seen in training (None: all) and
-    # that context's id. An unseen context stays unseen when extended, so the set shrinks.
-    # Ids and keys stay int64 throughout: ``id * n_symbols`` passes 2**31 at large
-    # vocabularies, and an int32 operand would wrap silently (numpy keeps array dtypes).
+    # (n_active,) the places (sorted order) whose length k-1 context was seen in training
+    # (None: all) and that context's id. An unseen context stays unseen when extended, so
+    # the set shrinks. Ids and keys stay int64 throughout: ``id * n_symbols`` passes 2**31
+    # at large vocabularies, and an int32 operand would wrap silently (numpy keeps dtypes).
     active: np.ndarray | None = None
     context_ids = np.zeros(len(outcomes), dtype=np.int64)
     for k in range(1, tables.order + 1):
         if k > 1:
-            symbols = symbol_at_lag(k - 1)
-            if active is not None:
-                symbols = symbols[active]
-            found = lookup(tables.context_keys[k - 1], context_ids * n_symbols + symbols)
+            symbols = _at_places(symbol_at_lag(k - 1), perm, active)
+            keys = context_ids * n_symbols + symbols
             del symbols
+            found = lookup(tables.context_keys[k - 1], keys, ordered=ordered)
             seen = found >= 0
             if seen.all():
                 context_ids = found
             else:
                 active = np.flatnonzero(seen) if active is None else active[seen]
                 context_ids = found[seen]
-        active_outcomes = outcomes if active is None else outcomes[active]
-        where = lookup(tables.type_keys[k], context_ids * n_symbols + active_outcomes)
+        keys = context_ids * n_symbols + _at_places(outcomes, perm, active)
+        where = lookup(tables.type_keys[k], keys, ordered=ordered)
         alpha = tables.alphas(k, where, context_ids)
         gamma = tables.gammas[k][context_ids]
         if active is None:
             probs = alpha + gamma * probs
         else:
             probs[active] = alpha + gamma * probs[active]
-    return probs
+    if perm is None:
+        return probs
+    in_event_order = np.empty(len(probs))
+    in_event_order[perm] = probs
+    return in_event_order
+
+
+def _at_places(
+    values: np.ndarray, perm: np.ndarray | None, active: np.ndarray | None
+) -> np.ndarray:
+    """``values`` (event order) at the sorted places ``active`` (None: at every place)."""
+    if perm is not None:
+        return values[perm if active is None else perm[active]]
+    return values if active is None else values[active]
+
+
+def _score_order(
+    symbol_at_lag: Callable[[int], np.ndarray], n_symbols: int, n_lags: int, n_events: int
+) -> np.ndarray | None:
+    """(n_events,) events in the order of their symbols at lags 1, 2, ... (None: unsorted).
+
+    As many leading lags as fit one packed sort with the positions; None when there are
+    few events (searching them unsorted is cheaper) or not even one lag fits.
+    """
+    depth = 0
+    while depth < n_lags and packed_fits(n_symbols ** (depth + 1), n_events):
+        depth += 1
+    if n_events <= _SORT_SCORED_EVENTS or depth == 0:
+        return None
+    keys = np.zeros(n_events, dtype=np.int64)
+    for lag in range(1, depth + 1):
+        keys *= n_symbols
+        keys += symbol_at_lag(lag)
+    perm = np.empty(n_events, dtype=np.int64)
+    filled = 0
+    for _, positions in packed_sorted_blocks(keys, n_symbols**depth, overwrite=True):
+        perm[filled : filled + len(positions)] = positions
+        filled += len(positions)
+    return perm

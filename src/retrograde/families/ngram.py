@@ -146,7 +146,8 @@ class NGram(Family):
             state[f"context_keys_{j}"] = tables.context_keys[j]
         for k in range(1, self.order + 1):
             state[f"type_keys_{k}"] = tables.type_keys[k]
-            state[f"type_counts_{k}"] = tables.type_counts[k]
+            # int64 on disk whatever the dtype in memory (int32 when the counts fit)
+            state[f"type_counts_{k}"] = tables.type_counts[k].astype(np.int64)
         return state
 
     def _set_state(self, state: dict[str, np.ndarray]) -> None:
