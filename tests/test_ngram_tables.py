@@ -18,7 +18,7 @@ from hypothesis import strategies as st
 
 from retrograde import SequenceSet
 from retrograde.families import _ngram_counts
-from retrograde.families._events import unit_events
+from retrograde.families._events import unit_event_blocks, unit_events
 from retrograde.families._ngram_counts import _prefix_levels, count_tables
 
 
@@ -61,11 +61,11 @@ def reference_tables(units, order, vocab_size):
 
 def assert_tables_match(units, order, vocab_size):
     sequence_set = SequenceSet.from_list(units, vocab_size=vocab_size)
-    symbol_at_lag, outcomes, _ = unit_events(sequence_set)
+    symbol_at_lag, n_events = unit_event_blocks(sequence_set)
     passes = []
     tables = count_tables(
         symbol_at_lag,
-        outcomes,
+        n_events,
         order=order,
         n_symbols=vocab_size + 1,
         on_level=lambda: passes.append(1),
@@ -246,3 +246,46 @@ def test_unit_events_in_blocks_match_a_plain_reference(monkeypatch, block):
         for start in range(len(expected) + 1):
             for stop in range(start, len(expected) + 1):
                 assert symbol_at_lag(lag, start, stop).tolist() == expected[start:stop]
+
+
+@pytest.mark.parametrize(
+    "units",
+    [
+        [[4, 1], [], [2, 2, 2, 3, 0, 1], [3], [], []],
+        [[], [], []],  # no tokens at all
+        [[0, 1, 2, 3, 4, 0, 1, 2, 3, 4, 0]],  # one unit longer than a block
+    ],
+)
+def test_event_blocks_give_the_symbols_of_unit_events(units):
+    sequence_set = SequenceSet.from_list(units, vocab_size=5)
+    full, outcomes, offsets = unit_events(sequence_set)
+    blocks, n_events = unit_event_blocks(sequence_set)
+    assert n_events == int(offsets[-1]) == len(outcomes)
+    for lag in range(0, 9):
+        expected = full(lag).tolist()
+        if lag == 0:
+            assert expected == outcomes.tolist()
+        for start in range(n_events + 1):
+            for stop in range(start, n_events + 1):
+                assert blocks(lag, start, stop).tolist() == expected[start:stop], (lag, start)
+
+
+@pytest.mark.parametrize(
+    ("vocab_size", "order"),
+    [
+        (6252, 5),  # 6253**5 = 9.6e18: above 2**63, below 2**64 (the Unicode benchmark)
+        (7130, 5),  # 7131**5 = 1.85e19: just above 2**64, one level ranked per event first
+        (511, 7),  # 512**7 = 2**63 exactly: int64 keys, largest divisor 512**6
+        (1, 64),  # 2**64 exactly: uint64 windows of 64 binary digits
+    ],
+)
+def test_windows_near_the_64_bit_limits_match_the_reference(vocab_size, order):
+    # Symbols near both ends of the alphabet, so the largest windows are reached.
+    rng = np.random.default_rng(vocab_size)
+    high = np.unique([vocab_size - 1, max(vocab_size - 2, 0), 0])
+    units = [rng.choice(high, rng.integers(0, 2 * order)) for _ in range(40)]
+    units += random_units(rng, vocab_size, 40)
+    if order > 10:
+        units = units[:6]  # the tuple reference is slow at order 64
+    tables = assert_tables_match(units, order, vocab_size)
+    assert all(k.dtype == np.int64 for k in tables.type_keys[1:])

@@ -20,7 +20,7 @@ family. Notation (``V`` = vocabulary size, ``N`` = n-gram order):
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any, Protocol
 
@@ -65,8 +65,8 @@ _DENSE_KEYS_PER_EVENT = 8
 _CACHE_KEYS = 1 << 16
 #: above this many scored events, they are sorted by context first (:func:`_score_order`)
 _SORT_SCORED_EVENTS = 1 << 14
-#: largest window key space ranked by one sort of int64 windows (keys below 2**63)
-_WINDOW_LIMIT = 1 << 63
+#: largest window key space sorted as one 64-bit word per event (uint64 above 2**63)
+_WINDOW_LIMIT = 1 << 64
 
 
 #: events per step when gathering: numpy converts int32 indices to int64 (intp) first, and
@@ -289,7 +289,11 @@ def modified_kn_discounts(counts: np.ndarray) -> np.ndarray:
     >>> modified_kn_discounts(np.array([1, 1, 1, 1, 2, 2, 3, 4])).round(4).tolist()
     [0.5, 1.25, 1.0]
     """
-    n1, n2, n3, n4 = np.bincount(np.minimum(counts, 5), minlength=6)[1:5].astype(np.float64)
+    # (6,) how many types were seen 0, 1, ..., 4 and 5+ times, a block at a time
+    seen = np.zeros(6, dtype=np.int64)
+    for start in range(0, len(counts), _GATHER_CHUNK):
+        seen += np.bincount(np.minimum(counts[start : start + _GATHER_CHUNK], 5), minlength=6)
+    n1, n2, n3, n4 = seen[1:5].astype(np.float64)
     y = n1 / (n1 + 2 * n2) if n1 > 0 else FALLBACK_DISCOUNT
     formulas = [
         (1.0, 1 - 2 * y * n2 / n1 if n1 > 0 else np.nan),
@@ -319,14 +323,16 @@ class KneserNeyTables:
 
     def __post_init__(self) -> None:
         # Derived per level: (total, gamma) for each context. A type's alpha is computed
-        # where it is scored (:meth:`alphas`), so no per-type float array is kept.
-        self.totals: list[np.ndarray] = [np.zeros(0)]
+        # where it is scored (:meth:`alphas`), so no per-type float array is kept. A
+        # total is a sum of integer counts, exact in float64 below 2**53: it is kept as an
+        # integer (int32 when it fits), and converts back to the same float64 exactly.
+        self.totals: list[np.ndarray] = [np.zeros(0, dtype=np.int64)]
         self.gammas: list[np.ndarray] = [np.zeros(0)]
         for k in range(1, self.order + 1):
             n_contexts = 1 if k == 1 else len(self.context_keys[k - 1])
-            totals = np.empty(n_contexts)
-            gammas = np.empty(n_contexts)
             keys, counts = self.type_keys[k], self.type_counts[k]
+            totals = np.empty(n_contexts, dtype=index_dtype(int(counts.sum(dtype=np.int64))))
+            gammas = np.empty(n_contexts)
             # Blocks end where a context ends: every context's sums are then taken in one
             # bincount, in type order from 0.0, exactly as over the whole level at once.
             # (Every context has at least one type, so every slot is written.)
@@ -384,7 +390,7 @@ def _context_blocks(keys: np.ndarray, n_symbols: int) -> list[tuple[int, int]]:
 
 def count_tables(
     symbol_at_lag: SymbolsAtLag,
-    outcomes: np.ndarray,
+    n_events: int,
     *,
     order: int,
     n_symbols: int,
@@ -394,21 +400,21 @@ def count_tables(
     """Count every level and derive modified-KN discounts.
 
     ``symbol_at_lag(j, start, stop)`` returns the context symbols ``j`` positions back of
-    events ``start:stop`` (the begin marker before the unit starts); ``outcomes`` is
-    ``(n_events,)``. ``on_level()`` is called ``order`` times, once per level (progress).
+    events ``start:stop`` (the begin marker before the unit starts), and their outcomes for
+    ``j = 0``; there are ``n_events`` events. ``on_level()`` is called ``order`` times, once
+    per level (progress).
 
     An event's *window* is its context symbols nearest first, then its outcome:
     ``(s_1, ..., s_{N-1}, o)``. Context ids are ranks in the lexicographic order of these
-    tuples, so every level is a prefix of the window. When the whole window fits one int64
-    in mixed radix ``n_symbols``, one sort of the windows gives every level: the sorted
-    distinct windows are the ``N``-gram types, their distinct prefixes the contexts
-    (:func:`_prefix_levels`). Otherwise the leading symbols are first replaced by the id of
-    their prefix, ranked per event several symbols at a time (as many as one packed
-    sort or a dense table takes, :func:`_jump_length`), until the rest fits. Per event
-    there are two ``(n_events,)`` buffers, reused by every step: the keys (int64) and
-    the ids.
+    tuples, so every level is a prefix of the window. When the whole window fits one 64-bit
+    word in mixed radix ``n_symbols`` (uint64 above 2**63), one sort of the windows gives
+    every level: the sorted distinct windows are the ``N``-gram types, their distinct
+    prefixes the contexts (:func:`_prefix_levels`). Otherwise the leading symbols are first
+    replaced by the id of their prefix, ranked per event several symbols at a time (as many
+    as one packed sort or a dense table takes, :func:`_jump_length`), until the rest fits.
+    Per event there are at most two ``(n_events,)`` arrays, reused by every step: the keys
+    (64-bit) and the ids; everything else is computed a block of events at a time.
     """
-    n_events = len(outcomes)
     context_keys: list[np.ndarray] = [np.zeros(0, dtype=np.int64)] * order
     # (n_events,) id of each event's context of length ``level``; None: all 0 (empty context)
     ids: np.ndarray | None = None
@@ -422,7 +428,7 @@ def count_tables(
         step = _jump_length(n_ids, n_symbols, n_events, order - 1 - level)
         lags = range(level + 1, level + step + 1)
         space = n_ids * n_symbols**step
-        keys = _append_symbols(work, ids, n_symbols, symbol_at_lag, lags, None, space)
+        keys = _append_symbols(work, ids, n_symbols, symbol_at_lag, lags, space)
         ids, distinct = rank_keys(keys, space, overwrite=True, out=ids)
         del keys
         context_keys[level + 1 : level + step + 1] = _prefix_levels(distinct, n_symbols, step)
@@ -433,10 +439,11 @@ def count_tables(
             if on_level is not None:
                 on_level()
     space = n_ids * n_symbols ** (order - level)
-    if space > 1 << 63:  # int64 keys
-        raise OverflowError(f"n-gram key space {n_ids} x {n_symbols} does not fit in 63 bits")
-    lags = range(level + 1, order)
-    windows = _append_symbols(work, ids, n_symbols, symbol_at_lag, lags, outcomes, space)
+    if space > 1 << 64:
+        raise OverflowError(f"n-gram key space {n_ids} x {n_symbols} does not fit in 64 bits")
+    # the remaining context symbols, then the outcome (lag 0)
+    window_lags = [*range(level + 1, order), 0]
+    windows = _append_symbols(work, ids, n_symbols, symbol_at_lag, window_lags, space)
     del ids
     distinct_windows, top_counts = distinct_counts(windows)
     del windows, work
@@ -490,38 +497,38 @@ def _append_symbols(
     ids: np.ndarray | None,
     n_symbols: int,
     symbol_at_lag: SymbolsAtLag,
-    lags: range,
-    last: np.ndarray | None,
+    lags: Sequence[int],
     space: int,
 ) -> np.ndarray:
-    """``(n_events,)`` keys ``((ids * n_symbols + s_a) * n_symbols + s_b) ... * n_symbols + last``.
+    """``(n_events,)`` keys ``((ids * n_symbols + s_a) * n_symbols + s_b) ...``.
 
-    ``s_a, s_b, ...`` are the symbols at ``lags``; ``ids`` None stands for all zeros and
-    ``last`` None for no last column. Every key is below ``space``: the keys are int32
-    when ``space <= 2**31`` (``index_dtype``), else int64. Written into ``work``'s memory
-    (``(n_events,)`` int64) a block at a time, so no full-size symbol array exists.
+    ``s_a, s_b, ...`` are the symbols at ``lags`` (lag 0: the outcome); ``ids`` None stands
+    for all zeros. Every key is below ``space``: the keys are int32 below 2**31, int64
+    up to 2**63, else uint64 (:func:`_key_dtype`). Written into ``work``'s memory
+    (``(n_events,)``, 8 bytes each) a block at a time, so no full-size symbol array exists.
     """
-    dtype = index_dtype(space)
-    keys = work if dtype == np.int64 else work.view(dtype)[: len(work)]
+    dtype = _key_dtype(space)
+    keys = work.view(dtype)[: len(work)]
     for start in range(0, len(keys), _GATHER_CHUNK):
         stop = min(start + _GATHER_CHUNK, len(keys))
         block = keys[start:stop]
         rest = list(lags)
         if ids is not None:
             block[...] = ids[start:stop]
-        elif rest:
-            block[...] = symbol_at_lag(rest.pop(0), start, stop)
         else:
-            assert last is not None
-            block[...] = last[start:stop]
-            continue
+            block[...] = symbol_at_lag(rest.pop(0), start, stop)
         for lag in rest:
             block *= n_symbols
-            block += symbol_at_lag(lag, start, stop)
-        if last is not None:
-            block *= n_symbols
-            block += last[start:stop]
+            # Cast first: uint64 + int32 would be computed in float64.
+            block += symbol_at_lag(lag, start, stop).astype(dtype, copy=False)
     return keys
+
+
+def _key_dtype(space: int) -> Any:
+    """Narrowest of int32, int64, uint64 that holds every key below ``space <= 2**64``."""
+    if space <= 1 << 63:
+        return index_dtype(space)
+    return np.uint64
 
 
 def _prefix_levels(keys: np.ndarray, n_symbols: int, depth: int) -> list[np.ndarray]:
@@ -541,31 +548,35 @@ def _prefix_levels(keys: np.ndarray, n_symbols: int, depth: int) -> list[np.ndar
     [[5, 6], [0, 2, 4]]
     """
     pieces: list[list[np.ndarray]] = [[np.zeros(0, dtype=np.int64)] for _ in range(depth)]
+    # Prefixes are computed in uint64: keys may pass 2**63 (uint64 windows), and mixing
+    # uint64 with int64 operands would give float64. Divisors stay below n_symbols**depth.
+    radix = np.uint64(n_symbols)
     # Carried from block to block, per level: the last prefix seen, distinct prefixes so far.
-    last = [-1] * depth
+    last: list[Any] = [None] * depth
     n_distinct = [0] * depth
     for start in range(0, len(keys), _GATHER_CHUNK):
-        block = keys[start : start + _GATHER_CHUNK].astype(np.int64)
-        parent = block  # unused at i = 1: a level-1 prefix is its own key
+        block = keys[start : start + _GATHER_CHUNK].astype(np.uint64)
+        parent = np.zeros(0, dtype=np.int64)  # unused at i = 1: a level-1 prefix is its key
         for i in range(1, depth + 1):
-            prefix = block // np.int64(n_symbols) ** (depth - i) if i < depth else block
+            prefix = block // radix ** np.uint64(depth - i) if i < depth else block
             is_new = np.empty(len(prefix), dtype=bool)
-            is_new[0] = prefix[0] != last[i - 1]
+            is_new[0] = last[i - 1] is None or prefix[0] != last[i - 1]
             np.not_equal(prefix[1:], prefix[:-1], out=is_new[1:])
             if i == 1:
-                pieces[0].append(prefix[is_new])
+                # base * n_symbols + first digit, below 2**62
+                pieces[0].append(prefix[is_new].astype(np.int64))
             else:
                 # (id of the prefix one level down) * n_symbols + last digit
                 level_keys = parent[is_new]
                 level_keys *= n_symbols
-                level_keys += prefix[is_new] % n_symbols
+                level_keys += (prefix[is_new] % radix).astype(np.int64)
                 pieces[i - 1].append(level_keys)
             if i < depth:
                 # Ids of each entry's prefix at this level: the parents of the next level.
                 parent = np.cumsum(is_new, dtype=np.int64)
                 parent += n_distinct[i - 1] - 1
             n_distinct[i - 1] += int(np.count_nonzero(is_new))
-            last[i - 1] = int(prefix[-1])
+            last[i - 1] = prefix[-1]
     return [np.concatenate(level) for level in pieces]
 
 
