@@ -108,6 +108,8 @@ PATHS = {
         "_BITSET_KEYS_PER_EVENT": 0,
         "packed_fits": lambda space, n: False,
     },
+    # One symbol per jump and a limit that raw windows pass before shifted ones do.
+    "shifted windows": {"_WINDOW_LIMIT": 10**7, "_jump_length": lambda *args: 1},
 }
 
 
@@ -289,3 +291,26 @@ def test_windows_near_the_64_bit_limits_match_the_reference(vocab_size, order):
         units = units[:6]  # the tuple reference is slow at order 64
     tables = assert_tables_match(units, order, vocab_size)
     assert all(k.dtype == np.int64 for k in tables.type_keys[1:])
+
+
+@pytest.mark.parametrize(("order", "far"), [(5, 2), (6, 2), (8, 3), (10, 4)])
+def test_windows_with_a_shifted_far_part_match_the_reference(monkeypatch, order, far):
+    # Raw windows need jumps to level order - 1 here; the far symbols of event e are
+    # taken as the context of event e - level instead, as soon as (id, far id, o) fits.
+    rng = np.random.default_rng(order)
+    units = random_units(rng, 300, 150, max_length=14)
+    units += [np.array([299] * 12), np.array([0, 299] * 6)]  # the largest ids, repeated
+    calls = []
+    original = _ngram_counts._shifted_windows
+
+    def spy(work, ids, far_ids, level, *args):
+        calls.append((level, len(np.unique(far_ids))))
+        return original(work, ids, far_ids, level, *args)
+
+    monkeypatch.setattr(_ngram_counts, "_shifted_windows", spy)
+    monkeypatch.setattr(_ngram_counts, "_jump_length", lambda *args: 1)
+    monkeypatch.setattr(_ngram_counts, "_WINDOW_LIMIT", 10**9)
+    tables = assert_tables_match(units, order, 300)
+    assert [level for level, _ in calls] == [order - 1 - far]
+    # the far ids are ids of contexts of length `far`
+    assert calls[0][1] <= len(tables.context_keys[far])

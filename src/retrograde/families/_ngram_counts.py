@@ -420,34 +420,51 @@ def count_tables(
     ids: np.ndarray | None = None
     n_ids = 1
     level = 0
-    # (n_events,) int64 memory for the keys of every step, then the windows
+    # (n_events,) ids of shorter contexts, kept for a window's far part (:func:`_far_level`)
+    kept: dict[int, np.ndarray] = {}
+    # (n_events,) 8-byte memory for the keys of every step, then the windows
     work = np.empty(n_events, dtype=np.int64)
     while level < order - 1 and n_ids * n_symbols ** (order - level) > _WINDOW_LIMIT:
+        if _far_level(level, n_ids, kept, context_keys, order, n_symbols):
+            break
         if n_ids * n_symbols >= 1 << 62:
             raise OverflowError(f"n-gram key space {n_ids} x {n_symbols} does not fit in 63 bits")
         step = _jump_length(n_ids, n_symbols, n_events, order - 1 - level)
         lags = range(level + 1, level + step + 1)
         space = n_ids * n_symbols**step
         keys = _append_symbols(work, ids, n_symbols, symbol_at_lag, lags, space)
-        ids, distinct = rank_keys(keys, space, overwrite=True, out=ids)
-        del keys
+        reuse = None if ids is None or level in kept else ids
+        ids, distinct = rank_keys(keys, space, overwrite=True, out=reuse)
+        del keys, reuse
         context_keys[level + 1 : level + step + 1] = _prefix_levels(distinct, n_symbols, step)
         level += step
         n_ids = len(distinct)
         del distinct
+        if 2 <= level <= (order - 1) // 2:  # may be the far part of a later window
+            kept[level] = ids
         for _ in lags:
             if on_level is not None:
                 on_level()
-    space = n_ids * n_symbols ** (order - level)
-    if space > 1 << 64:
-        raise OverflowError(f"n-gram key space {n_ids} x {n_symbols} does not fit in 64 bits")
-    # the remaining context symbols, then the outcome (lag 0)
-    window_lags = [*range(level + 1, order), 0]
-    windows = _append_symbols(work, ids, n_symbols, symbol_at_lag, window_lags, space)
-    del ids
+    far = _far_level(level, n_ids, kept, context_keys, order, n_symbols)
+    if far:
+        # window = (id of the first `level` symbols, id of the `far` symbols after them, o):
+        # the far symbols of event e are the length-`far` context of event e - level.
+        assert ids is not None
+        windows = _shifted_windows(work, ids, kept[far], level, symbol_at_lag, n_symbols)
+    else:
+        space = n_ids * n_symbols ** (order - level)
+        if space > 1 << 64:
+            raise OverflowError(f"n-gram key space {n_ids} x {n_symbols} does not fit in 64 bits")
+        # the remaining context symbols, then the outcome (lag 0)
+        window_lags = [*range(level + 1, order), 0]
+        windows = _append_symbols(work, ids, n_symbols, symbol_at_lag, window_lags, space)
+    del ids, kept
     distinct_windows, top_counts = distinct_counts(windows)
     del windows, work
-    levels = _prefix_levels(distinct_windows, n_symbols, order - level)
+    if far:
+        levels = _shifted_levels(distinct_windows, context_keys, far, n_symbols)
+    else:
+        levels = _prefix_levels(distinct_windows, n_symbols, order - level)
     del distinct_windows
     context_keys[level + 1 : order] = levels[:-1]
     type_keys = [np.zeros(0, dtype=np.int64)] * (order + 1)
@@ -490,6 +507,98 @@ def _jump_length(n_ids: int, n_symbols: int, n_events: int, most: int) -> int:
             break
         step += 1
     return step
+
+
+def _far_level(
+    level: int,
+    n_ids: int,
+    kept: dict[int, np.ndarray],
+    context_keys: list[np.ndarray],
+    order: int,
+    n_symbols: int,
+) -> int:
+    """Length of a window's far part made of kept per-event ids (0: no such window).
+
+    With ids of the first ``level`` symbols and kept ids of contexts of length
+    ``far = order - 1 - level``, a window ``(id, far id, outcome)`` takes
+    ``n_ids * D_far * n_symbols`` values; it is used when that fits 64 bits and the
+    windows of raw symbols do not.
+    """
+    far = order - 1 - level
+    if far not in kept or n_ids * n_symbols ** (order - level) <= _WINDOW_LIMIT:
+        return 0
+    return far if n_ids * len(context_keys[far]) * n_symbols <= _WINDOW_LIMIT else 0
+
+
+def _shifted_windows(
+    work: np.ndarray,
+    ids: np.ndarray,
+    far_ids: np.ndarray,
+    level: int,
+    symbol_at_lag: SymbolsAtLag,
+    n_symbols: int,
+) -> np.ndarray:
+    """``(n_events,)`` windows ``(ids[e] * D_far + far_ids[e - level]) * n_symbols + o``.
+
+    ``ids`` are the events' ids of their first ``level`` context symbols, ``far_ids`` the
+    ids of contexts of length ``D_far``'s level: event ``e - level``'s context holds
+    symbols ``level + 1 ...`` of event ``e`` when both lie in one unit, i.e. when ``e`` is
+    at least ``level`` into its unit. Otherwise those symbols are all begin markers, the
+    context of any unit's first event (event 0's). Written into ``work`` a block at a time.
+    """
+    n_far = int(far_ids.max()) + 1 if len(far_ids) else 1
+    begin = n_symbols - 1  # the begin marker's id in the context alphabet
+    space = (int(ids.max()) + 1 if len(ids) else 1) * n_far * n_symbols
+    dtype = _key_dtype(space)
+    windows = work.view(dtype)[: len(work)]
+    for start in range(0, len(windows), _GATHER_CHUNK):
+        stop = min(start + _GATHER_CHUNK, len(windows))
+        block = windows[start:stop]
+        block[...] = ids[start:stop]
+        block *= n_far
+        # far_ids[e - level] for e in start:stop; where e < level, any value (masked next)
+        far = np.empty(stop - start, dtype=far_ids.dtype)
+        missing = min(max(level - start, 0), len(far))
+        far[:missing] = 0
+        far[missing:] = far_ids[start + missing - level : stop - level]
+        far[symbol_at_lag(level, start, stop) == begin] = far_ids[0] if len(far_ids) else 0
+        block += far.astype(dtype, copy=False)
+        block *= n_symbols
+        block += symbol_at_lag(0, start, stop).astype(dtype, copy=False)
+    return windows
+
+
+def _shifted_levels(
+    windows: np.ndarray, context_keys: list[np.ndarray], far: int, n_symbols: int
+) -> list[np.ndarray]:
+    """Level keys from sorted distinct windows ``(id, far id, o)`` (:func:`_shifted_windows`).
+
+    Level ``i`` of the far part (1..far) is the prefix ``(id, ancestor of the far id at
+    length i)``: a context's parent drops its last (farthest) symbol, so the ancestors are
+    found by walking ``context_keys`` down from length ``far``; the last symbol of the
+    ancestor at length ``i`` is ``context_keys[i][ancestor] % n_symbols``. Returns the keys
+    of levels ``level + 1 .. order - 1`` and then of the ``order``-gram types.
+    """
+    n_far = len(context_keys[far])
+    radix = np.uint64(n_symbols)
+
+    def decode(
+        block: np.ndarray,
+    ) -> tuple[np.ndarray, list[tuple[tuple[np.ndarray, ...], np.ndarray]]]:
+        block = block.astype(np.uint64)
+        rest, outcome = np.divmod(block, radix)
+        base, ancestor = np.divmod(rest, np.uint64(n_far))
+        base, ancestor = base.astype(np.int64), ancestor.astype(np.int64)
+        columns: list[tuple[tuple[np.ndarray, ...], np.ndarray]] = []
+        for i in range(far, 0, -1):  # ancestors from length far down to 1
+            parent, digit = np.divmod(context_keys[i][ancestor], n_symbols)
+            columns.append(((base, ancestor), digit))
+            ancestor = parent
+        columns.reverse()
+        columns.append(((block,), outcome.astype(np.int64)))
+        return base, columns
+
+    return _scan_levels(windows, decode, n_symbols, far + 1)
 
 
 def _append_symbols(
@@ -547,36 +656,64 @@ def _prefix_levels(keys: np.ndarray, n_symbols: int, depth: int) -> list[np.ndar
     >>> [k.tolist() for k in _prefix_levels(np.array([15, 17, 19]), 3, 2)]
     [[5, 6], [0, 2, 4]]
     """
-    pieces: list[list[np.ndarray]] = [[np.zeros(0, dtype=np.int64)] for _ in range(depth)]
     # Prefixes are computed in uint64: keys may pass 2**63 (uint64 windows), and mixing
     # uint64 with int64 operands would give float64. Divisors stay below n_symbols**depth.
     radix = np.uint64(n_symbols)
-    # Carried from block to block, per level: the last prefix seen, distinct prefixes so far.
-    last: list[Any] = [None] * depth
-    n_distinct = [0] * depth
-    for start in range(0, len(keys), _GATHER_CHUNK):
-        block = keys[start : start + _GATHER_CHUNK].astype(np.uint64)
-        parent = np.zeros(0, dtype=np.int64)  # unused at i = 1: a level-1 prefix is its key
+
+    def decode(
+        block: np.ndarray,
+    ) -> tuple[np.ndarray, list[tuple[tuple[np.ndarray, ...], np.ndarray]]]:
+        block = block.astype(np.uint64)
+        columns: list[tuple[tuple[np.ndarray, ...], np.ndarray]] = []
         for i in range(1, depth + 1):
             prefix = block // radix ** np.uint64(depth - i) if i < depth else block
-            is_new = np.empty(len(prefix), dtype=bool)
-            is_new[0] = last[i - 1] is None or prefix[0] != last[i - 1]
-            np.not_equal(prefix[1:], prefix[:-1], out=is_new[1:])
-            if i == 1:
-                # base * n_symbols + first digit, below 2**62
-                pieces[0].append(prefix[is_new].astype(np.int64))
-            else:
-                # (id of the prefix one level down) * n_symbols + last digit
-                level_keys = parent[is_new]
-                level_keys *= n_symbols
-                level_keys += (prefix[is_new] % radix).astype(np.int64)
-                pieces[i - 1].append(level_keys)
-            if i < depth:
-                # Ids of each entry's prefix at this level: the parents of the next level.
-                parent = np.cumsum(is_new, dtype=np.int64)
-                parent += n_distinct[i - 1] - 1
-            n_distinct[i - 1] += int(np.count_nonzero(is_new))
-            last[i - 1] = prefix[-1]
+            columns.append(((prefix,), (prefix % radix).astype(np.int64)))
+        # base * n_symbols + first digit is below 2**62: the base ids one level down
+        base = (columns[0][0][0] // radix).astype(np.int64)
+        return base, columns
+
+    return _scan_levels(keys, decode, n_symbols, depth)
+
+
+def _scan_levels(
+    keys: np.ndarray,
+    decode: Callable[
+        [np.ndarray], tuple[np.ndarray, list[tuple[tuple[np.ndarray, ...], np.ndarray]]]
+    ],
+    n_symbols: int,
+    depth: int,
+) -> list[np.ndarray]:
+    """Keys of ``depth`` consecutive levels from sorted distinct keys, a block at a time.
+
+    ``decode(block)`` gives, for a block of ``keys``, the ids one level below the first
+    and, per level, the arrays whose values together identify each entry's prefix at
+    that level (equal prefixes are adjacent) and that prefix's last symbol. A level's key
+    is (id of the prefix one level down) ``* n_symbols +`` last symbol; ids are ranks of
+    the distinct prefixes, counted on from block to block.
+    """
+    pieces: list[list[np.ndarray]] = [[np.zeros(0, dtype=np.int64)] for _ in range(depth)]
+    # Carried from block to block, per level: the last prefix seen, distinct prefixes so far.
+    last: list[tuple[Any, ...] | None] = [None] * depth
+    n_distinct = [0] * depth
+    for start in range(0, len(keys), _GATHER_CHUNK):
+        parent, columns = decode(keys[start : start + _GATHER_CHUNK])
+        for i, (prefix, digit) in enumerate(columns):
+            is_new = np.zeros(len(digit), dtype=bool)
+            previous = last[i]
+            is_new[0] = previous is None or any(
+                part[0] != value for part, value in zip(prefix, previous, strict=True)
+            )
+            for part in prefix:
+                is_new[1:] |= part[1:] != part[:-1]
+            level_keys = parent[is_new]
+            level_keys *= n_symbols
+            level_keys += digit[is_new]
+            pieces[i].append(level_keys)
+            # Ids of each entry's prefix at this level: the parents of the next level.
+            parent = np.cumsum(is_new, dtype=np.int64)
+            parent += n_distinct[i] - 1
+            n_distinct[i] += int(np.count_nonzero(is_new))
+            last[i] = tuple(part[-1] for part in prefix)
     return [np.concatenate(level) for level in pieces]
 
 
