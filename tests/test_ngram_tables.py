@@ -293,24 +293,44 @@ def test_windows_near_the_64_bit_limits_match_the_reference(vocab_size, order):
     assert all(k.dtype == np.int64 for k in tables.type_keys[1:])
 
 
-@pytest.mark.parametrize(("order", "far"), [(5, 2), (6, 2), (8, 3), (10, 4)])
-def test_windows_with_a_shifted_far_part_match_the_reference(monkeypatch, order, far):
-    # Raw windows need jumps to level order - 1 here; the far symbols of event e are
-    # taken as the context of event e - level instead, as soon as (id, far id, o) fits.
+@pytest.mark.parametrize(
+    ("order", "expected"),
+    [
+        # (window?, shift, length) of each step whose keys hold a far context id
+        (5, [(True, 2, 2)]),  # windows (id_2, context_2 of e - 2, o)
+        (6, [(False, 2, 2)]),  # ranking (id_2, context_2 of e - 2) to length 4; raw windows
+        (8, [(False, 2, 2), (True, 3, 4)]),  # then windows (id_4, context_4 of e - 3, o):
+        # symbol 4 is in both parts
+        (10, [(False, 2, 2), (False, 4, 4)]),  # to length 4, to length 8; raw windows
+    ],
+)
+def test_keys_with_a_far_context_id_match_the_reference(monkeypatch, order, expected):
+    # Raw symbols need many ranking steps here; symbols shift + 1 ... of event e are the
+    # context of event e - shift instead, as soon as (id, far id[, o]) fits the limit.
     rng = np.random.default_rng(order)
     units = random_units(rng, 300, 150, max_length=14)
     units += [np.array([299] * 12), np.array([0, 299] * 6)]  # the largest ids, repeated
     calls = []
-    original = _ngram_counts._shifted_windows
+    original = _ngram_counts._far_keys
 
-    def spy(work, ids, far_ids, level, *args):
-        calls.append((level, len(np.unique(far_ids))))
-        return original(work, ids, far_ids, level, *args)
+    def spy(work, ids, far_ids, shift, n_far, *args, **kwargs):
+        assert far_ids.max() < n_far
+        calls.append((shift, kwargs.get("outcome", False)))
+        return original(work, ids, far_ids, shift, n_far, *args, **kwargs)
 
-    monkeypatch.setattr(_ngram_counts, "_shifted_windows", spy)
+    monkeypatch.setattr(_ngram_counts, "_far_keys", spy)
     monkeypatch.setattr(_ngram_counts, "_jump_length", lambda *args: 1)
     monkeypatch.setattr(_ngram_counts, "_WINDOW_LIMIT", 10**9)
-    tables = assert_tables_match(units, order, 300)
-    assert [level for level, _ in calls] == [order - 1 - far]
-    # the far ids are ids of contexts of length `far`
-    assert calls[0][1] <= len(tables.context_keys[far])
+    monkeypatch.setattr(_ngram_counts, "_DENSE_KEYS", 0)
+    monkeypatch.setattr(_ngram_counts, "_BITSET_KEYS_PER_EVENT", 0)
+    steps = []
+    planner = _ngram_counts._plan_step
+    monkeypatch.setattr(
+        _ngram_counts,
+        "_plan_step",
+        lambda *args: steps.append(planner(*args)) or steps[-1],
+    )
+    assert_tables_match(units, order, 300)
+    far_steps = [(step.window, *step.far) for step in steps if step.far is not None]
+    assert far_steps == expected
+    assert calls == [(shift, window) for window, shift, _ in expected]

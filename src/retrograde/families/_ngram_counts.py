@@ -22,7 +22,7 @@ from __future__ import annotations
 
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
-from typing import Any, Protocol
+from typing import Any, NamedTuple, Protocol
 
 import numpy as np
 
@@ -420,51 +420,64 @@ def count_tables(
     ids: np.ndarray | None = None
     n_ids = 1
     level = 0
-    # (n_events,) ids of shorter contexts, kept for a window's far part (:func:`_far_level`)
-    kept: dict[int, np.ndarray] = {}
+    # (n_events,) ids of the contexts of each length ranked so far (>= 2, the current one
+    # included): possible far parts of later keys (:func:`_plan_step`)
+    far_ids: dict[int, np.ndarray] = {}
     # (n_events,) 8-byte memory for the keys of every step, then the windows
     work = np.empty(n_events, dtype=np.int64)
-    while level < order - 1 and n_ids * n_symbols ** (order - level) > _WINDOW_LIMIT:
-        if _far_level(level, n_ids, kept, context_keys, order, n_symbols):
+    while True:
+        step = _plan_step(level, n_ids, far_ids, context_keys, order, n_symbols, n_events)
+        if step.window:
             break
-        if n_ids * n_symbols >= 1 << 62:
-            raise OverflowError(f"n-gram key space {n_ids} x {n_symbols} does not fit in 63 bits")
-        step = _jump_length(n_ids, n_symbols, n_events, order - 1 - level)
-        lags = range(level + 1, level + step + 1)
-        space = n_ids * n_symbols**step
-        keys = _append_symbols(work, ids, n_symbols, symbol_at_lag, lags, space)
-        reuse = None if ids is None or level in kept else ids
+        if step.far is None:
+            lags = range(level + 1, step.level + 1)
+            space = n_ids * n_symbols ** len(lags)
+            keys = _append_symbols(work, ids, n_symbols, symbol_at_lag, lags, space)
+        else:
+            assert ids is not None
+            shift, far = step.far
+            space = n_ids * len(context_keys[far])
+            n_far = len(context_keys[far])
+            keys = _far_keys(work, ids, far_ids[far], shift, n_far, symbol_at_lag, n_symbols)
+        reuse = None if ids is None or level in far_ids else ids
         ids, distinct = rank_keys(keys, space, overwrite=True, out=reuse)
         del keys, reuse
-        context_keys[level + 1 : level + step + 1] = _prefix_levels(distinct, n_symbols, step)
-        level += step
-        n_ids = len(distinct)
-        del distinct
-        if 2 <= level <= (order - 1) // 2:  # may be the far part of a later window
-            kept[level] = ids
-        for _ in lags:
+        if step.far is None:
+            new_levels = _prefix_levels(distinct, n_symbols, step.level - level)
+        else:
+            new_levels = _far_levels(distinct, context_keys, *step.far, level, n_symbols)
+        context_keys[level + 1 : step.level + 1] = new_levels
+        del distinct, new_levels
+        for _ in range(level, step.level):
             if on_level is not None:
                 on_level()
-    far = _far_level(level, n_ids, kept, context_keys, order, n_symbols)
-    if far:
-        # window = (id of the first `level` symbols, id of the `far` symbols after them, o):
-        # the far symbols of event e are the length-`far` context of event e - level.
-        assert ids is not None
-        windows = _shifted_windows(work, ids, kept[far], level, symbol_at_lag, n_symbols)
-    else:
+        level = step.level
+        n_ids = len(context_keys[level])
+        if 2 <= level <= order - 2:
+            far_ids[level] = ids
+    if step.far is None:
         space = n_ids * n_symbols ** (order - level)
         if space > 1 << 64:
             raise OverflowError(f"n-gram key space {n_ids} x {n_symbols} does not fit in 64 bits")
         # the remaining context symbols, then the outcome (lag 0)
         window_lags = [*range(level + 1, order), 0]
         windows = _append_symbols(work, ids, n_symbols, symbol_at_lag, window_lags, space)
-    del ids, kept
+    else:
+        assert ids is not None
+        shift, far = step.far
+        n_far = len(context_keys[far])
+        windows = _far_keys(
+            work, ids, far_ids[far], shift, n_far, symbol_at_lag, n_symbols, outcome=True
+        )
+    del ids, far_ids
     distinct_windows, top_counts = distinct_counts(windows)
     del windows, work
-    if far:
-        levels = _shifted_levels(distinct_windows, context_keys, far, n_symbols)
-    else:
+    if step.far is None:
         levels = _prefix_levels(distinct_windows, n_symbols, order - level)
+    else:
+        levels = _far_levels(
+            distinct_windows, context_keys, *step.far, level, n_symbols, outcome=True
+        )
     del distinct_windows
     context_keys[level + 1 : order] = levels[:-1]
     type_keys = [np.zeros(0, dtype=np.int64)] * (order + 1)
@@ -509,96 +522,141 @@ def _jump_length(n_ids: int, n_symbols: int, n_events: int, most: int) -> int:
     return step
 
 
-def _far_level(
+class _Step(NamedTuple):
+    """What :func:`count_tables` does next from the current context length.
+
+    ``window``: build the windows (context ids, the rest, outcome) and finish; else rank
+    per event the contexts of length ``level``. ``far`` is None when the rest is raw
+    symbols, else ``(shift, length)``: the rest is the id of the length-``length`` context
+    of the event ``shift`` places earlier (it holds symbols ``shift + 1 ..``).
+    """
+
+    window: bool
+    level: int
+    far: tuple[int, int] | None
+
+
+def _plan_step(
     level: int,
     n_ids: int,
-    kept: dict[int, np.ndarray],
+    far_ids: dict[int, np.ndarray],
     context_keys: list[np.ndarray],
     order: int,
     n_symbols: int,
-) -> int:
-    """Length of a window's far part made of kept per-event ids (0: no such window).
+    n_events: int,
+) -> _Step:
+    """The cheapest next step: a window if one fits 64 bits, else the longest ranking step.
 
-    With ids of the first ``level`` symbols and kept ids of contexts of length
-    ``far = order - 1 - level``, a window ``(id, far id, outcome)`` takes
-    ``n_ids * D_far * n_symbols`` values; it is used when that fits 64 bits and the
-    windows of raw symbols do not.
+    Event ``e``'s symbols ``shift + 1 .. shift + length`` are the context of length
+    ``length`` of event ``e - shift`` (when both lie in one unit), so a key ``(id of the
+    first level symbols, that context's id)`` takes ``n_ids * D_length`` values instead of
+    ``n_ids * n_symbols**length``. With ``shift < level`` the two parts overlap; a repeated
+    symbol changes neither the keys' order nor which keys are equal.
     """
-    far = order - 1 - level
-    if far not in kept or n_ids * n_symbols ** (order - level) <= _WINDOW_LIMIT:
-        return 0
-    return far if n_ids * len(context_keys[far]) * n_symbols <= _WINDOW_LIMIT else 0
+    if level == order - 1 or n_ids * n_symbols ** (order - level) <= _WINDOW_LIMIT:
+        return _Step(True, order - 1, None)
+    sizes = {length: len(context_keys[length]) for length in far_ids}
+    windows = [
+        (n_ids * size * n_symbols, (order - 1 - length, length))
+        for length, size in sizes.items()
+        if 1 <= order - 1 - length <= level and n_ids * size * n_symbols <= _WINDOW_LIMIT
+    ]
+    if windows:
+        return _Step(True, order - 1, min(windows)[1])
+    if n_ids * n_symbols >= 1 << 62:
+        raise OverflowError(f"n-gram key space {n_ids} x {n_symbols} does not fit in 63 bits")
+    best = _Step(False, level + _jump_length(n_ids, n_symbols, n_events, order - 1 - level), None)
+    for length, size in sizes.items():
+        shift = min(level, order - 1 - length)
+        space = n_ids * size
+        cheap = space <= _dense_limit(n_events) or packed_fits(space, n_events)
+        if shift >= 1 and shift + length > best.level and cheap:
+            best = _Step(False, shift + length, (shift, length))
+    return best
 
 
-def _shifted_windows(
+def _far_keys(
     work: np.ndarray,
     ids: np.ndarray,
     far_ids: np.ndarray,
-    level: int,
+    shift: int,
+    n_far: int,
     symbol_at_lag: SymbolsAtLag,
     n_symbols: int,
+    *,
+    outcome: bool = False,
 ) -> np.ndarray:
-    """``(n_events,)`` windows ``(ids[e] * D_far + far_ids[e - level]) * n_symbols + o``.
+    """``(n_events,)`` keys ``ids[e] * n_far + far_ids[e - shift]`` (then ``* n_symbols + o``).
 
-    ``ids`` are the events' ids of their first ``level`` context symbols, ``far_ids`` the
-    ids of contexts of length ``D_far``'s level: event ``e - level``'s context holds
-    symbols ``level + 1 ...`` of event ``e`` when both lie in one unit, i.e. when ``e`` is
-    at least ``level`` into its unit. Otherwise those symbols are all begin markers, the
-    context of any unit's first event (event 0's). Written into ``work`` a block at a time.
+    ``far_ids`` are ``(n_events,)`` context ids below ``n_far``. Event ``e - shift``'s
+    context holds symbols ``shift + 1 ...`` of event ``e`` when ``e`` is at least ``shift``
+    into its unit (its symbol ``shift`` back is not the begin marker); otherwise those
+    symbols are all begin markers, the context of any unit's first event (event 0's).
+    Written into ``work`` a block at a time.
     """
-    n_far = int(far_ids.max()) + 1 if len(far_ids) else 1
+    space = (int(ids.max()) + 1 if len(ids) else 1) * n_far * (n_symbols if outcome else 1)
     begin = n_symbols - 1  # the begin marker's id in the context alphabet
-    space = (int(ids.max()) + 1 if len(ids) else 1) * n_far * n_symbols
     dtype = _key_dtype(space)
-    windows = work.view(dtype)[: len(work)]
-    for start in range(0, len(windows), _GATHER_CHUNK):
-        stop = min(start + _GATHER_CHUNK, len(windows))
-        block = windows[start:stop]
+    keys = work.view(dtype)[: len(work)]
+    for start in range(0, len(keys), _GATHER_CHUNK):
+        stop = min(start + _GATHER_CHUNK, len(keys))
+        block = keys[start:stop]
         block[...] = ids[start:stop]
         block *= n_far
-        # far_ids[e - level] for e in start:stop; where e < level, any value (masked next)
+        # far_ids[e - shift] for e in start:stop; where e < shift, any value (masked next)
         far = np.empty(stop - start, dtype=far_ids.dtype)
-        missing = min(max(level - start, 0), len(far))
+        missing = min(max(shift - start, 0), len(far))
         far[:missing] = 0
-        far[missing:] = far_ids[start + missing - level : stop - level]
-        far[symbol_at_lag(level, start, stop) == begin] = far_ids[0] if len(far_ids) else 0
+        far[missing:] = far_ids[start + missing - shift : stop - shift]
+        far[symbol_at_lag(shift, start, stop) == begin] = far_ids[0]
         block += far.astype(dtype, copy=False)
-        block *= n_symbols
-        block += symbol_at_lag(0, start, stop).astype(dtype, copy=False)
-    return windows
+        if outcome:
+            block *= n_symbols
+            block += symbol_at_lag(0, start, stop).astype(dtype, copy=False)
+    return keys
 
 
-def _shifted_levels(
-    windows: np.ndarray, context_keys: list[np.ndarray], far: int, n_symbols: int
+def _far_levels(
+    keys: np.ndarray,
+    context_keys: list[np.ndarray],
+    shift: int,
+    length: int,
+    level: int,
+    n_symbols: int,
+    *,
+    outcome: bool = False,
 ) -> list[np.ndarray]:
-    """Level keys from sorted distinct windows ``(id, far id, o)`` (:func:`_shifted_windows`).
+    """Level keys from sorted distinct keys ``(id, far id[, o])`` of :func:`_far_keys`.
 
-    Level ``i`` of the far part (1..far) is the prefix ``(id, ancestor of the far id at
-    length i)``: a context's parent drops its last (farthest) symbol, so the ancestors are
-    found by walking ``context_keys`` down from length ``far``; the last symbol of the
-    ancestor at length ``i`` is ``context_keys[i][ancestor] % n_symbols``. Returns the keys
-    of levels ``level + 1 .. order - 1`` and then of the ``order``-gram types.
+    ``id`` is a context of length ``level``, ``far id`` one of length ``length`` starting
+    after symbol ``shift``. Level ``level + i`` is the prefix ``(id, ancestor of the far id
+    at length level - shift + i)``: a context's parent drops its last (farthest) symbol, so
+    ancestors are found walking ``context_keys`` down from ``length``, and the ancestor's
+    last symbol is ``context_keys[j][ancestor] % n_symbols``. Returns the keys of levels
+    ``level + 1 .. shift + length``, then (``outcome``) of the types one level up.
     """
-    n_far = len(context_keys[far])
+    n_far = len(context_keys[length])
+    overlap = level - shift
     radix = np.uint64(n_symbols)
 
     def decode(
         block: np.ndarray,
     ) -> tuple[np.ndarray, list[tuple[tuple[np.ndarray, ...], np.ndarray]]]:
         block = block.astype(np.uint64)
-        rest, outcome = np.divmod(block, radix)
+        rest, last = np.divmod(block, radix) if outcome else (block, block)
         base, ancestor = np.divmod(rest, np.uint64(n_far))
         base, ancestor = base.astype(np.int64), ancestor.astype(np.int64)
         columns: list[tuple[tuple[np.ndarray, ...], np.ndarray]] = []
-        for i in range(far, 0, -1):  # ancestors from length far down to 1
-            parent, digit = np.divmod(context_keys[i][ancestor], n_symbols)
+        for j in range(length, overlap, -1):  # ancestors from length down to overlap + 1
+            parent, digit = np.divmod(context_keys[j][ancestor], n_symbols)
             columns.append(((base, ancestor), digit))
             ancestor = parent
         columns.reverse()
-        columns.append(((block,), outcome.astype(np.int64)))
+        if outcome:
+            columns.append(((block,), last.astype(np.int64)))
         return base, columns
 
-    return _scan_levels(windows, decode, n_symbols, far + 1)
+    return _scan_levels(keys, decode, n_symbols, length - overlap + int(outcome))
 
 
 def _append_symbols(
