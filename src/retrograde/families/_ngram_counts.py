@@ -8,14 +8,19 @@ family. Notation (``V`` = vocabulary size, ``N`` = n-gram order):
 - Context symbols are token ids ``0..V-1`` plus the begin marker ``V`` (padding before the
   unit starts). Outcomes are token ids plus the end marker ``V``. Both alphabets have
   ``V + 1`` symbols, so ``n_symbols == V + 1``.
-- A context of length ``j`` is the ``j`` symbols before the event. Contexts get integer
-  ids level by level, never as wide keys: the context of length ``j`` is the pair
-  (id of its length ``j-1`` suffix, the symbol ``j`` back), keyed as
-  ``suffix_id * n_symbols + symbol`` and ranked among the distinct keys. Keys therefore
-  stay below ``n_contexts * n_symbols`` whatever ``N`` is (no 64-bit overflow at ``N = 10``).
+- A context of length ``j`` is the ``j`` symbols before the event, nearest first. Its id
+  is its rank among the distinct contexts of that length in the lexicographic order of
+  these tuples; in the tables it is the pair (id of its length ``j-1`` suffix, the symbol
+  ``j`` back), keyed as ``suffix_id * n_symbols + symbol``. Keys therefore stay below
+  ``n_contexts * n_symbols`` whatever ``N`` is (no 64-bit overflow at ``N = 10``).
 - A ``k``-gram type is (id of its length ``k-1`` context, outcome), keyed
   ``context_id * n_symbols + outcome``; each level keeps its distinct keys sorted, so
   look-ups are ``np.searchsorted``.
+- Counting (:func:`count_tables`) sorts one 64-bit *window* per event, its context
+  symbols and outcome in mixed radix, and reads every level off the sorted distinct
+  windows; long windows first replace leading symbols by per-event context ids
+  (:func:`_plan_step`). Scoring (:func:`interpolated_probs`) puts the events in context
+  order once so that every level's searches walk the tables forwards.
 """
 
 from __future__ import annotations
