@@ -334,3 +334,103 @@ def test_keys_with_a_far_context_id_match_the_reference(monkeypatch, order, expe
     far_steps = [(step.window, *step.far) for step in steps if step.far is not None]
     assert far_steps == expected
     assert calls == [(shift, window) for window, shift, _ in expected]
+
+
+def reference_logprobs(train_units, test_units, order, vocab_size, discount=None):
+    """Log-probabilities by the previous implementation's float operations, one level at a time.
+
+    Tables from :func:`reference_tables`; per level ``totals`` and the discounted mass by
+    one ``np.bincount`` over all types, ``alpha = (c - D(c)) / total``, ``gamma = mass /
+    total``; ``p = alpha + gamma * p`` while the context is seen (Chen & Goodman 1998,
+    eqs. 17, 19 and 26). Scored event by event in arrays, unsorted.
+    """
+    n_symbols = vocab_size + 1
+    context_keys, type_keys, type_counts = reference_tables(train_units, order, vocab_size)
+    alphas, gammas = {}, {}
+    for k in range(1, order + 1):
+        keys = np.array(type_keys[k], dtype=np.int64)
+        counts = np.array(type_counts[k], dtype=np.int64)
+        if discount is None:
+            n1, n2, n3, n4 = np.bincount(np.minimum(counts, 5), minlength=6)[1:5].astype(float)
+            y = n1 / (n1 + 2 * n2) if n1 > 0 else 0.5
+            formulas = [
+                (1.0, 1 - 2 * y * n2 / n1 if n1 > 0 else np.nan),
+                (2.0, 2 - 3 * y * n3 / n2 if n2 > 0 else np.nan),
+                (3.0, 3 - 4 * y * n4 / n3 if n3 > 0 else np.nan),
+            ]
+            discounts = np.array([d if 0 < d <= r else y for r, d in formulas])
+        else:
+            discounts = np.full(3, discount)
+        context = keys // n_symbols
+        n_contexts = 1 if k == 1 else len(context_keys[k - 1])
+        counts_f = counts.astype(np.float64)
+        totals = np.bincount(context, weights=counts_f, minlength=n_contexts)
+        per_type = discounts[np.minimum(counts, 3) - 1]
+        mass = np.bincount(context, weights=per_type, minlength=n_contexts)
+        alphas[k] = (counts_f - per_type) / totals[context]
+        gammas[k] = mass / totals
+    rows = []
+    for unit in test_units:
+        padded = [vocab_size] * (order - 1) + [int(t) for t in unit]
+        for t in range(len(unit) + 1):
+            context = padded[t : t + order - 1][::-1]
+            rows.append((context, int(unit[t]) if t < len(unit) else vocab_size))
+    probs = np.full(len(rows), 1.0 / n_symbols)
+    ids = np.zeros(len(rows), dtype=np.int64)
+    seen = np.ones(len(rows), dtype=bool)
+
+    def find(table, keys):
+        table = np.array(table, dtype=np.int64)
+        where = np.searchsorted(table, keys).clip(0, max(len(table) - 1, 0))
+        return np.where(len(table) > 0, np.where(table[where] == keys, where, -1), -1)
+
+    for k in range(1, order + 1):
+        if k > 1:
+            lag = np.array([context[k - 2] for context, _ in rows], dtype=np.int64)
+            found = find(context_keys[k - 1], ids * n_symbols + lag)
+            seen &= found >= 0
+            ids = np.where(seen, found, 0)
+        outcome = np.array([o for _, o in rows], dtype=np.int64)
+        where = find(type_keys[k], ids * n_symbols + outcome)
+        alpha = np.where(where >= 0, alphas[k][np.maximum(where, 0)], 0.0)
+        probs = np.where(seen, alpha + gammas[k][ids] * probs, probs)
+    return np.log(probs)
+
+
+@pytest.mark.parametrize("path", ["default", "tiny blocks", "sorted scoring", *PATHS])
+@settings(max_examples=10, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(
+    vocab_size=st.sampled_from([1, 3, 40, 300, 70_000]),
+    order=st.integers(1, 7),
+    seed=st.integers(0, 2**32 - 1),
+    fixed=st.booleans(),
+)
+def test_log_probabilities_are_bit_identical_to_the_previous_computation(
+    path, vocab_size, order, seed, fixed
+):
+    from retrograde.families import _events, _packed_sort, make
+    from retrograde.families import ngram as ngram_module
+
+    rng = np.random.default_rng(seed)
+    train = random_units(rng, vocab_size, 80, max_length=12)
+    test = random_units(rng, vocab_size, 40, max_length=12) + train[:20]
+    discount = 0.4 if fixed else None
+    with pytest.MonkeyPatch.context() as patch:
+        if path == "tiny blocks":
+            for module, name in [
+                (_ngram_counts, "_GATHER_CHUNK"),
+                (_packed_sort, "_CHUNK"),
+                (_events, "_BLOCK"),
+                (ngram_module, "_SCORE_TOKENS"),
+            ]:
+                patch.setattr(module, name, 3)
+        elif path == "sorted scoring":
+            patch.setattr(_ngram_counts, "_SORT_SCORED_EVENTS", 0)
+        elif path != "default":
+            for name, value in PATHS[path].items():
+                patch.setattr(_ngram_counts, name, value)
+        model = make("ngram", order=order, discount=discount)
+        model.fit(SequenceSet.from_list(train, vocab_size=vocab_size))
+        ours = model.logprobs(SequenceSet.from_list(test, vocab_size=vocab_size)).values
+    expected = reference_logprobs(train, test, order, vocab_size, discount)
+    assert np.array_equal(ours, expected)
