@@ -44,10 +44,12 @@ def _blocks(keys: np.ndarray, space: int) -> tuple[list[int], list[int]]:
     dtype=st.sampled_from([np.int32, np.int64]),
 )
 def test_packed_rank_equals_numpy_unique_with_inverse(space_bits, raw, dtype):
-    space = 1 << space_bits
+    # The widest space that still fits 64 bits with the positions, at most 2**space_bits.
+    space = 1 << min(space_bits, 64 - index_bits(len(raw)))
     if dtype == np.int32:
         space = min(space, 2**31)
     keys = np.array([value % space for value in raw], dtype=dtype)
+    assert packed_fits(space, len(keys))  # wider spaces are refused (test below)
     ids, distinct = packed_rank(keys, space)
     assert (ids.tolist(), distinct.tolist()) == _reference(keys)
     assert distinct.dtype == np.int64
