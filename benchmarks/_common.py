@@ -26,7 +26,7 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
-from retrograde._io import atomic_write_json
+from retrograde.data import atomic_write_json
 
 __all__ = [
     "RESULTS_DIR",

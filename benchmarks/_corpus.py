@@ -8,7 +8,7 @@ sorted path order. Source ``"unicode"``: only the ``site-packages`` ``.py`` file
 bytes are not all ASCII (Unicode tables, emoji and locale data, docstrings in other
 scripts, pretty-printer tests), in sorted path order: real code with thousands of
 distinct, mostly rare, characters. The text is cut exactly as the pipeline's ``units``
-stage cuts a text source with ``unit: line``: :func:`retrograde.units.prepare_units`
+stage cuts a text source with ``unit: line``: :func:`retrograde.data.prepare_units`
 (salted-hash split 80/10/10, vocabulary fitted on the training lines) with the project's
 ``chars`` or ``words`` tokenizer.
 """
@@ -22,10 +22,8 @@ from typing import Any
 
 import numpy as np
 
-from retrograde._document import Document
-from retrograde.sequences import SequenceSet
-from retrograde.tokenize import make as make_tokenizer
-from retrograde.units import prepare_units
+from retrograde.data import Document, SequenceSet, prepare_units
+from retrograde.data.tokenizers import make as make_tokenizer
 
 __all__ = [
     "CHARS_PER_WORD_TOKEN",

@@ -91,7 +91,7 @@ def real_models(repetitions: int) -> tuple[float, float, float]:
     interval. Returns (coverage of 0, mean gap %, standard deviation of the gap %).
     """
     from retrograde import families, orders, sources
-    from retrograde.scoring import unit_nll
+    from retrograde.stats import unit_nll
 
     source = sources.make("markov", vocab_size=4, order=1, length=64, chain_seed=0)
     covered, gaps = 0, []

@@ -79,7 +79,7 @@ def load_case_units(case: dict[str, Any]) -> tuple[Any, Any]:
     compact ids give our family the same outcome set: the ids seen in train become
     ``1..k`` and every other id the unknown id 0 (``vocab_size = k + 1``).
     """
-    from retrograde.sequences import SequenceSet
+    from retrograde.data import SequenceSet
 
     folder = Path(case["data"])
     train = _corpus.load_prefix(folder, "train", case["train_tokens"])

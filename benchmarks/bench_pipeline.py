@@ -42,7 +42,7 @@ from typing import Any
 
 import _common
 
-from retrograde.commands.run import parse_repro_line
+from retrograde.host import parse_repro_line
 
 CORPUS_BYTES = 300_000
 STUDY = """\

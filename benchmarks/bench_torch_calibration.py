@@ -34,7 +34,7 @@ import numpy as np
 
 import retrograde
 from retrograde import orders, sources
-from retrograde._io import atomic_write_json
+from retrograde.data import atomic_write_json
 from retrograde.families import make
 
 RESULTS = Path(__file__).resolve().parent / "results" / "torch_calibration.json"

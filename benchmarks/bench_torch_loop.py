@@ -28,7 +28,7 @@ import torch
 
 import retrograde
 from retrograde import SequenceSet
-from retrograde._io import atomic_write_json
+from retrograde.data import atomic_write_json
 from retrograde.families import make
 from retrograde.families._torch_common import learning_rate, torch_session
 

@@ -108,7 +108,7 @@ SortTokens = _sort_tokens_order()
 def dvc_events(host: Path) -> dict[str, list[str]]:
     """What DVC itself reported per stage in the last `retrograde run` (its log, run.log),
     in order: ``{"ran": [...], "restored": [...], "unchanged": [...], "failed": [...]}``."""
-    from retrograde.commands.run import parse_repro_line
+    from retrograde.host import parse_repro_line
 
     events: dict[str, list[str]] = {"ran": [], "restored": [], "unchanged": [], "failed": []}
     log = host / "pipelines" / "retrograde" / "logs" / "run.log"

@@ -1,6 +1,10 @@
 """The command family: runs an external trainer without a shell and checks what it returns."""
 
+import contextlib
 import math
+import os
+import select
+import signal
 import sys
 from collections import Counter
 
@@ -167,6 +171,44 @@ def test_a_trainer_that_exceeds_its_timeout_is_stopped(tmp_path):
         model.fit(TRAIN, VALID)
 
 
+def test_a_trainer_timeout_kills_the_processes_the_trainer_started(tmp_path):
+    pid_file = tmp_path / "child.pid"
+    script = tmp_path / "spawning_trainer.py"
+    script.write_text(
+        "import subprocess, sys, time\n"
+        "child = subprocess.Popen([sys.executable, '-c', 'import time; time.sleep(600)'])\n"
+        f"open({str(pid_file)!r}, 'w').write(str(child.pid))\n"
+        "time.sleep(600)\n"
+    )
+    model = make("command", command=[sys.executable, str(script), "{out}"], timeout=3)
+    try:
+        with pytest.raises(FitError, match=r"did not finish within 3 s \(it and every"):
+            model.fit(TRAIN, VALID)
+        child = int(pid_file.read_text())
+        assert _has_exited(child), "the trainer's child outlived the trainer's timeout"
+    finally:
+        if pid_file.exists():
+            with contextlib.suppress(ProcessLookupError):
+                os.kill(int(pid_file.read_text()), signal.SIGKILL)
+
+
+def _has_exited(pid: int) -> bool:
+    """Whether ``pid`` (not our child) has exited, waiting on its pidfd rather than a clock.
+
+    The bound only keeps a wrong implementation from hanging the test; a killed process
+    makes its pidfd readable at once.
+    """
+    try:
+        fd = os.pidfd_open(pid)
+    except ProcessLookupError:
+        return True  # exited and already reaped
+    try:
+        readable, _, _ = select.select([fd], [], [], 60)
+        return bool(readable)
+    finally:
+        os.close(fd)
+
+
 def test_a_missing_program_is_reported_by_name():
     model = make("command", command=["/nonexistent/trainer", "{out}"])
     with pytest.raises(FitError, match=r"program '/nonexistent/trainer' was not found"):
@@ -255,7 +297,7 @@ def test_a_probe_of_the_wrong_shape_is_refused(tmp_path):
 
 
 def test_the_example_trainer_writes_probes_that_match_its_scores():
-    from retrograde.families._probe import check_probe, probe_positions
+    from retrograde.families import check_probe, probe_positions
 
     model = make("command", command=FIT)
     values = model.fit_logprobs(TRAIN, VALID, TEST, seed=3).values

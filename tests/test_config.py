@@ -3,7 +3,9 @@
 from __future__ import annotations
 
 import itertools
+import os
 import shutil
+import stat
 from importlib import resources
 from pathlib import Path
 
@@ -13,15 +15,17 @@ from omegaconf import OmegaConf
 
 from retrograde import __version__
 from retrograde.config import (
+    ModelConfig,
     RetrogradeConfig,
-    check_schema,
+    StudyConfig,
+    SweepConfig,
     compose,
     expand_sweeps,
     normalize,
+    parse,
     register_configs,
 )
 from retrograde.errors import ConfigError, DataError, RetrogradeError
-from retrograde.stages import grid_cells
 
 CORPUS = "first line of text\nsecond line of text\nthird one\n" * 20
 
@@ -38,6 +42,11 @@ def host(tmp_path: Path) -> Path:
     return root
 
 
+def composed(host: Path, overrides=()) -> dict:
+    """The composed config as the plain dict written to params.yaml."""
+    return compose(host, list(overrides)).to_dict()
+
+
 def _one_line_error(host: Path, overrides: list[str], kind: type[RetrogradeError] = ConfigError):
     with pytest.raises(kind) as info:
         compose(host, overrides)
@@ -48,11 +57,11 @@ def _one_line_error(host: Path, overrides: list[str], kind: type[RetrogradeError
 
 # ------------------------------------------------------------------------------ the shape
 def test_default_config_composes_into_the_documented_shape(host):
-    params = compose(host)
+    params = composed(host)
     study = params["study"]
     assert list(params) == ["study", "stats", "fits"]
     corpus = study["sources"]["corpus"]
-    assert corpus["kind"] == "file" and corpus["deps"] == ["data/corpus.txt"]
+    assert corpus["deps"] == ["data/corpus.txt"] and corpus["calibration"] is None
     assert corpus["tokenizer"] == {"name": "chars", "params": {"max_vocab": None, "min_count": 1}}
     assert corpus["units"]["mode"] == "line"
     assert corpus["package_version"] == __version__
@@ -67,8 +76,11 @@ def test_default_config_composes_into_the_documented_shape(host):
             "family": "ngram",
             "params": {"order": 3, "discount": None},
             "code": None,
+            "seeds": None,
+            "sources": None,
             "numerics_version": 2,
             "package_version": __version__,
+            "trainer_sha256": None,
         }
     }
     assert params["fits"]["corpus-ngram-reverse-2"] == {
@@ -84,7 +96,7 @@ def test_default_config_composes_into_the_documented_shape(host):
 
 def test_composed_params_read_back_identically_with_pyyaml_and_omegaconf(host):
     # DVC reads params.yaml with its own YAML parser: the dict must survive plain YAML.
-    params = compose(host, ["study.seeds=[4,5]"])
+    params = composed(host, ["study.seeds=[4,5]"])
     text = yaml.safe_dump(params, sort_keys=False)
     assert yaml.safe_load(text) == params
     assert OmegaConf.to_container(OmegaConf.create(text)) == params
@@ -92,32 +104,33 @@ def test_composed_params_read_back_identically_with_pyyaml_and_omegaconf(host):
 
 def test_overrides_use_hydra_grammar_and_compose_is_deterministic(host):
     overrides = ["study.seeds=[7,8]", "+study.orders.blocks={name: block_reverse}"]
-    first, second = compose(host, overrides), compose(host, overrides)
+    first, second = composed(host, overrides), composed(host, overrides)
     assert first == second
     assert first["study"]["seeds"] == [7, 8]
     assert first["study"]["orders"]["blocks"]["params"] == {"size": 4}
 
 
 def test_several_sources_including_a_calibration_source(host):
-    params = compose(host, ["source=[corpus,markov]"])
+    params = composed(host, ["source=[corpus,markov]"])
     markov = params["study"]["sources"]["markov"]
-    assert markov["kind"] == "calibration" and markov["deps"] == []
+    assert markov["units"] is None and markov["deps"] == []
     assert markov["tokenizer"] is None and markov["calibration"] == {"n_units": 1000, "seed": 0}
     assert list(params["study"]["sources"]) == ["corpus", "markov"]
 
 
 def test_grid_has_one_cell_per_source_model_order_seed(host):
-    params = compose(host, ["source=[corpus,markov]", "study.seeds=[0,1]"])
+    params = composed(host, ["source=[corpus,markov]", "study.seeds=[0,1]"])
     study = params["study"]
     expected = list(
         itertools.product(study["sources"], study["models"], study["orders"], study["seeds"])
     )
-    assert grid_cells(params) == expected and len(expected) == 2 * 1 * 2 * 2
+    assert compose(host, ["source=[corpus,markov]", "study.seeds=[0,1]"]).cells() == expected
+    assert len(expected) == 2 * 1 * 2 * 2
 
 
 # ------------------------------------------------------------------------------- sweeps
 def test_sweep_expands_into_named_models_with_only_the_swept_value_changed(host):
-    params = compose(
+    params = composed(
         host, ["+study.sweeps.context={model: ngram, parameter: order, values: [1, 2, 4]}"]
     )
     models = params["study"]["models"]
@@ -131,11 +144,12 @@ def test_sweep_expands_into_named_models_with_only_the_swept_value_changed(host)
 
 
 def test_sweep_value_names_stay_safe_for_dvc_stage_names():
-    study = {
-        "models": {"mlp": {"family": "mlp", "params": {}}},
-        "sweeps": {"lr": {"model": "mlp", "parameter": "rate", "values": [0.5, "a-b"]}},
-    }
-    assert sorted(expand_sweeps(study)["models"]) == ["mlp", "mlp_rate0p5", "mlp_ratea_b"]
+    study = StudyConfig(
+        models={"mlp": ModelConfig(family="mlp")},
+        sweeps={"lr": SweepConfig(model="mlp", parameter="rate", values=[0.5, "a-b"])},
+    )
+    expand_sweeps(study)
+    assert sorted(study.models) == ["mlp", "mlp_rate0p5", "mlp_ratea_b"]
 
 
 def test_sweep_over_an_unknown_model_names_the_sweep_and_the_models(host):
@@ -161,7 +175,7 @@ def test_target_entries_become_name_and_params():
 
 
 def test_an_order_given_by_target_is_built_and_checked_at_compose_time(host):
-    params = compose(
+    params = composed(
         host, ["+study.orders.blocks={_target_: retrograde.orders.BlockReverse, size: 2}"]
     )
     assert params["study"]["orders"]["blocks"]["name"] == "retrograde.orders.BlockReverse"
@@ -232,6 +246,21 @@ def test_bad_values_fail_before_any_work_naming_key_value_and_what_is_allowed(
     assert expected in _one_line_error(host, [override])
 
 
+@pytest.mark.parametrize(
+    ("override", "where"),
+    [
+        ("+study.models.ngram.params.ordr=2", "study.models.ngram"),
+        ("+study.orders.reverse.params.size=2", "study.orders.reverse"),
+        ("+study.sources.corpus.params.foo=1", "study.sources.corpus"),
+        ("+study.sources.corpus.tokenizer.params.foo=1", "study.sources.corpus.tokenizer"),
+        ("study.models.ngram.params.order=0", "study.models.ngram"),
+    ],
+)
+def test_an_error_names_its_config_key_once(host, override, where):
+    message = _one_line_error(host, [override])
+    assert message.startswith(f"{where}: ") and message.count(f"{where}:") == 1
+
+
 def test_source_file_outside_the_host_repository_is_refused(host):
     (host.parent / "outside.txt").write_text(CORPUS)
     message = _one_line_error(
@@ -244,10 +273,36 @@ def test_source_file_outside_the_host_repository_is_refused(host):
     assert "'../outside.txt' lies outside the host repository" in message
 
 
+@pytest.mark.parametrize(
+    ("deps", "expected"),
+    [
+        ("[data/*.txt]", "holds '*', a glob character"),
+        ("[.git/config]", "lies inside .git/"),
+        ("[data/../.dvc/config]", "lies inside .dvc/"),
+    ],
+)
+def test_declared_deps_follow_the_same_path_rules_as_found_files(host, deps, expected):
+    assert expected in _one_line_error(host, [f"study.sources.corpus.deps={deps}"])
+
+
+def test_a_device_as_a_source_is_refused(host):
+    device = host / "data" / "zero.txt"
+    try:  # the device /dev/zero is (1, 5) on Linux; making one needs CAP_MKNOD
+        os.mknod(device, 0o600 | stat.S_IFCHR, os.makedev(1, 5))
+    except PermissionError:
+        pytest.skip("making a device node needs CAP_MKNOD")
+    message = _one_line_error(
+        host,
+        ["study.sources.corpus.params.files=[data/zero.txt]", "~study.sources.corpus.deps"],
+        DataError,
+    )
+    assert "'data/zero.txt' is a character device, not a regular file" in message
+
+
 def test_missing_corpus_is_fine_when_deps_name_it_but_not_otherwise(host):
     # A host stage may write the corpus later: declared deps are enough to compose.
     (host / "data" / "corpus.txt").unlink()
-    params = compose(host)
+    params = composed(host)
     assert params["study"]["sources"]["corpus"]["deps"] == ["data/corpus.txt"]
     message = _one_line_error(host, ["study.sources.corpus.deps=null"], DataError)
     assert "list them under study.sources.corpus.deps" in message
@@ -257,7 +312,7 @@ def test_files_read_but_not_listed_as_deps_are_refused(host):
     (host / "data" / "more.txt").write_text(CORPUS)
     message = _one_line_error(host, ["study.sources.corpus.params.files=[data/*.txt]"])
     assert "reads 'data/more.txt'" in message and "deps does not list it" in message
-    params = compose(
+    params = composed(
         host, ["study.sources.corpus.params.files=[data/*.txt]", "~study.sources.corpus.deps"]
     )
     assert params["study"]["sources"]["corpus"]["deps"] == ["data/corpus.txt", "data/more.txt"]
@@ -270,9 +325,9 @@ def test_missing_config_folder_says_to_run_init(tmp_path):
 
 # ------------------------------------------------------------------------------ schemas
 def test_schema_fills_defaults_for_keys_a_config_leaves_out():
-    checked = check_schema({"study": {"orders": {"r": {"name": "reverse"}}}})
-    assert checked["study"]["orders"]["r"] == {"name": "reverse", "params": {}}
-    assert checked["stats"]["n_boot"] == 2000
+    checked = parse({"study": {"orders": {"r": {"name": "reverse"}}}})
+    assert checked.study.orders["r"].name == "reverse" and checked.study.orders["r"].params == {}
+    assert checked.stats.n_boot == 2000
 
 
 def test_register_configs_stores_the_schema_in_hydra_config_store():
@@ -288,16 +343,18 @@ def test_register_configs_stores_the_schema_in_hydra_config_store():
 def test_docstring_examples_of_the_pipeline_modules_run():
     import doctest
 
-    import retrograde.commands.run
-    import retrograde.config
-    import retrograde.stages
+    import retrograde.config._grid
+    import retrograde.config._schema
+    import retrograde.host._driver
+    import retrograde.host._plan
     import retrograde.stages.reorder
 
     for module in (
-        retrograde.config,
-        retrograde.stages,
+        retrograde.config._grid,
+        retrograde.config._schema,
         retrograde.stages.reorder,
-        retrograde.commands.run,
+        retrograde.host._driver,
+        retrograde.host._plan,
     ):
         failures, _ = doctest.testmod(module, optionflags=doctest.ELLIPSIS)
         assert failures == 0, module.__name__
@@ -312,7 +369,54 @@ SHIPPED_SOURCES = sorted(
 
 @pytest.mark.parametrize("source", SHIPPED_SOURCES)
 def test_every_shipped_source_config_composes_and_builds(host, source):
-    params = compose(host, [f"source=[{source}]"])
+    params = composed(host, [f"source=[{source}]"])
     spec = params["study"]["sources"][source]
-    assert spec["kind"] in ("file", "calibration")
-    assert (spec["kind"] == "calibration") == (spec["deps"] == [])
+    # A calibration source reads no files and cuts no units (it generates them).
+    assert (spec["calibration"] is not None) == (spec["deps"] == [])
+    assert (spec["calibration"] is None) == (spec["units"] is not None)
+
+
+# ----------------------------------------------------------- per-model seeds and sources
+def test_a_model_may_name_its_own_seeds_and_sources(host):
+    config = compose(
+        host,
+        [
+            "source=[corpus,markov]",
+            "study.seeds=[0]",
+            "+study.models.big={family: ngram, params: {order: 4}, seeds: [1, 2, 3], sources: [markov]}",
+        ],
+    )
+    cells = config.cells()
+    # ngram everywhere with the study's one seed; big on markov only, with its three.
+    assert [c for c in cells if c[1] == "ngram"] == [
+        (s, "ngram", o, 0) for s in ("corpus", "markov") for o in ("forward", "reverse")
+    ]
+    assert [c for c in cells if c[1] == "big"] == [
+        ("markov", "big", o, seed) for o in ("forward", "reverse") for seed in (1, 2, 3)
+    ]
+    assert config.study.models_on("corpus") == ["ngram"]
+
+
+@pytest.mark.parametrize(
+    ("override", "expected"),
+    [
+        (
+            "+study.models.big={family: ngram, sources: [markof]}",
+            "names 'markof', which is not a source (did you mean 'markov'?)",
+        ),
+        (
+            "+study.models.big={family: ngram, seeds: [1, 1]}",
+            "study.models.big: parameter seeds=[1, 1] is invalid",
+        ),
+        ("+study.models.big={family: ngram, sources: []}", "sources=[] is invalid"),
+    ],
+)
+def test_bad_model_seeds_or_sources_fail_in_one_line(host, override, expected):
+    assert expected in _one_line_error(host, ["source=[corpus,markov]", override])
+
+
+def test_a_source_no_model_fits_is_refused(host):
+    message = _one_line_error(
+        host, ["source=[corpus,markov]", "+study.models.ngram.sources=[corpus]"]
+    )
+    assert "study.sources.markov is fitted by no model" in message

@@ -60,7 +60,10 @@ def test_sparse_linear_map_is_harder_backwards_for_the_mlp(demo):
 
 def test_demo_writes_report_and_plots(demo):
     pipeline = demo / "pipelines/retrograde"
-    assert "cautions" in (pipeline / "report.md").read_text().lower()
+    report = (pipeline / "report.md").read_text()
+    assert "cautions" in report.lower() and "## Data and budget" in report
+    # the per-seed CSV: one row per fit cell (4 sources x 2 models x 3 orders x 3 seeds)
+    assert len((pipeline / "cells.csv").read_text().splitlines()) == 1 + 72
     for name in ("gaps.png", "learning_curves.png", "position_profile.png"):
         assert (pipeline / "plots" / name).stat().st_size > 0
 

@@ -1,7 +1,7 @@
 """Every registered family honours the contract in families/_base.py.
 
 Families are found through ``families.names()``, so a new family is checked without editing
-this file. Each family class may declare ``_test_params`` (small, fast keyword parameters
+this file. Each family class may declare ``example_params`` (small, fast keyword parameters
 for this test); the ``command`` family gets the example trainer in ``examples/``. A family
 whose construction raises ``MissingDependencyError`` (the torch families without torch) is
 skipped with that reason.
@@ -44,7 +44,7 @@ TRAIN, VALID, TEST = random_units(60, 1), random_units(12, 2), random_units(10, 
 
 
 def build(name):
-    params = {**getattr(registry.get(name), "_test_params", {}), **EXTRA_PARAMS.get(name, {})}
+    params = {**getattr(registry.get(name), "example_params", {}), **EXTRA_PARAMS.get(name, {})}
     try:
         return make(name, **params)
     except MissingDependencyError as exc:
@@ -73,7 +73,7 @@ def test_full_distributions_sum_to_one_over_tokens_and_the_end_marker(fitted):
 def test_every_family_passes_the_normalization_probe_the_fit_stage_applies(fitted):
     # The same check refuses a cell in the pipeline (families/_probe.py): full
     # distributions at sampled test positions sum to 1 and agree with logprobs.
-    from retrograde.families._probe import check_probe, probe_positions
+    from retrograde.families import check_probe, probe_positions
 
     name, model = fitted
     values = model.logprobs(TEST).values

@@ -11,7 +11,7 @@ import pytest
 
 from _host_fixtures import DVC, dvc_events, new_host, new_pipeline_host, sh, snapshot
 from retrograde.cli import main
-from retrograde.hostcheck import format_host_check
+from retrograde.host import format_host_check
 
 pytestmark = pytest.mark.dvc
 
@@ -31,13 +31,32 @@ def test_before_any_run_every_cell_is_to_run_and_every_order_round_trips(tmp_pat
     assert (status, err) == (0, "")
     report = json.loads(out)
     assert report["grid"]["cells"] == 4
-    assert report["cells"] == {"to_run": FITS, "up_to_date": []}
+    assert report["cells"] == {"to_run": FITS, "up_to_date": [], "stale_inputs": {}}
+    # init wrote the default config's files; the smoke study changes only the params
+    assert report["written"] == ["pipelines/retrograde/params.yaml"]
     corpus = report["round_trip"]["corpus"]
     assert corpus["orders"] == ["forward", "reverse"] and corpus["units"] > 0
     # The check brought params.yaml up to date the way `run` does: DVC itself now lists the
     # same fit stages (outside reference: `dvc stage list`).
     listed = sh([*DVC, "stage", "list", "--name-only", "pipelines/retrograde/dvc.yaml"], host)
     assert [n.split(":", 1)[1] for n in listed.split() if ":fit@" in n] == FITS
+
+
+def test_check_says_which_tracked_files_it_rewrote_and_only_when_it_did(tmp_path, capsys):
+    host = new_pipeline_host(tmp_path / "host")
+    status, out, _ = _check(capsys, "--dir", str(host), SMOKE)
+    assert status == 0
+    written = "pipelines/retrograde/params.yaml"  # init wrote the stage file for this grid
+    assert f"wrote {written}: brought up to date from the config" in out
+    sh(["git", "add", "-A"], host)
+    sh(["git", "commit", "-q", "-m", "composed"], host)
+    status, out, _ = _check(capsys, "--dir", str(host), SMOKE)
+    assert status == 0 and "wrote" not in out  # nothing changed, nothing written or said
+    assert sh(["git", "status", "--porcelain"], host) == ""
+    status, out, _ = _check(capsys, "--dir", str(host), SMOKE, "study.seeds=[4]")
+    assert "wrote pipelines/retrograde/params.yaml:" in out
+    changed = sh(["git", "status", "--porcelain"], host).split()
+    assert changed == ["M", "pipelines/retrograde/params.yaml"]
 
 
 @pytest.mark.slow
@@ -119,3 +138,35 @@ def test_the_text_report_lists_cells_to_run():
         }
     )
     assert text.splitlines()[-2:] == ["cells: 1 up to date, 1 to run", "  to run: fit@s-m-f-1"]
+
+
+PREPARE = """\
+import pathlib
+text = "{text}"
+pathlib.Path("data").mkdir(exist_ok=True)
+pathlib.Path("data/corpus.txt").write_text("\\n".join(f"{{text}} {{i}}" for i in range(200)) + "\\n")
+"""
+
+
+@pytest.mark.slow
+def test_a_changed_host_stage_upstream_of_a_source_puts_its_cells_to_run(tmp_path, capsys):
+    # Outside reference: `dvc status` itself reports the host's edited stage as changed.
+    host = new_host(tmp_path / "host")
+    (host / "prepare.py").write_text(PREPARE.format(text="the lamp is lit"))
+    (host / "dvc.yaml").write_text(
+        "stages:\n  prepare:\n    cmd: python prepare.py\n    deps: [prepare.py]\n"
+        "    outs: [data/corpus.txt]\n"
+    )
+    sh([*DVC, "repro", "prepare"], host)
+    with contextlib.redirect_stdout(io.StringIO()):
+        assert main(["init", "--dir", str(host), "--source", str(host / "data/corpus.txt")]) == 0
+    with contextlib.redirect_stderr(io.StringIO()), contextlib.redirect_stdout(io.StringIO()):
+        assert main(["run", "--dir", str(host), SMOKE]) == 0
+    (host / "prepare.py").write_text(PREPARE.format(text="the pump is off"))
+    assert "prepare" in sh([*DVC, "status", "prepare"], host)
+    status, out, _ = _check(capsys, "--dir", str(host), "--json", SMOKE)
+    cells = json.loads(out)["cells"]
+    assert status == 0 and cells["to_run"] == FITS and cells["up_to_date"] == []
+    assert cells["stale_inputs"] == {"corpus": ["prepare"]}
+    text = format_host_check(json.loads(out))
+    assert "stage(s) prepare must remake first" in text

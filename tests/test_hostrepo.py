@@ -9,7 +9,7 @@ import pytest
 
 from _host_fixtures import DVC, dvc_init, git_init, new_host, sh
 from retrograde.errors import HostRepoError
-from retrograde.hostrepo import (
+from retrograde.host import (
     HostRepo,
     find_host,
     git_toplevel,
@@ -104,6 +104,17 @@ def test_arguments_never_pass_through_a_shell(tmp_path):
     )
     assert result.stdout == "x; touch pwned\n"
     assert not (tmp_path / "pwned").exists()
+
+
+def test_a_command_log_that_is_a_symlink_out_of_the_repository_is_replaced(tmp_path):
+    outside = tmp_path / "outside.txt"
+    outside.write_text("precious\n")
+    log = tmp_path / "repo" / "logs" / "stage.log"
+    log.parent.mkdir(parents=True)
+    log.symlink_to(outside)
+    run_tool([sys.executable, "-c", "print('hi')"], cwd=tmp_path, log_path=log)
+    assert outside.read_text() == "precious\n"
+    assert not log.is_symlink() and log.read_text().endswith("hi\n")
 
 
 def test_a_missing_program_is_one_line_saying_to_install_it(tmp_path):

@@ -15,7 +15,8 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from _kn_reference import ReferenceKneserNey, grams
-from retrograde import SequenceSet, sequences
+from retrograde import SequenceSet
+from retrograde.data import _sequences
 from retrograde.families import make
 
 
@@ -94,7 +95,7 @@ def test_the_int64_index_path_gives_the_same_scores_as_the_int32_path(monkeypatc
     rng = np.random.default_rng(5)
     units = SequenceSet.from_list(mixed_units(rng, 70_000, 3_000, every_id=True), vocab_size=70_000)
     small = make("ngram", order=3).fit(units).logprobs(units).values
-    monkeypatch.setattr(sequences, "INT32_LIMIT", 64)
+    monkeypatch.setattr(_sequences, "INT32_LIMIT", 64)
     wide = make("ngram", order=3).fit(units).logprobs(units).values
     np.testing.assert_array_equal(wide, small)
 

@@ -12,7 +12,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from retrograde import sequences
+from retrograde.data import _sequences
 from retrograde.families import _ngram_counts, _packed_sort
 from retrograde.families._packed_sort import (
     index_bits,
@@ -145,7 +145,7 @@ def test_rank_keys_gives_numpy_unique_on_every_path(path, raw):
 
 def test_rank_keys_ids_widen_past_int32_positions(monkeypatch):
     # Sets of 2**31 keys and more take int64 ids; lowering the limit runs that path.
-    monkeypatch.setattr(sequences, "INT32_LIMIT", 8)
+    monkeypatch.setattr(_sequences, "INT32_LIMIT", 8)
     keys = np.array([7, 3, 7, 2**45, 3, 0, 0, 1, 2, 2**45], dtype=np.int64)
     ids, distinct = packed_rank(keys, 2**46)
     assert ids.dtype == np.int64

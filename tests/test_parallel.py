@@ -12,8 +12,9 @@ import yaml
 
 from _host_fixtures import DVC, new_host, new_pipeline_host, sh
 from retrograde.cli import main
+from retrograde.config import LOG_DIR
 from retrograde.errors import ConfigError, FitError
-from retrograde.parallel import LOG_DIR, log_path_for, order_lock_entries, run_stages_in_parallel
+from retrograde.host import log_path_for, order_lock_entries, run_stages_in_parallel
 
 pytestmark = pytest.mark.dvc
 
@@ -64,6 +65,24 @@ def _max_overlap(trace: Path) -> int:
 
 
 @pytest.mark.slow
+def test_run_replaces_symlinked_logs_instead_of_writing_through_them(tmp_path):
+    host = new_pipeline_host(tmp_path / "host")
+    outside = tmp_path / "outside.txt"
+    outside.write_text("precious\n")
+    logs = host / LOG_DIR
+    logs.mkdir(parents=True, exist_ok=True)  # init made it (its lock file)
+    cell = "fit@corpus-ngram-reverse-0"
+    for name in ("run.log", f"{cell}.log"):
+        (logs / name).symlink_to(outside)
+    with contextlib.redirect_stdout(io.StringIO()), contextlib.redirect_stderr(io.StringIO()):
+        status = main(["run", "--dir", str(host), "--jobs", "2", "study=smoke", "study.seeds=[0]"])
+    assert status == 0
+    assert outside.read_text() == "precious\n"
+    for name in ("run.log", f"{cell}.log"):
+        assert not (logs / name).is_symlink() and (logs / name).read_text()
+
+
+@pytest.mark.slow
 def test_two_jobs_run_every_stage_two_at_a_time_and_dvc_records_all(tmp_path):
     host = _host_with_stages(tmp_path / "host")
     run_stages_in_parallel(host, CELLS, jobs=2)
@@ -91,13 +110,45 @@ def test_run_with_two_jobs_writes_byte_identical_metrics_to_one_job(tmp_path):
     }
     assert metrics[1] == metrics[2]
     locks = {
-        jobs: (host / "pipelines/retrograde/dvc.lock").read_bytes() for jobs, host in hosts.items()
+        jobs: _without_measured((host / "pipelines/retrograde/dvc.lock").read_text())
+        for jobs, host in hosts.items()
     }
     assert locks[1] == locks[2]  # same hashes and, after order_lock_entries, same layout
+    # Every file of every cell is the same too, except the measured times of budget.json
+    # (which DVC hashes with the cell: the lines compared above leave those hashes out) and
+    # DVC's own .gitignore lines (in the order the stages finished).
+    for jobs in (1, 2):
+        cells = hosts[jobs] / "pipelines/retrograde/cells"
+        files = sorted(
+            p.relative_to(cells)
+            for p in cells.rglob("*")
+            if p.is_file() and p.name not in ("budget.json", ".gitignore")
+        )
+        if jobs == 1:
+            first = {f: (cells / f).read_bytes() for f in files}
+        else:
+            assert {f: (cells / f).read_bytes() for f in files} == first
     assert b'"reverse"' in metrics[1]  # the table really holds the smoke grid's cells
     # The two-job run went through the parallel path: one log per fit stage.
     logs = sorted(p.name for p in (hosts[2] / LOG_DIR).glob("fit@*.log"))
     assert logs == [f"fit@corpus-ngram-{o}-{s}.log" for o in ("forward", "reverse") for s in (0, 1)]
+
+
+def _without_measured(lock: str) -> str:
+    """``dvc.lock`` without the hashes of what holds measured times (a cell's budget.json
+    and the table's cells.csv): the cell folders (as outs, and as the table's deps)."""
+    lines = lock.splitlines()
+    kept, skip = [], False
+    for line in lines:
+        stripped = line.strip()
+        if stripped.startswith("- path:"):
+            path = stripped.split(":", 1)[1].strip()
+            skip = path.startswith("cells") or path == "cells.csv"
+        elif not stripped.startswith(("md5:", "size:", "nfiles:", "hash:")):
+            skip = False
+        if not (skip and stripped.startswith(("md5:", "size:", "nfiles:"))):
+            kept.append(line)
+    return "\n".join(kept)
 
 
 @pytest.mark.slow

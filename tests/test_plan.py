@@ -11,8 +11,8 @@ from hypothesis import strategies as st
 
 from _host_fixtures import new_host, new_pipeline_host, snapshot
 from retrograde.cli import main
-from retrograde.commands.plan import parse_shard, shard_of
 from retrograde.errors import ConfigError
+from retrograde.host import parse_shard, shard_of
 
 SMOKE = ["study=smoke"]  # one source, one model, two orders, two seeds: 4 fit stages
 TARGET = "pipelines/retrograde/dvc.yaml:"

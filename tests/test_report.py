@@ -18,6 +18,7 @@ from retrograde.stats import (
     adjust_holm,
     position_profile,
     seed_warning,
+    simultaneous_intervals,
     span_breakdown,
     summarize_model,
 )
@@ -28,7 +29,7 @@ ORDERS = ("forward", "reverse", "block_reverse")
 def build_run(n_seeds: int = 3, seed: int = 0) -> dict:
     """The inputs a table stage passes to write_all, built from simulated losses."""
     rng = np.random.default_rng(seed)
-    table, profiles, spans, curves = {}, {}, {}, {}
+    table, profiles, spans, curves, draws = {}, {}, {}, {}, {}
     for source in ("demo", "markov"):
         table[source], profiles[source], curves[source] = {}, {}, {}
         for model, factor in (("ngram_n2", 1.05), ("ngram_n3", 1.02)):
@@ -38,8 +39,10 @@ def build_run(n_seeds: int = 3, seed: int = 0) -> dict:
                 "reverse": base * factor + rng.normal(0.0, 1.0, size=base.shape),
                 "block_reverse": base + rng.normal(0.0, 1.0, size=base.shape),
             }
+            draws.setdefault(source, {})[model] = {}
             table[source][model] = summarize_model(
                 losses,
+                bootstrap_gaps=draws[source][model],
                 reference_order="forward",
                 n_tokens=np.full(60, 12),
                 n_bytes=np.full(60, 15) if source == "demo" else None,
@@ -63,6 +66,7 @@ def build_run(n_seeds: int = 3, seed: int = 0) -> dict:
                 for o in ORDERS
             }
     adjust_holm(table)
+    simultaneous_intervals(table, draws)
     warning = seed_warning(n_seeds)
     return {
         "table": table,

@@ -106,7 +106,7 @@ def test_each_change_of_code_reruns_exactly_the_cells_it_can_change(host, monkey
     trainer.write_text(trainer.read_text() + "\n# tuned\n")
     assert _run(host) == _cells("trainer")
     # 4. A new package version: every cell.
-    import retrograde._plugin_checks
+    import retrograde.config._plugins
 
-    monkeypatch.setattr(retrograde._plugin_checks, "__version__", "99.0.0")
+    monkeypatch.setattr(retrograde.config._plugins, "__version__", "99.0.0")
     assert _run(host) == _cells("builtin") | _cells("plugged") | _cells("trainer")

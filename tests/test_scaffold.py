@@ -13,8 +13,15 @@ import yaml
 
 from _host_fixtures import DVC, dvc_events, new_host, sh, snapshot
 from retrograde.cli import main
-from retrograde.hostrepo import find_host
-from retrograde.scaffold import IGNORE_RULES, install, planned_files, source_config
+from retrograde.config import compose
+from retrograde.host import (
+    IGNORE_RULES,
+    find_host,
+    install,
+    planned_files,
+    render_dvc_yaml,
+    source_config,
+)
 from retrograde.sources.demo import write_corpus
 
 pytestmark = pytest.mark.dvc
@@ -60,15 +67,33 @@ def test_init_writes_only_conf_and_pipeline_folders_and_prints_the_next_command(
     assert (host / "conf/retrograde/config.yaml").read_bytes() == (
         package_conf / "config.yaml"
     ).read_bytes()
-    template = resources.files("retrograde") / "templates" / "dvc.yaml"
-    assert (host / "pipelines/retrograde/dvc.yaml").read_bytes() == template.read_bytes()
+    template = (resources.files("retrograde") / "templates" / "dvc.yaml").read_text()
+    installed = (host / "pipelines/retrograde/dvc.yaml").read_text()
+    # The template, with the units block `run` owns filled in for the default config.
+    assert installed == render_dvc_yaml(template, compose(host))
     assert f"cd {host.resolve()} && git add conf/retrograde pipelines/retrograde" in out
     assert out.rstrip().endswith("retrograde run")
+
+
+def test_the_commit_that_adopts_retrograde_leaves_every_dvc_command_working(host, capsys):
+    # A teammate who checks out the adoption commit (before any `retrograde run`) keeps
+    # their own pipeline: DVC parses the stage file, whose matrix needs params.yaml.
+    assert _init(capsys)[0] == 0
+    sh(["git", "add", "-A"], host)
+    sh(["git", "commit", "-q", "-m", "Add order-ablation stages"], host)
+    (host / "prepare.py").write_text("import os\nos.makedirs('data/prepared', exist_ok=True)\n")
+    for argv in (["status"], ["dag"], ["stage", "list", "--all"], ["repro", "prepare"]):
+        result = subprocess.run([*DVC, *argv], cwd=host, capture_output=True, text=True)
+        assert result.returncode == 0, (argv, result.stderr)
+    listed = sh([*DVC, "stage", "list", "--all"], host)
+    assert "fit@corpus-ngram-reverse-2" in listed and "prepare" in listed
 
 
 def test_installed_files_are_what_planned_files_lists(host, capsys):
     _init(capsys)
     for relative, content in planned_files().items():
+        if relative.name == "dvc.yaml":  # its units block is filled in (test above)
+            continue
         assert (host / relative).read_bytes() == content
 
 
@@ -121,13 +146,81 @@ def test_a_changed_file_stops_init_before_anything_is_written(host, capsys):
     assert snapshot(host) == before
 
 
-def test_force_overwrites_changed_files_with_the_packaged_ones(host, capsys):
+def test_force_keeps_changed_config_files_committed_or_not_and_installs_the_rest(host, capsys):
     _init(capsys)
     study = host / "conf/retrograde/study/default.yaml"
-    study.write_text("# mine\n")
+    study.write_text(study.read_text() + "# my committed edit\n")
+    sh(["git", "add", "-A"], host)
+    sh(["git", "commit", "-q", "-m", "adopt retrograde"], host)
+    stats = host / "conf/retrograde/stats/default.yaml"
+    stats.write_text(stats.read_text() + "# my uncommitted edit\n")
+    (host / "conf/retrograde/config.yaml").unlink()
+    edits = {path: path.read_bytes() for path in (study, stats)}
+    status, out, err = _init(capsys, "--force")
+    assert (status, err) == (0, "")
+    assert {path: path.read_bytes() for path in edits} == edits
+    assert "kept 2 changed config file(s)" in out
+    assert (
+        "conf/retrograde/study/default.yaml" in out and "conf/retrograde/stats/default.yaml" in out
+    )
+    packaged = planned_files()[Path("conf/retrograde/config.yaml")]
+    assert (host / "conf/retrograde/config.yaml").read_bytes() == packaged
+
+
+def _edit_stage_file_outside_the_units_block(host: Path) -> Path:
+    stage_file = host / "pipelines/retrograde/dvc.yaml"
+    stage_file.write_text(stage_file.read_text().replace("# <<< units stages <<<", "# mine"))
+    return stage_file
+
+
+def test_force_refuses_to_replace_a_stage_file_whose_edits_git_does_not_hold(host, capsys):
+    _init(capsys)
+    _edit_stage_file_outside_the_units_block(host)
+    before = snapshot(host)
+    status, out, err = _init(capsys, "--force")
+    assert status == 2 and out == "" and err.count("\n") == 1
+    assert "pipelines/retrograde/dvc.yaml has edits git has not committed" in err
+    assert "nothing was written" in err and snapshot(host) == before
+
+
+def test_the_missing_markers_advice_repairs_the_stage_file_and_keeps_the_config(host, capsys):
+    # Follow the error's advice word for word: commit, then `init --force`.
+    _init(capsys)
+    study = host / "conf/retrograde/study/default.yaml"
+    study.write_text(study.read_text().replace("seeds: [0, 1, 2]", "seeds: [5]"))
+    edited = study.read_bytes()
+    _edit_stage_file_outside_the_units_block(host)
+    status, _, err = _init(capsys, "--force")
+    assert status == 2  # uncommitted: refused
+    assert main(["run", "--dry"]) == 2
+    err = capsys.readouterr().err
+    assert "has no units markers; commit it (or move it away)" in err
+    assert "`retrograde init --force`, which keeps every changed file in conf/retrograde/" in err
+    sh(["git", "add", "pipelines/retrograde/dvc.yaml"], host)
+    sh(["git", "commit", "-q", "-m", "my stage file"], host)
     status, out, _ = _init(capsys, "--force")
-    assert status == 0 and "conf/retrograde/study/default.yaml" in out
-    assert study.read_bytes() == planned_files()[Path("conf/retrograde/study/default.yaml")]
+    assert status == 0 and "pipelines/retrograde/dvc.yaml" in out
+    repaired = (host / "pipelines/retrograde/dvc.yaml").read_text()
+    # the packaged stage file again (with init's units block for the current config)
+    assert "# mine" not in repaired and "# <<< units stages <<<" in repaired
+    template = planned_files()[Path("pipelines/retrograde/dvc.yaml")].decode()
+    assert repaired.splitlines()[:5] == template.splitlines()[:5]
+    assert study.read_bytes() == edited
+    assert main(["run", "--dry"]) == 0
+    assert "fit@corpus-ngram-reverse-5" in capsys.readouterr().out
+
+
+@pytest.mark.parametrize("force", [[], ["--force"]])
+def test_source_with_a_changed_corpus_config_is_refused_even_with_force(host, capsys, force):
+    _init(capsys)
+    corpus = host / "conf/retrograde/source/corpus.yaml"
+    corpus.write_text(corpus.read_text() + "# mine\n")
+    before = snapshot(host)
+    status, _, err = _init(capsys, *force, "--source", "data/corpus.txt")
+    assert status == 2 and err.count("\n") == 1
+    assert "conf/retrograde/source/corpus.yaml already exists" in err
+    assert "init never overwrites your config (not even with --force)" in err
+    assert snapshot(host) == before
 
 
 def test_the_units_block_written_by_run_does_not_count_as_a_change(host, capsys):
@@ -138,9 +231,9 @@ def test_the_units_block_written_by_run_does_not_count_as_a_change(host, capsys)
     end = text.index("\n", start) + 1
     units = "  units:\n    matrix: {source: [corpus]}\n    cmd: python -m retrograde.stages.units\n"
     stage_file.write_text(text[:end] + units + text[end:])
-    before = snapshot(host)
+    # No "already exists with other content": the block is rewritten as `run` writes it.
     assert _init(capsys)[0] == 0
-    assert snapshot(host) == before
+    assert stage_file.read_text() == text
 
 
 def test_ignore_rules_merge_with_lines_dvc_appended(host, capsys):

@@ -8,7 +8,7 @@ import scipy.stats
 
 from retrograde import Ragged, SequenceSet
 from retrograde.errors import DataError
-from retrograde.scoring import bits_per_byte, bits_per_token, natural_order_losses, unit_nll
+from retrograde.stats import bits_per_byte, bits_per_token, natural_order_losses, unit_nll
 
 
 def test_unit_nll_is_minus_the_row_sum_end_marker_included():
@@ -119,7 +119,7 @@ def test_every_built_in_order_maps_each_loss_back_to_the_token_it_scored(name, p
 def test_docstring_examples_run():
     import doctest
 
-    import retrograde.scoring
+    import retrograde.stats._scoring
 
-    result = doctest.testmod(retrograde.scoring)
+    result = doctest.testmod(retrograde.stats._scoring)
     assert result.attempted > 0 and result.failed == 0

@@ -61,7 +61,7 @@ def test_ragged_sums_positions_and_row_ids():
 
 
 def test_write_npz_is_byte_identical_and_loads_without_pickle(tmp_path):
-    from retrograde._io import write_npz
+    from retrograde.data import write_npz
 
     arrays = {"b": np.arange(3), "a": np.ones((2, 2))}
     write_npz(tmp_path / "one.npz", arrays)
@@ -75,7 +75,7 @@ def test_atomic_writes_give_ordinary_permissions(tmp_path):
     import os
     import stat
 
-    from retrograde._io import atomic_dir, atomic_write_text
+    from retrograde.data import atomic_dir, atomic_write_text
 
     mask = os.umask(0o022)
     try:

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from retrograde import families, orders, sources
-from retrograde.scoring import unit_nll
+from retrograde.stats import unit_nll
 
 
 def _excess(source, order_name, train, test):

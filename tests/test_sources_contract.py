@@ -10,7 +10,7 @@ import pytest
 
 import retrograde.sources
 from retrograde import SequenceSet
-from retrograde._document import Document
+from retrograde.data import Document
 from retrograde.errors import ConfigError
 from retrograde.sources import CalibrationSource, FileSource, make, names, registry
 

@@ -13,9 +13,9 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from retrograde import SequenceSet
+from retrograde.data import prepare_units
 from retrograde.errors import ConfigError, DataError
 from retrograde.sources import make
-from retrograde.units import prepare_units
 
 
 def _texts(source):
@@ -34,6 +34,41 @@ def test_text_with_crlf_line_endings_reads_like_lf(tmp_path):
         assert all("\r" not in d.text for d in crlf)
     paragraphs = make("text", files=str(tmp_path / "crlf.txt"), split="paragraph")
     assert _texts(paragraphs) == ["alpha beta\ngamma", "delta"]
+
+
+@pytest.mark.parametrize(
+    ("name", "params"),
+    [
+        ("text", {"split": "file"}),
+        ("text", {"split": "paragraph"}),
+        ("text", {"split": "line"}),
+        ("text", {"split": "line", "errors": "replace"}),
+        ("jsonl", {}),
+        ("fasta", {}),
+    ],
+)
+def test_lone_carriage_returns_are_refused_naming_file_line_and_offset(tmp_path, name, params):
+    # Old Mac line ends: read as LF files, the three lines would merge into one.
+    body = {
+        "text": b"first\r\nsecond\rthird\r",
+        "jsonl": b'{"text": "a"}\r\n{"text": "b"}\r{"text": "c"}\r',
+        "fasta": b">r1\r\nAC\rGT\r",
+    }[name]
+    path = tmp_path / "old-mac.txt"
+    path.write_bytes(body)
+    offset = body.index(b"\r", body.index(b"\n"))
+    with pytest.raises(DataError) as info:
+        list(make(name, files=str(path), **params).documents())
+    message = str(info.value)
+    assert message.startswith(f"{path}:2: carriage return without a line feed")
+    assert f"at byte offset {offset} of the file" in message and "convert the line ends" in message
+
+
+def test_a_carriage_return_as_the_last_byte_ends_the_last_line(tmp_path):
+    (tmp_path / "a.txt").write_bytes(b"one\r\ntwo\r")
+    for split in ("file", "line"):
+        texts = _texts(make("text", files=str(tmp_path / "a.txt"), split=split))
+        assert texts == (["one\ntwo\n"] if split == "file" else ["one", "two"])
 
 
 def test_text_splits_by_file_paragraph_or_line_with_byte_counts(tmp_path):

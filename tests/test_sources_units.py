@@ -1,11 +1,11 @@
-"""File sources feed ``retrograde.units.prepare_units`` (the next stage) unchanged."""
+"""File sources feed ``retrograde.data.prepare_units`` (the next stage) unchanged."""
 
 import numpy as np
 
 from retrograde import SequenceSet
+from retrograde.data import prepare_units
+from retrograde.data.tokenizers import make as make_tokenizer
 from retrograde.sources import make
-from retrograde.tokenize import make as make_tokenizer
-from retrograde.units import prepare_units
 
 
 def test_demo_entries_become_document_units_with_the_same_byte_counts():

@@ -13,12 +13,12 @@ import pytest
 import yaml
 
 from retrograde import families, sources
-from retrograde.config import compose
+from retrograde.config import ModelConfig, RetrogradeConfig, compose, from_dict, load_params
+from retrograde.data import Ragged, SequenceSet
 from retrograde.errors import FitError, HostRepoError
 from retrograde.families._base import Family
+from retrograde.host import UNITS_BEGIN, UNITS_END, render_dvc_yaml
 from retrograde.orders import Order
-from retrograde.sequences import Ragged, SequenceSet
-from retrograde.stages import UNITS_BEGIN, UNITS_END, render_dvc_yaml
 from retrograde.stages import fit as fit_stage
 from retrograde.stages import reorder as reorder_stage
 from retrograde.stages import table as table_stage
@@ -61,8 +61,9 @@ def _host(root: Path, overrides: list[str]) -> Path:
     return wdir
 
 
-def _write_params(wdir: Path, params: dict) -> None:
-    (wdir / "params.yaml").write_text(yaml.safe_dump(params, sort_keys=False))
+def _write_params(wdir: Path, params) -> None:
+    plain = params if isinstance(params, dict) else params.to_dict()
+    (wdir / "params.yaml").write_text(yaml.safe_dump(plain, sort_keys=False))
 
 
 def _params(wdir: Path) -> dict:
@@ -212,7 +213,7 @@ def test_fit_cell_returns_a_json_ready_learning_curve_for_an_epoch_based_family(
         return SequenceSet.from_list(rows, vocab_size=5)
 
     splits = {"train": units(60), "valid": units(10), "test": units(10)}
-    spec = {"family": "mlp", "params": {"window": 2, "hidden": 8, "epochs": 2}}
+    spec = ModelConfig(family="mlp", params={"window": 2, "hidden": 8, "epochs": 2})
     _, values, curve = fit_cell(spec, splits, seed=0)
     assert [epoch["epoch"] for epoch in curve] == [1, 2]
     assert json.loads(json.dumps(curve)) == curve  # plain numbers only
@@ -228,7 +229,7 @@ def test_fit_cell_runs_a_command_trainer_once_per_cell(tmp_path):
         name: SequenceSet.from_list(rows, vocab_size=3) for name in ("train", "valid", "test")
     }
     _, values, curve = fit_cell(
-        {"family": "command", "params": {"command": command}}, splits, seed=0
+        ModelConfig(family="command", params={"command": command}), splits, seed=0
     )
     assert runs.read_text().splitlines() == ["run"]
     assert values.shape == (9 + 3,) and len(curve) == 1
@@ -250,6 +251,38 @@ def test_fit_crash_names_the_cell_and_keeps_its_log(pipeline, tmp_path, capsys):
     assert "Traceback" in (wdir / "cells/corpus/boom/reverse/seed0/fit.log").read_text()
     assert not (wdir / "cells/corpus/boom/reverse/seed0/test_logprobs.npy").exists()
     assert FitError.exit_status == status
+
+
+def _fit_copy(pipeline: Path, wdir: Path, seed: str = "0") -> int:
+    """Run one fit stage on a copy of the pipeline folder's data and params."""
+    shutil.copytree(pipeline / "data", wdir / "data")
+    _write_params(wdir, _params(pipeline))
+    argv = ["--source", "corpus", "--model", "ngram", "--order", "reverse", "--seed", seed]
+    return fit_stage.main(["--params", str(wdir), *argv])
+
+
+def test_fit_log_that_is_a_symlink_out_of_the_repository_is_replaced_not_written_through(
+    pipeline, tmp_path
+):
+    outside = tmp_path / "outside.txt"
+    outside.write_text("precious\n")
+    cell = tmp_path / "wdir/cells/corpus/ngram/reverse/seed0"
+    cell.mkdir(parents=True)
+    (cell / "fit.log").symlink_to(outside)
+    assert _fit_copy(pipeline, tmp_path / "wdir") == 0
+    assert outside.read_text() == "precious\n"
+    assert not (cell / "fit.log").is_symlink() and "seed=0" in (cell / "fit.log").read_text()
+
+
+def test_a_cell_folder_that_is_a_symlink_out_of_the_pipeline_is_refused(pipeline, tmp_path, capsys):
+    outside = tmp_path / "elsewhere"
+    outside.mkdir()
+    (tmp_path / "wdir/cells/corpus/ngram/reverse").mkdir(parents=True)
+    (tmp_path / "wdir/cells/corpus/ngram/reverse/seed0").symlink_to(outside)
+    assert _fit_copy(pipeline, tmp_path / "wdir") == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "leads outside" in err and "symbolic link" in err
+    assert list(outside.iterdir()) == []
 
 
 # --------------------------------------------------------------------------------- table
@@ -323,7 +356,7 @@ TEMPLATE = (resources.files("retrograde") / "templates" / "dvc.yaml").read_text(
 
 def test_render_writes_one_units_stage_per_source_with_its_files_as_deps(tmp_path):
     wdir = _host(tmp_path / "host", ["source=[corpus,markov]"])
-    text = render_dvc_yaml(TEMPLATE, _params(wdir))
+    text = render_dvc_yaml(TEMPLATE, load_params(wdir))
     stages = yaml.safe_load(text)["stages"]  # PyYAML is the reference parser here
     assert stages["units_corpus"] == {
         "cmd": "python -m retrograde.stages.units --source corpus",
@@ -333,25 +366,27 @@ def test_render_writes_one_units_stage_per_source_with_its_files_as_deps(tmp_pat
     }
     assert "deps" not in stages["units_markov"]
     assert {"reorder", "fit", "table"} <= set(stages)
-    assert render_dvc_yaml(text, _params(wdir)) == text  # idempotent
+    assert render_dvc_yaml(text, load_params(wdir)) == text  # idempotent
     assert UNITS_BEGIN in text and UNITS_END in text
 
 
 def test_render_quotes_dependency_paths_yaml_would_misread():
-    params = {"study": {"sources": {"c": {"deps": ["data/my corpus: v2.txt"]}}}}
-    stages = yaml.safe_load(render_dvc_yaml(TEMPLATE, params))["stages"]
+    config = from_dict(
+        RetrogradeConfig, {"study": {"sources": {"c": {"deps": ["data/my corpus: v2.txt"]}}}}
+    )
+    stages = yaml.safe_load(render_dvc_yaml(TEMPLATE, config))["stages"]
     assert stages["units_c"]["deps"] == ["../../data/my corpus: v2.txt"]
 
 
 def test_render_refuses_a_stage_file_without_markers():
     with pytest.raises(HostRepoError, match="retrograde init --force"):
-        render_dvc_yaml("stages: {}\n", {"study": {"sources": {}}})
+        render_dvc_yaml("stages: {}\n", RetrogradeConfig())
 
 
 # ---------------------------------------------------------------- failures seen by `run`
 def test_run_turns_a_failed_fit_stage_into_the_stages_own_line(tmp_path):
-    from retrograde.commands.run import _raise_failure, parse_repro_line
-    from retrograde.hostrepo import HostRepo
+    from retrograde.host import HostRepo, parse_repro_line
+    from retrograde.host._driver import _raise_failure
 
     output = (
         "Running stage 'pipelines/retrograde/dvc.yaml:fit@c-m-reverse-0':\n"
@@ -424,3 +459,68 @@ def test_table_refuses_a_cell_that_scores_below_the_exact_floor(tmp_path, capsys
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1
     assert "cell markov/ngram/reverse/seed0 scores" in err[0] and "below the exact floor" in err[0]
+
+
+def test_table_reads_each_models_own_seeds_and_sources(tmp_path):
+    wdir = _host(
+        tmp_path / "host",
+        [
+            "source=[corpus,markov]",
+            "study=smoke",
+            "study.models.ngram.params.order=2",
+            "study.sources.markov.calibration.n_units=60",
+            "+study.models.one={family: ngram, params: {order: 1}, seeds: [5], sources: [markov]}",
+            "stats.n_boot=50",
+        ],
+    )
+    config = load_params(wdir)
+    for source in ("corpus", "markov"):
+        assert units_stage.main(["--params", str(wdir), "--source", source]) == 0
+        for order in ("forward", "reverse"):
+            argv = ["--params", str(wdir), "--source", source, "--order", order]
+            assert reorder_stage.main(argv) == 0
+    for source, model, order, seed in config.cells():
+        argv = ["--source", source, "--model", model, "--order", order, "--seed", str(seed)]
+        assert fit_stage.main(["--params", str(wdir), *argv]) == 0
+    collected = table_stage.collect(wdir, config)
+    table = collected["table"]
+    assert sorted(table["corpus"]) == ["ngram"] and sorted(table["markov"]) == ["ngram", "one"]
+    assert table["markov"]["one"]["reverse"]["seeds"] == 1
+    assert table["markov"]["ngram"]["reverse"]["seeds"] == 2
+    # Each model's own seed count, named, since the two differ; then the unigram 'one' is
+    # flagged as worse than a bigram baseline (the order-2 'ngram' equals it: not flagged).
+    assert collected["warnings"][:2] == [
+        "model 'ngram': with 2 seeds the interval ignores training randomness (it resamples "
+        "test units only); fit at least 3 seeds",
+        "model 'one': with 1 seed the interval ignores training randomness (it resamples "
+        "test units only); fit at least 3 seeds",
+    ]
+    assert len(collected["warnings"]) == 3
+    assert collected["warnings"][2].startswith("source 'markov': model 'one' scores ")
+
+
+def test_a_cells_fit_log_shows_progress_within_an_epoch():
+    import io
+
+    rng = np.random.default_rng(1)
+    rows = [rng.integers(0, 5, size=8) for _ in range(60)]
+    splits = {s: SequenceSet.from_list(rows, vocab_size=5) for s in ("train", "valid", "test")}
+    log = io.StringIO()
+    spec = ModelConfig(family="mlp", params={"window": 2, "hidden": 4, "epochs": 1})
+    fit_cell(spec, splits, seed=0, log=log)
+    lines = [line for line in log.getvalue().splitlines() if line.startswith("mlp fit (seed 0):")]
+    # The epoch's 540 events (60 units x (8 tokens + end marker)) come in one chunk here.
+    assert len(lines) == 1 and "100% (540/540 event)" in lines[0]
+
+
+def test_a_progress_bar_writes_one_log_line_per_tenth_it_crosses():
+    import io
+
+    from retrograde.families import progress_bar, progress_log
+
+    log = io.StringIO()
+    with progress_log(log), progress_bar(total=100, desc="x", unit="tok", enabled=False) as bar:
+        for step in (5, 5, 30, 1, 59):  # reaches 5, 10, 40, 41, 100
+            bar.update(step)
+    percents = [line.split(": ")[1].split("%")[0] for line in log.getvalue().splitlines()]
+    assert percents == ["10", "40", "100"]

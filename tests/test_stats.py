@@ -13,15 +13,17 @@ from scipy import stats as scipy_stats
 from statsmodels.stats.multitest import multipletests
 
 from retrograde import Ragged, SequenceSet
-from retrograde._bootstrap import bootstrap_totals, holm, sign_flip_pvalue
 from retrograde.errors import ConfigError, DataError
 from retrograde.stats import (
     adjust_holm,
     bootstrap_pvalue,
+    bootstrap_totals,
     grouping_warning,
+    holm,
     position_profile,
     seed_warning,
     segment_breakdown,
+    sign_flip_pvalue,
     span_breakdown,
     summarize_model,
 )

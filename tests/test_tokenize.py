@@ -8,7 +8,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from nltk.tokenize import wordpunct_tokenize
 
-from retrograde import tokenize
+from retrograde.data import tokenizers as tokenize
 from retrograde.errors import ConfigError, DataError, FitError
 
 

@@ -18,6 +18,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 import retrograde.families as families
+from retrograde.data import SequenceSet
 from retrograde.errors import ConfigError, MissingDependencyError
 from retrograde.families import _torch_common
 from retrograde.families._torch_common import (
@@ -27,7 +28,6 @@ from retrograde.families._torch_common import (
     make_windows,
     prediction_windows,
 )
-from retrograde.sequences import SequenceSet
 
 TORCH_FAMILIES = ["gru", "lstm", "transformer"]
 
@@ -40,7 +40,7 @@ needs_torch = pytest.mark.skipif(torch is None, reason="torch extra not installe
 
 
 def _small(name: str, **overrides: object) -> families.Family:
-    params = dict(families.registry.get(name)._test_params)  # type: ignore[attr-defined]
+    params = dict(families.registry.get(name).example_params)  # type: ignore[attr-defined]
     params.update({"progress": False, **overrides})
     return families.make(name, **params)
 
@@ -328,6 +328,8 @@ def test_bf16_is_refused_in_one_line_on_a_cpu_without_bfloat16(monkeypatch):
         ("transformer", "stride", 9, "an integer >= 1 and <= 8"),
         ("gru", "token_budget", 0, "an integer >= 1"),
         ("gru", "bf16", "yes", "True or False"),
+        ("lstm", "device", "gpu", "cpu, auto, cuda, cuda:N or mps"),
+        ("transformer", "device", "cuda:x", "cpu, auto, cuda, cuda:N or mps"),
     ],
 )
 def test_invalid_parameters_fail_before_training_naming_key_value_and_allowed(
@@ -340,6 +342,41 @@ def test_invalid_parameters_fail_before_training_naming_key_value_and_allowed(
     assert str(caught.value) == (
         f"family {name!r}: parameter {key}={value!r} is invalid; allowed: {allowed}"
     )
+
+
+@needs_torch
+@pytest.mark.parametrize("name", TORCH_FAMILIES)
+def test_device_auto_falls_back_to_the_cpu_and_gives_the_same_numbers(name, tmp_path):
+    if torch.cuda.is_available() or torch.backends.mps.is_available():
+        pytest.skip("this machine has an accelerator: auto would not mean the CPU")
+    train, valid, test = _units(40, 3, 10, 0), _units(8, 3, 10, 1), _units(8, 3, 10, 2)
+    on_cpu = _small(name, device="cpu").fit(train, valid, seed=3)
+    automatic = _small(name, device="auto").fit(train, valid, seed=3)
+    assert on_cpu.device_ == automatic.device_ == "cpu"
+    # the device choice must not change what a CPU computes (bit for bit)
+    assert np.array_equal(on_cpu.logprobs(test).values, automatic.logprobs(test).values)
+    automatic.save(tmp_path / "model")
+    loaded = families.load(tmp_path / "model")
+    assert loaded.device_ == "cpu"
+    assert np.array_equal(loaded.logprobs(test).values, on_cpu.logprobs(test).values)
+
+
+@needs_torch
+@pytest.mark.parametrize("device", ["cuda", "cuda:1", "mps"])
+def test_an_accelerator_this_machine_lacks_is_refused_in_one_line(device):
+    present = {
+        "cuda": torch.cuda.device_count() >= 1,
+        "cuda:1": torch.cuda.device_count() >= 2,
+        "mps": torch.backends.mps.is_available(),
+    }
+    if present[device]:
+        pytest.skip(f"this machine has {device}")
+    model = _small("gru", device=device)
+    with pytest.raises(ConfigError) as caught:
+        model.fit(_units(5, 3, 4, 0))
+    message = str(caught.value)
+    assert message.startswith(f"family 'gru': parameter device={device!r} is invalid on this")
+    assert message.endswith("allowed: cpu or auto")
 
 
 @needs_torch
@@ -441,26 +478,26 @@ def test_on_banded_linear_gf2_forward_reaches_the_floor_and_reverse_stays_10_poi
 
 @needs_torch
 def test_context_and_capacity_sweeps_expand_into_valid_torch_models_that_fit():
-    from retrograde._plugin_checks import _check_models
-    from retrograde.config import expand_sweeps
+    from retrograde.config import ModelConfig, StudyConfig, SweepConfig, expand_sweeps
+    from retrograde.config._plugins import resolve_plugins
 
     small = {"epochs": 1, "batch_size": 8, "progress": False}
-    study = {
-        "models": {
-            "tf": {"family": "transformer", "params": {"width": 8, "heads": 2, **small}},
-            "rnn": {"family": "gru", "params": {"embedding": 4, **small}},
+    study = StudyConfig(
+        models={
+            "tf": ModelConfig(family="transformer", params={"width": 8, "heads": 2, **small}),
+            "rnn": ModelConfig(family="gru", params={"embedding": 4, **small}),
         },
-        "sweeps": {
-            "context": {"model": "tf", "parameter": "context", "values": [2, 6]},
-            "capacity": {"model": "rnn", "parameter": "hidden", "values": [4, 16]},
+        sweeps={
+            "context": SweepConfig(model="tf", parameter="context", values=[2, 6]),
+            "capacity": SweepConfig(model="rnn", parameter="hidden", values=[4, 16]),
         },
-    }
-    models = expand_sweeps(study)["models"]
-    _check_models(models, Path.cwd())  # the compose-time checks of every expanded model
+    )
+    expand_sweeps(study)
+    resolve_plugins(study, Path.cwd())  # the compose-time checks of every expanded model
     train = _units(20, 3, 9, 0)
     for name, value, attribute in (("tf_context2", 2, "context"), ("rnn_hidden16", 16, "hidden")):
-        entry = models[name]
-        model = families.make(entry["family"], **entry["params"]).fit(train, seed=0)
+        entry = study.models[name]
+        model = families.make(entry.family, **entry.params).fit(train, seed=0)
         assert getattr(model, attribute) == value
         assert len(model.logprobs(train)[0]) == len(train[0]) + 1
 
@@ -488,11 +525,12 @@ def test_every_step_clips_the_global_gradient_norm_to_grad_clip(monkeypatch):
 
 @needs_torch
 def test_the_fit_stage_accepts_a_torch_model_and_returns_its_test_logprobs():
+    from retrograde.config import ModelConfig
     from retrograde.stages.fit import fit_cell
 
     splits = {"train": _units(30, 4, 9, 0), "valid": _units(8, 4, 9, 1), "test": _units(8, 4, 9, 2)}
-    params = {**families.registry.get("gru")._test_params, "progress": False}
-    model, values, curve = fit_cell({"family": "gru", "params": params}, splits, seed=0)
+    params = {**families.registry.get("gru").example_params, "progress": False}
+    model, values, curve = fit_cell(ModelConfig(family="gru", params=params), splits, seed=0)
     assert values.shape == (len(splits["test"].tokens) + len(splits["test"]),)
     np.testing.assert_array_equal(values, model.logprobs(splits["test"]).values)
     assert [record["epoch"] for record in curve] == [1, 2]

@@ -6,10 +6,9 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import stats
 
-from retrograde import tokenize
-from retrograde._document import Document
+from retrograde.data import SPLITS, Document, assign_splits, check_fractions, prepare_units
+from retrograde.data import tokenizers as tokenize
 from retrograde.errors import ConfigError, DataError
-from retrograde.units import SPLITS, assign_splits, check_fractions, prepare_units
 
 
 def text_doc(text, doc_id=0, where="corpus.txt"):
@@ -77,7 +76,7 @@ def test_fractions_hold_within_two_percent_on_ten_thousand_units(fractions):
     [(0.8, 0.3, 0.1), (0.0, 0.5, 0.5), (1.0, 0.0), (0.6, 0.5), (0.9,), (0.5, 0.3, -0.1)],
 )
 def test_fractions_outside_the_unit_interval_or_summing_past_one_are_refused(fractions):
-    with pytest.raises(ConfigError, match=r"units: parameter fractions=.* is invalid; allowed"):
+    with pytest.raises(ConfigError, match=r"split: parameter fractions=.* is invalid; allowed"):
         check_fractions(fractions)
 
 

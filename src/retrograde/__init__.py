@@ -1,18 +1,38 @@
 """retrograde: order-ablation experiments for sequence models, as DVC + Hydra stages.
 
-Public API (stable names):
+The package is layered; each folder is one layer and imports only from the layers below
+it (``DEVELOPERS.md`` draws them):
 
-- :class:`SequenceSet` — ragged integer units with a ``.npy`` folder format.
-- :mod:`retrograde.orders` — ``make(name, **params)``, ``names()``.
-- :mod:`retrograde.sources` — ``make(name, **params)``, ``names()``.
-- :mod:`retrograde.families` — ``make(name, **params)``, ``names()``, ``load(folder)``.
+- :mod:`retrograde.data` — units of token ids (:class:`SequenceSet`), documents, tokenizers,
+  unit cutting and the hash split;
+- :mod:`retrograde.orders`, :mod:`retrograde.sources`, :mod:`retrograde.families` — the
+  three kinds of plug-in, each with ``make(name, **params)``, ``names()`` and a registry;
+- :mod:`retrograde.stats` — paired gaps with intervals, profiles;
+- :mod:`retrograde.report` — the gap table as JSON, Markdown, CSV and figures;
+- :mod:`retrograde.config` — typed config, Hydra composition, the pipeline's layout;
+- :mod:`retrograde.stages` — the DVC stage entry points;
+- :mod:`retrograde.host` — the host repository: init, the run driver, checks;
+- :mod:`retrograde.commands` and :mod:`retrograde.cli` — the command line.
+
+Plug-in authors use :class:`Document`, :mod:`retrograde.validation` (parameter checks whose
+errors read like the built-ins') and the base classes ``retrograde.orders.Order``,
+``retrograde.sources.FileSource`` / ``CalibrationSource`` and ``retrograde.families.Family``.
 """
 
 from __future__ import annotations
 
 __version__ = "0.1.0"
 
+from . import errors, validation
+from .data import Document, Ragged, SequenceSet
 from .errors import RetrogradeError
-from .sequences import Ragged, SequenceSet
 
-__all__ = ["Ragged", "RetrogradeError", "SequenceSet", "__version__"]
+__all__ = [
+    "Document",
+    "Ragged",
+    "RetrogradeError",
+    "SequenceSet",
+    "__version__",
+    "errors",
+    "validation",
+]

@@ -14,6 +14,8 @@ __all__ = [
     "FitError",
     "HostRepoError",
     "MissingDependencyError",
+    "MissingFileError",
+    "PluginError",
     "RetrogradeError",
 ]
 
@@ -27,6 +29,18 @@ class RetrogradeError(Exception):
         # Collapse accidental newlines so the message stays on one line.
         return " ".join(super().__str__().split())
 
+    def prefixed(self, where: str) -> RetrogradeError:
+        """A new error of the same kind with ``where: `` in front, unless it already
+        starts so (raise it ``from`` this one).
+
+        >>> str(ConfigError("study.models.m: bad").prefixed("study.models.m"))
+        'study.models.m: bad'
+        >>> str(ConfigError("bad").prefixed("study.models.m"))
+        'study.models.m: bad'
+        """
+        text = str(self)
+        return type(self)(text if text.startswith(f"{where}:") else f"{where}: {text}")
+
 
 class ConfigError(RetrogradeError):
     """A config key, value or command-line option is invalid."""
@@ -34,6 +48,10 @@ class ConfigError(RetrogradeError):
 
 class DataError(RetrogradeError):
     """Input data is missing, empty, malformed or inconsistent."""
+
+
+class MissingFileError(DataError):
+    """A file (or glob) an input names does not exist, or not yet (a host stage may write it)."""
 
 
 class BijectionError(DataError):
@@ -50,3 +68,7 @@ class HostRepoError(RetrogradeError):
 
 class MissingDependencyError(RetrogradeError):
     """An optional dependency is not installed."""
+
+
+class PluginError(RetrogradeError):
+    """A plug-in (order, source, family, tokenizer) raised or broke its contract."""

@@ -1,10 +1,11 @@
-"""``retrograde compare REV_A [REV_B] [--dir HOST] [--path FILE] [--all] [--format text|markdown]
-[--fail-on-change]``.
+"""``retrograde compare REV_A [REV_B] [--dir HOST] [--path FILE] [--all]
+[--format text|markdown|csv|json] [--fail-on-change]``.
 
 Reads the gap table (``pipelines/retrograde/metrics.json``) at git revision ``REV_A`` and at
 ``REV_B`` (default: the working tree), and prints every cell whose gap moved with both
-intervals: ``CHANGED`` when the two intervals do not overlap, ``within`` when they do, and
-cells ``added`` or ``removed``. Exit status 0, or 1 with ``--fail-on-change`` when any cell
+intervals and bits per token at both revisions: ``CHANGED`` when the two intervals do not
+overlap, ``within`` when they do, ``loss`` when only bits per token moved, and cells
+``added`` or ``removed``. Exit status 0, or 1 with ``--fail-on-change`` when any cell
 changed beyond its intervals (a CI gate).
 """
 
@@ -13,7 +14,9 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-from ..compare import add_metrics_arguments, compare_tables, format_changes, read_table_at
+from ..host import read_table_at
+from ..report import CHANGE_FORMATS, compare_tables, format_changes
+from . import add_metrics_arguments
 
 __all__ = ["configure", "run"]
 
@@ -28,8 +31,8 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument(
         "--format",
         default="text",
-        choices=("text", "markdown"),
-        help="aligned text (default) or a Markdown table for a pull-request comment",
+        choices=CHANGE_FORMATS,
+        help="aligned text (default), a Markdown table for a pull-request comment, csv or json",
     )
     parser.add_argument(
         "--fail-on-change",

@@ -2,9 +2,10 @@
 
 Installs ``conf/retrograde/`` (config groups) and ``pipelines/retrograde/dvc.yaml`` (the
 stage file) into an existing git + DVC repository, adds ignore rules to
-``pipelines/retrograde/.gitignore``, and prints the next command. Idempotent; never
-overwrites a changed file without ``--force``; never touches the host's root ``dvc.yaml``
-or ``params.yaml``.
+``pipelines/retrograde/.gitignore``, and prints the next command. Idempotent; stops at a
+changed file without ``--force``; with it, keeps changed config files and replaces a
+changed stage file only when git has it committed; never touches the host's root
+``dvc.yaml`` or ``params.yaml``.
 """
 
 from __future__ import annotations
@@ -12,8 +13,8 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-from ..hostrepo import CONF_DIR, PIPELINE_DIR, find_host
-from ..scaffold import SOURCE_CONFIG, install, planned_files, resolve_sources
+from ..config import CONF_DIR, PIPELINE_DIR
+from ..host import SOURCE_CONFIG, find_host, initialize, resolve_sources
 
 __all__ = ["configure", "run"]
 
@@ -32,20 +33,30 @@ def configure(parser: argparse.ArgumentParser) -> None:
         "they become the files of the default 'corpus' source",
     )
     parser.add_argument(
-        "--force", action="store_true", help="overwrite installed files that were changed"
+        "--force",
+        action="store_true",
+        help="install around changed files: keep changed config files, replace a changed "
+        "stage file that git has committed",
     )
 
 
 def run(args: argparse.Namespace) -> int:
     host = find_host(args.dir)
     sources = resolve_sources(host, args.source, cwd=Path.cwd())
-    result = install(host, planned_files(sources=sources), force=args.force)
+    result = initialize(host, sources, force=args.force)
     if result.written:
         print(f"retrograde init: wrote {len(result.written)} file(s) in {host.root}:")
         for path in result.written:
             print(f"  {path}")
     else:
         print(f"retrograde init: {host.root} already has every file (nothing written)")
+    if result.kept:
+        print(
+            f"kept {len(result.kept)} changed config file(s) as they are (delete one and rerun "
+            "init to get the packaged version):"
+        )
+        for path in result.kept:
+            print(f"  {path}")
     if not sources:
         print(f"check the corpus files in {SOURCE_CONFIG} (or rerun init with --source PATH)")
     print("next:")

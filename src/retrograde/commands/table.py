@@ -11,8 +11,9 @@ import argparse
 import sys
 from pathlib import Path
 
-from ..compare import add_metrics_arguments, read_table_at
+from ..host import read_table_at
 from ..report import FORMATS, format_table, table_warnings
+from . import add_metrics_arguments
 
 __all__ = ["configure", "run"]
 

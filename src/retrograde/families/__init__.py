@@ -1,4 +1,14 @@
-"""Model families: ``make(name, **params)``, ``names()``, ``load(folder)``."""
+"""Model families: ``make(name, **params)``, ``names()``, ``load(folder)``, ``registry``.
+
+Every family follows the contract of :class:`Family` (``families/_base.py``): keyword-only
+parameters, ``fit(train, valid, seed)``, ``logprobs(units)`` (one natural-log probability per
+token plus one for the end marker), full distributions from ``next_token_probs``, and a
+``numerics_version`` raised whenever its code changes its numbers. Built-ins: ``ngram``,
+``mlp``, ``command`` (a team's own trainer), and with the optional torch extra ``gru``,
+``lstm`` and ``transformer`` (torch is imported only when one of them fits).
+
+To add a built-in family, write its module here and list its class in ``_BUILTIN`` below.
+"""
 
 from __future__ import annotations
 
@@ -7,13 +17,41 @@ import os
 from pathlib import Path
 from typing import Any
 
-from .._registry import Registry
 from ..errors import DataError
+from ..registry import Registry
 from ._base import FAMILY_FORMAT, Family
+from ._probe import check_probe, probe_positions, probe_size
+from ._progress import progress_bar, progress_log
+from .command import CommandFamily
+from .mlp import MLP
+from .ngram import NGram
+from .recurrent import GRU, LSTM
+from .transformer import Transformer
 
-__all__ = ["Family", "load", "make", "names", "registry"]
+__all__ = [
+    "GRU",
+    "LSTM",
+    "MLP",
+    "CommandFamily",
+    "Family",
+    "NGram",
+    "Transformer",
+    "check_probe",
+    "load",
+    "make",
+    "names",
+    "probe_positions",
+    "progress_bar",
+    "progress_log",
+    "probe_size",
+    "registry",
+]
 
-registry: Registry[Family] = Registry("family", "retrograde.families", "families")
+_BUILTIN: tuple[type[Family], ...] = (NGram, MLP, CommandFamily, GRU, LSTM, Transformer)
+
+registry: Registry[Family] = Registry("family", "retrograde.families", Family, "families")
+for _family in _BUILTIN:
+    registry.register(_family.name)(_family)
 
 
 def make(name: str, **params: Any) -> Family:
@@ -37,7 +75,3 @@ def load(folder: str | os.PathLike[str]) -> Family:
     factory = registry.get(meta["family"])
     assert isinstance(factory, type) and issubclass(factory, Family)
     return factory._from_saved(folder, meta)
-
-
-# Built-in families register themselves on import (keep these imports last).
-from . import _builtin  # noqa: E402,F401

@@ -24,9 +24,8 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from .._io import atomic_dir, write_npz
+from ..data import Ragged, SequenceSet, atomic_dir, write_npz
 from ..errors import DataError, FitError
-from ..sequences import Ragged, SequenceSet
 
 __all__ = ["Family", "FAMILY_FORMAT"]
 
@@ -106,6 +105,11 @@ class Family(ABC):
         return int(self.vocab_size_)
 
     vocab_size_: int
+
+    def n_parameters(self) -> int | None:
+        """How many numbers the fitted model learned (weights, or stored counts), for the
+        report's budget; ``None`` when the family cannot tell (an external trainer)."""
+        return None
 
     def _check_fitted(self) -> None:
         if not hasattr(self, "vocab_size_"):

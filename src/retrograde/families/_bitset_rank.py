@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..sequences import index_dtype
+from ..data import index_dtype
 
 __all__ = ["bitset_rank", "popcount64"]
 

@@ -5,8 +5,11 @@ The protocol is described in :mod:`retrograde.families.command`.
 
 from __future__ import annotations
 
+import contextlib
 import json
+import os
 import re
+import signal
 import subprocess
 from collections.abc import Sequence
 from pathlib import Path
@@ -14,15 +17,16 @@ from typing import Any
 
 import numpy as np
 
-from .._validation import invalid
+from ..data import SequenceSet
 from ..errors import FitError
-from ..sequences import SequenceSet
+from ..validation import invalid
 from ._probe import PROBE_FILE, PROBE_OUTPUT, check_probe
 
-__all__ = ["check_arguments", "read_curve", "run_trainer"]
+__all__ = ["check_arguments", "read_curve", "run_in_own_group", "run_trainer"]
 
 _PLACEHOLDER = re.compile(r"\{(\w+)\}")
 _STDERR_TAIL = 800  # characters of stderr quoted in an error
+_DRAIN_SECONDS = 10.0  # how long a killed trainer's output is still read
 
 
 def check_arguments(owner: str, key: str, arguments: Any, allowed: Sequence[str]) -> None:
@@ -46,6 +50,43 @@ def _substitute(arguments: Sequence[str], places: dict[str, str]) -> list[str]:
     return [one(a) for a in arguments]
 
 
+def run_in_own_group(argv: Sequence[str], timeout: float) -> subprocess.CompletedProcess[bytes]:
+    """Run ``argv`` (no shell) in a new process group; kill the whole group when done.
+
+    The trainer is the leader of its own session, so its children (data loaders, a shell
+    script's commands, a ``torchrun``) share its process group. On a timeout, an interrupt
+    or any other exit from here, ``SIGKILL`` goes to the group, so nothing the trainer
+    started outlives it; after a normal exit, stragglers of the group are killed too.
+    Raises :class:`subprocess.TimeoutExpired` (with the stderr read so far) on a timeout.
+    """
+    with subprocess.Popen(
+        list(argv),
+        stdin=subprocess.DEVNULL,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        start_new_session=True,
+    ) as process:
+        try:
+            stdout, stderr = process.communicate(timeout=timeout)
+        except subprocess.TimeoutExpired:
+            _kill_group(process.pid)
+            # The pipes close once every process of the group is gone; a process that left
+            # the group (setsid) may hold them open, so the read is bounded.
+            try:
+                stdout, stderr = process.communicate(timeout=_DRAIN_SECONDS)
+            except subprocess.TimeoutExpired:
+                stdout, stderr = b"", b""
+            raise subprocess.TimeoutExpired(argv, timeout, stdout, stderr) from None
+        finally:
+            _kill_group(process.pid)
+        return subprocess.CompletedProcess(list(argv), process.returncode, stdout, stderr)
+
+
+def _kill_group(group: int) -> None:
+    with contextlib.suppress(ProcessLookupError, PermissionError):
+        os.killpg(group, signal.SIGKILL)
+
+
 def run_trainer(
     arguments: Sequence[str],
     places: dict[str, str],
@@ -63,9 +104,7 @@ def run_trainer(
     argv = _substitute(arguments, places)
     shown = " ".join(arguments)
     try:
-        done = subprocess.run(
-            argv, stdin=subprocess.DEVNULL, capture_output=True, timeout=timeout, check=False
-        )
+        done = run_in_own_group(argv, timeout)
     except FileNotFoundError as exc:
         raise FitError(
             f"family 'command': {key} program {argv[0]!r} was not found; give an existing "
@@ -73,8 +112,9 @@ def run_trainer(
         ) from exc
     except subprocess.TimeoutExpired as exc:
         raise FitError(
-            f"family 'command': {key} [{shown}] did not finish within {timeout:g} s; raise "
-            f"the family's timeout or speed up the trainer; stderr tail: {_tail(exc.stderr)}"
+            f"family 'command': {key} [{shown}] did not finish within {timeout:g} s (it and "
+            "every process it started were killed); raise the family's timeout or speed up "
+            f"the trainer; stderr tail: {_tail(exc.stderr)}"
         ) from exc
     tail = _tail(done.stderr)
     if done.returncode != 0:

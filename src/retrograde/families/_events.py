@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..sequences import SequenceSet
+from ..data import SequenceSet
 from ._ngram_counts import SymbolsAtLag
 
 __all__ = ["unit_event_blocks", "unit_events"]

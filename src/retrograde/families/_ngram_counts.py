@@ -31,7 +31,7 @@ from typing import Any, NamedTuple, Protocol
 
 import numpy as np
 
-from ..sequences import index_dtype
+from ..data import index_dtype
 from ._bitset_rank import bitset_rank
 from ._packed_sort import packed_fits, packed_rank, packed_sorted_blocks
 

@@ -16,7 +16,7 @@ from collections.abc import Iterator
 
 import numpy as np
 
-from ..sequences import index_dtype
+from ..data import index_dtype
 
 __all__ = ["index_bits", "packed_fits", "packed_rank", "packed_sorted_blocks"]
 

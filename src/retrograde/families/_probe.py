@@ -17,8 +17,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..data import SequenceSet
 from ..errors import FitError
-from ..sequences import SequenceSet
 
 __all__ = [
     "PROBE_FILE",

@@ -30,6 +30,7 @@ from __future__ import annotations
 import contextlib
 import copy
 import math
+import re
 from collections.abc import Iterator
 from dataclasses import dataclass
 from types import ModuleType
@@ -37,8 +38,9 @@ from typing import Any
 
 import numpy as np
 
+from ..data import SequenceSet
 from ..errors import ConfigError, MissingDependencyError
-from ..sequences import SequenceSet
+from ..validation import invalid
 
 __all__ = [
     "Stream",
@@ -51,10 +53,17 @@ __all__ = [
     "make_stream",
     "make_windows",
     "prediction_windows",
+    "resolve_device",
     "torch_session",
 ]
 
-TORCH_HINT = "pip install torch==2.13.0 && pip install 'retrograde[torch]'"
+#: what to run, in a checkout or an installed package alike: the ``torch`` extra adds
+#: nothing but this wheel (``pip install 'retrograde[torch]'`` would look retrograde itself
+#: up on the package index instead of using the checkout)
+TORCH_HINT = (
+    "pip install torch==2.13.0 (the CPU build; in a retrograde checkout `make test` also "
+    "puts it in .venv)"
+)
 
 #: training parameters shared by every torch family, with their defaults
 TRAINING_DEFAULTS: dict[str, Any] = {
@@ -72,7 +81,45 @@ TRAINING_DEFAULTS: dict[str, Any] = {
     "threads": 1,
     "bf16": False,
     "progress": True,  # tqdm bar on a terminal, with tokens/s
+    "device": "cpu",  # cpu, auto (an accelerator when present), cuda, cuda:N or mps
 }
+
+#: what the ``device`` parameter accepts
+DEVICE_CHOICES = "cpu, auto, cuda, cuda:N or mps"
+_DEVICE = re.compile(r"^(cpu|auto|mps|cuda(:\d+)?)$")
+
+
+def resolve_device(torch: ModuleType, owner: str, device: Any) -> str:
+    """The torch device a fit runs on: ``cpu``, ``cuda:N`` or ``mps``.
+
+    ``auto`` is the first CUDA device when one is present, else Apple's ``mps`` when
+    present, else the CPU. A named accelerator that this machine lacks is refused in one
+    line (a silent fallback would make a config mean different computations on different
+    machines).
+    """
+    if not isinstance(device, str) or not _DEVICE.match(device):
+        raise invalid(owner, "device", device, DEVICE_CHOICES)
+    mps = getattr(torch.backends, "mps", None)
+    has_mps = bool(mps is not None and mps.is_available())
+    if device == "auto":
+        if torch.cuda.is_available():
+            return "cuda:0"
+        return "mps" if has_mps else "cpu"
+    if device.startswith("cuda"):
+        index = int(device.partition(":")[2] or 0)
+        count = torch.cuda.device_count() if torch.cuda.is_available() else 0
+        if index >= count:
+            raise ConfigError(
+                f"{owner}: parameter device={device!r} is invalid on this machine "
+                f"({count} CUDA device{'s' if count != 1 else ''}); allowed: cpu or auto"
+            )
+        return f"cuda:{index}"
+    if device == "mps" and not has_mps:
+        raise ConfigError(
+            f"{owner}: parameter device='mps' is invalid on this machine (no mps backend); "
+            "allowed: cpu or auto"
+        )
+    return device
 
 
 def import_torch(family: str) -> ModuleType:

@@ -9,6 +9,7 @@ threads, bf16 autocast and the window scheme of :mod:`._torch_common` — lives 
 from __future__ import annotations
 
 import math
+import os
 import time
 from collections.abc import Iterator, Sequence
 from pathlib import Path
@@ -16,12 +17,12 @@ from types import ModuleType
 from typing import Any
 
 import numpy as np
-from tqdm import tqdm
 
-from .._validation import check_float, check_int, invalid
+from ..data import Ragged, SequenceSet
 from ..errors import DataError
-from ..sequences import Ragged, SequenceSet
+from ..validation import check_float, check_int, invalid
 from ._base import Family
+from ._progress import progress_bar
 from ._torch_common import (
     Stream,
     TrainingRun,
@@ -33,6 +34,7 @@ from ._torch_common import (
     make_stream,
     make_windows,
     prediction_windows,
+    resolve_device,
     torch_session,
 )
 
@@ -60,6 +62,7 @@ class TorchFamily(Family):
     threads: int
     bf16: bool
     progress: bool
+    device: str
 
     def __init__(self, **params: Any) -> None:
         import_torch(self.name)  # fail at construction, with the install hint
@@ -87,6 +90,7 @@ class TorchFamily(Family):
             if not isinstance(p[key], bool):
                 raise invalid(owner, key, p[key], "True or False")
         check_bf16(import_torch(self.name), owner, p["bf16"])
+        resolve_device(import_torch(self.name), owner, p["device"])
         self._validate_network(owner, p)
 
     def _validate_network(self, owner: str, params: dict[str, Any]) -> None:
@@ -114,8 +118,13 @@ class TorchFamily(Family):
         )
         if valid is not None and len(valid) == 0:
             valid = None
+        self.device_ = resolve_device(torch, f"family {self.name!r}", self.device)
+        if self.device_.startswith("cuda"):
+            # Deterministic cuBLAS kernels need this workspace setting (CUDA only).
+            os.environ.setdefault("CUBLAS_WORKSPACE_CONFIG", ":4096:8")
         with torch_session(torch, threads=int(self.threads), seed=int(seed)):
-            self.network_ = self._build_network(torch, self.vocab_size_)
+            # Built on the CPU, then moved: the initial weights do not depend on the device.
+            self.network_ = self._build_network(torch, self.vocab_size_).to(self.device_)
             self._train(torch, train, valid, np.random.default_rng(seed))
         return self
 
@@ -148,12 +157,11 @@ class TorchFamily(Family):
         )
         self.learning_curve_ = []
         started = time.perf_counter()
-        bar = tqdm(
+        bar = progress_bar(
             total=self.token_budget or max_epochs * stream.n_positions,
             unit="tok",
-            unit_scale=True,
             desc=f"{self.name} fit",
-            disable=None if self.progress else True,
+            enabled=bool(self.progress),
         )
         for epoch in range(1, max_epochs + 1):
             train_nats, train_positions = self._train_epoch(
@@ -179,6 +187,7 @@ class TorchFamily(Family):
         if run.best_state is not None:
             self.network_.load_state_dict(run.best_state)
         # Wall-clock figures stay out of learning_curve_, which must be deterministic.
+        self.steps_ = run.step
         self.fit_seconds_ = time.perf_counter() - started
         self.tokens_per_second_ = run.tokens_seen / max(self.fit_seconds_, 1e-9)
         self.tokens_seen_ = run.tokens_seen
@@ -232,9 +241,13 @@ class TorchFamily(Family):
         n_owned = int(owned.sum())
         if n_owned == 0:
             return 0.0
-        masked_targets = torch.from_numpy(np.where(owned, targets, -100))  # -100: ignored
-        with torch.autocast("cpu", dtype=torch.bfloat16, enabled=bool(self.bf16)):
-            logits = self.network_(torch.from_numpy(inputs))  # (batch, time, vocab_size + 1)
+        device = self.device_
+        masked_targets = torch.from_numpy(np.where(owned, targets, -100)).to(
+            device
+        )  # -100: ignored
+        device_type = device.partition(":")[0]
+        with torch.autocast(device_type, dtype=torch.bfloat16, enabled=bool(self.bf16)):
+            logits = self.network_(torch.from_numpy(inputs).to(device))  # (batch, time, vocab + 1)
         total = torch.nn.functional.cross_entropy(
             logits.float().flatten(0, 1),
             masked_targets.flatten(),
@@ -270,8 +283,10 @@ class TorchFamily(Family):
         with torch.no_grad():
             for first in range(0, len(order), batch_size):
                 inputs, _, flat, owned = batches(stream, windows, order[first : first + batch_size])
-                logits = network(torch.from_numpy(inputs))  # (batch, time, vocab_size + 1)
-                owned_logits = logits[torch.from_numpy(owned)].double()  # (n_owned, vocab_size + 1)
+                logits = network(torch.from_numpy(inputs).to(self.device_))  # (batch, time, V + 1)
+                mask = torch.from_numpy(owned).to(self.device_)
+                # float64 on the CPU (mps has no float64); on the CPU .cpu() is a no-op
+                owned_logits = logits[mask].cpu().double()  # (n_owned, vocab_size + 1)
                 yield flat[owned], owned_logits.log_softmax(-1).numpy()
 
     def logprobs(self, units: SequenceSet) -> Ragged:
@@ -304,9 +319,16 @@ class TorchFamily(Family):
                 probs[unit_of_position[positions]] = np.exp(log_softmax)
         return probs / probs.sum(axis=1, keepdims=True)
 
+    def n_parameters(self) -> int | None:
+        self._check_fitted()
+        return int(sum(p.numel() for p in self.network_.parameters()))
+
     # ------------------------------------------------------------------ persistence
     def _save_state(self, folder: Path) -> None:
-        import_torch(self.name).save(self.network_.state_dict(), folder / "weights.pt")
+        state = self.network_.state_dict()
+        if getattr(self, "device_", "cpu") != "cpu":  # saved weights always load on a CPU
+            state = {key: value.cpu() for key, value in state.items()}
+        import_torch(self.name).save(state, folder / "weights.pt")
 
     def _load_state(self, folder: Path) -> None:
         torch = import_torch(self.name)
@@ -314,3 +336,6 @@ class TorchFamily(Family):
             self.network_ = self._build_network(torch, self.vocab_size_)
         state = torch.load(folder / "weights.pt", map_location="cpu", weights_only=True)
         self.network_.load_state_dict(state)
+        # A model fitted on an accelerator loads on this machine's choice for its device.
+        self.device_ = resolve_device(torch, f"family {self.name!r}", self.device)
+        self.network_.to(self.device_)

@@ -28,7 +28,8 @@ once per cell.
 Relative paths in the arguments are resolved from the current working directory (the DVC
 stage folder in a pipeline). A non-zero exit, a timeout, or output of the wrong length,
 non-finite or positive values raise :class:`~retrograde.errors.FitError` with the tail of
-the trainer's stderr.
+the trainer's stderr. The trainer runs in its own process group, killed whole on a timeout
+(and after the trainer exits), so no process it started outlives it.
 """
 
 from __future__ import annotations
@@ -43,10 +44,8 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from .._io import write_npz
-from .._validation import check_float
-from ..sequences import Ragged, SequenceSet
-from . import registry
+from ..data import Ragged, SequenceSet, write_npz
+from ..validation import check_float
 from ._base import Family
 from ._command_run import check_arguments, read_curve, run_trainer
 from ._probe import PROBE_FILE, probe_positions, probe_size
@@ -57,7 +56,6 @@ _FIT_KEYS = ("train", "valid", "test", "out", "seed")
 _SCORE_KEYS = ("model", "test", "out", "seed")
 
 
-@registry.register("command")
 class CommandFamily(Family):
     """Run an external trainer/scorer given as an argument list.
 
@@ -75,7 +73,7 @@ class CommandFamily(Family):
 
     name: ClassVar[str] = "command"
     #: The conformance test fills in the example trainer (tests/test_families_conformance.py).
-    _test_params: ClassVar[dict[str, Any]] = {}
+    example_params: ClassVar[dict[str, Any]] = {}
 
     command: list[str]
     score_command: list[str] | None

@@ -22,14 +22,13 @@ from typing import TYPE_CHECKING, Any, ClassVar
 import numpy as np
 import scipy.sparse
 from threadpoolctl import threadpool_limits
-from tqdm.auto import tqdm
 
-from .._validation import check_float, check_int, invalid
+from ..data import Ragged, SequenceSet, index_dtype
 from ..errors import DataError
-from ..sequences import Ragged, SequenceSet, index_dtype
-from . import registry
+from ..validation import check_float, check_int, invalid
 from ._base import Family
 from ._events import unit_events
+from ._progress import progress_bar
 
 if TYPE_CHECKING:  # scikit-learn takes ~3 s to import: only fit() needs it
     from sklearn.neural_network import MLPClassifier
@@ -44,7 +43,6 @@ PROBABILITY_FLOOR = 1e-10
 _CHUNK_EVENTS = 1 << 15
 
 
-@registry.register("mlp")
 class MLP(Family):
     """Fixed-window MLP language model (one-hot window -> ReLU layers -> softmax).
 
@@ -78,7 +76,7 @@ class MLP(Family):
     """
 
     name: ClassVar[str] = "mlp"
-    _test_params: ClassVar[dict[str, Any]] = {"window": 2, "hidden": 8, "epochs": 2}
+    example_params: ClassVar[dict[str, Any]] = {"window": 2, "hidden": 8, "epochs": 2}
 
     window: int
     hidden: int
@@ -178,12 +176,12 @@ class MLP(Family):
         rng = np.random.default_rng(seed)
         best_bits, since_best = math.inf, 0
         self.learning_curve_ = []
-        bar = tqdm(
+        self.steps_ = 0  # minibatch updates, for the report's budget
+        bar = progress_bar(
             total=self.epochs * len(outcomes),
             unit="event",
-            unit_scale=True,
             desc=f"mlp fit (seed {seed})",
-            disable=None if self.progress else True,
+            enabled=bool(self.progress),
         )
         with bar:
             for epoch in range(1, self.epochs + 1):
@@ -226,9 +224,14 @@ class MLP(Family):
             # sklearn warns (and clips) when a call has fewer events than a batch.
             classifier.batch_size = min(self.batch_size, len(chunk))
             classifier.partial_fit(features[chunk], outcomes[chunk], classes=classes)
+            self.steps_ += math.ceil(len(chunk) / classifier.batch_size)
             total += classifier.loss_ * len(chunk)
             bar.update(len(chunk))
         return float(total / len(order))
+
+    def n_parameters(self) -> int | None:
+        self._check_fitted()
+        return int(sum(w.size for w in self.coefs_) + sum(b.size for b in self.intercepts_))
 
     # ------------------------------------------------------------------- scoring
     def _probs(

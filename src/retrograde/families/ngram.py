@@ -14,15 +14,14 @@ from collections.abc import Sequence
 from typing import Any, ClassVar
 
 import numpy as np
-from tqdm.auto import tqdm
 
-from .._validation import check_float, check_int
+from ..data import Ragged, SequenceSet
 from ..errors import DataError
-from ..sequences import Ragged, SequenceSet
-from . import registry
+from ..validation import check_float, check_int
 from ._base import Family
 from ._events import unit_event_blocks, unit_events
 from ._ngram_counts import KneserNeyTables, count_tables, interpolated_probs
+from ._progress import progress_bar
 
 __all__ = ["NGram"]
 
@@ -32,7 +31,6 @@ __all__ = ["NGram"]
 _SCORE_TOKENS = 1 << 19
 
 
-@registry.register("ngram")
 class NGram(Family):
     """Interpolated modified Kneser–Ney n-gram model.
 
@@ -58,8 +56,8 @@ class NGram(Family):
     name: ClassVar[str] = "ngram"
     #: 2: context ids and keys in int64 on every look-up path (vocabularies above ~46 k)
     numerics_version: ClassVar[int] = 2
-    #: small, fast parameters for the conformance test
-    _test_params: ClassVar[dict[str, Any]] = {"order": 3}
+    #: small, fast parameters for the conformance test and the docs
+    example_params: ClassVar[dict[str, Any]] = {"order": 3}
 
     order: int
     discount: float | None
@@ -84,8 +82,8 @@ class NGram(Family):
         train = _with_vocab(train, self.vocab_size_)
         # Events read a block at a time from the tokens: no per-event array but the keys.
         symbol_at_lag, n_events = unit_event_blocks(train)
-        # One step per pass over the events; tqdm shows it only on a terminal.
-        with tqdm(total=self.order, desc="ngram fit", unit="pass", disable=None) as bar:
+        # One step per pass over the events (a bar on a terminal, lines in a fit.log).
+        with progress_bar(total=self.order, desc="ngram fit", unit="pass") as bar:
             self.tables_ = count_tables(
                 symbol_at_lag,
                 n_events,
@@ -101,6 +99,12 @@ class NGram(Family):
             bits = nats / math.log(2) / max(len(valid.tokens), 1)
             self.learning_curve_ = [{"epoch": 1, "valid_bits_per_token": bits}]
         return self
+
+    def n_parameters(self) -> int | None:
+        """Stored n-gram types (each with its count) over all levels, plus the discounts."""
+        self._check_fitted()
+        tables = self.tables_
+        return int(sum(len(c) for c in tables.type_counts[1:]) + tables.discounts.size)
 
     # -------------------------------------------------------------------- scoring
     def logprobs(self, units: SequenceSet) -> Ragged:

@@ -1,7 +1,6 @@
 """Recurrent families ``gru`` and ``lstm``: embedding -> recurrent layers -> softmax.
 
-Both need the optional PyTorch extra (``pip install torch==2.13.0`` then
-``pip install 'retrograde[torch]'``); without it, constructing one raises a one-line
+Both need PyTorch (``pip install torch==2.13.0``, the CPU build); without it, constructing one raises a one-line
 :class:`~retrograde.errors.MissingDependencyError`. Training and the window scheme are
 shared with ``transformer`` (see :mod:`retrograde.families._torch_family`): a network
 reads at most ``context`` positions, units longer than that are scored with sliding windows
@@ -13,8 +12,7 @@ from __future__ import annotations
 from types import ModuleType
 from typing import Any, ClassVar
 
-from .._validation import check_float, check_int
-from . import registry
+from ..validation import check_float, check_int
 from ._torch_family import TorchFamily
 
 __all__ = ["GRU", "LSTM"]
@@ -32,7 +30,7 @@ class _Recurrent(TorchFamily):
     dropout : float
         On embeddings, between layers and on outputs; 0 disables.
     context, stride, batch_size, epochs, lr, weight_decay, warmup, min_lr_ratio, grad_clip,
-    patience, token_budget, threads, bf16, progress
+    patience, token_budget, threads, bf16, progress, device
         Training and scoring; documented in ``docs/torch.md``.
     """
 
@@ -41,7 +39,7 @@ class _Recurrent(TorchFamily):
     hidden: int
     layers: int
     dropout: float
-    _test_params: ClassVar[dict[str, Any]] = {
+    example_params: ClassVar[dict[str, Any]] = {
         "embedding": 8,
         "hidden": 16,
         "context": 8,
@@ -70,6 +68,7 @@ class _Recurrent(TorchFamily):
         threads: int = 1,
         bf16: bool = False,
         progress: bool = True,
+        device: str = "cpu",
     ) -> None:
         super().__init__(
             embedding=embedding,
@@ -90,6 +89,7 @@ class _Recurrent(TorchFamily):
             threads=threads,
             bf16=bf16,
             progress=progress,
+            device=device,
         )
 
     def _validate_network(self, owner: str, params: dict[str, Any]) -> None:
@@ -111,7 +111,6 @@ class _Recurrent(TorchFamily):
         )
 
 
-@registry.register("gru")
 class GRU(_Recurrent):
     """Gated recurrent unit language model (Cho et al., 2014)."""
 
@@ -119,7 +118,6 @@ class GRU(_Recurrent):
     _cell = "gru"
 
 
-@registry.register("lstm")
 class LSTM(_Recurrent):
     """Long short-term memory language model (Hochreiter and Schmidhuber, 1997)."""
 

@@ -2,8 +2,7 @@
 
 Pre-norm blocks (causal self-attention, then a GELU MLP four times as wide), learned or
 sinusoidal absolute positions, a linear softmax head over ``vocab_size + 1`` outcomes.
-Needs the optional PyTorch extra (``pip install torch==2.13.0`` then
-``pip install 'retrograde[torch]'``). A network reads at most ``context`` positions; longer
+Needs PyTorch (``pip install torch==2.13.0``, the CPU build). A network reads at most ``context`` positions; longer
 units are scored with sliding windows that condition only on earlier tokens of the same
 unit (:mod:`retrograde.families._torch_common`).
 """
@@ -13,14 +12,12 @@ from __future__ import annotations
 from types import ModuleType
 from typing import Any, ClassVar
 
-from .._validation import check_choice, check_float, check_int, invalid
-from . import registry
+from ..validation import check_choice, check_float, check_int, invalid
 from ._torch_family import TorchFamily
 
 __all__ = ["Transformer"]
 
 
-@registry.register("transformer")
 class Transformer(TorchFamily):
     """Decoder-only causal transformer.
 
@@ -37,7 +34,7 @@ class Transformer(TorchFamily):
     context : int
         Positions one window holds (sweep it for context-length studies).
     stride, batch_size, epochs, lr, weight_decay, warmup, min_lr_ratio, grad_clip,
-    patience, token_budget, threads, bf16, progress
+    patience, token_budget, threads, bf16, progress, device
         Training and scoring; documented in ``docs/torch.md``.
     """
 
@@ -47,7 +44,7 @@ class Transformer(TorchFamily):
     heads: int
     dropout: float
     positional: str
-    _test_params: ClassVar[dict[str, Any]] = {
+    example_params: ClassVar[dict[str, Any]] = {
         "width": 16,
         "layers": 1,
         "heads": 2,
@@ -78,6 +75,7 @@ class Transformer(TorchFamily):
         threads: int = 1,
         bf16: bool = False,
         progress: bool = True,
+        device: str = "cpu",
     ) -> None:
         super().__init__(
             width=width,
@@ -99,6 +97,7 @@ class Transformer(TorchFamily):
             threads=threads,
             bf16=bf16,
             progress=progress,
+            device=device,
         )
 
     def _validate_network(self, owner: str, params: dict[str, Any]) -> None:

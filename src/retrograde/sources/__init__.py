@@ -1,9 +1,13 @@
 """Sources: where units come from. ``make(name, **params)``, ``names()``, ``registry``.
 
 File sources (``text``, ``jsonl``, ``fasta``, ``tokens``, and the invented ``demo`` corpus)
-stream :class:`~retrograde._document.Document` records; calibration sources (``markov``,
+stream :class:`~retrograde.data.Document` records; calibration sources (``markov``,
 ``linear_gf2``, ``automaton``) generate fixed-length units and give each unit's exact
-negative log-likelihood. See ``docs/sources.md``.
+negative log-likelihood. :func:`source_units` makes the train / valid / test units of any
+source, as the pipeline's ``units`` stage and ``retrograde check`` both need them. See
+``docs/sources.md``.
+
+To add a built-in source, write its module here and list its class in ``_BUILTIN`` below.
 
 Examples
 --------
@@ -18,12 +22,59 @@ from __future__ import annotations
 
 from typing import Any
 
-from .._registry import Registry
-from ._base import CalibrationSource, FileSource, Source
+from ..registry import Registry
+from ._base import (
+    CalibrationSource,
+    EncodedFileSource,
+    FileSource,
+    Source,
+    find_lone_carriage_return,
+)
+from ._units import SourceUnits, source_units
+from .automaton import AutomatonSource
+from .demo import DemoSource
+from .fasta import FastaSource
+from .jsonl import JsonlSource
+from .linear_gf2 import LinearGF2Source
+from .markov import MarkovSource
+from .text import TextSource
+from .tokens import TokensSource
 
-__all__ = ["CalibrationSource", "FileSource", "Source", "make", "names", "registry"]
+__all__ = [
+    "AutomatonSource",
+    "CalibrationSource",
+    "DemoSource",
+    "EncodedFileSource",
+    "FastaSource",
+    "FileSource",
+    "JsonlSource",
+    "LinearGF2Source",
+    "MarkovSource",
+    "Source",
+    "SourceUnits",
+    "TextSource",
+    "TokensSource",
+    "find_lone_carriage_return",
+    "make",
+    "names",
+    "registry",
+    "source_units",
+]
 
-registry: Registry[Source] = Registry("source", "retrograde.sources")
+_BUILTIN: tuple[type[Source], ...] = (
+    TextSource,
+    JsonlSource,
+    FastaSource,
+    TokensSource,
+    DemoSource,
+    MarkovSource,
+    LinearGF2Source,
+    AutomatonSource,
+)
+
+registry: Registry[Source] = Registry("source", "retrograde.sources", Source)
+for _source in _BUILTIN:
+    registry.register(_source.name)(_source)
 
 
 def make(name: str, **params: Any) -> Source:
@@ -34,7 +85,3 @@ def make(name: str, **params: Any) -> Source:
 def names() -> list[str]:
     """Sorted names of every registered source."""
     return registry.names()
-
-
-# Built-in sources register themselves on import (keep these imports last).
-from . import automaton, demo, fasta, jsonl, linear_gf2, markov, text, tokens  # noqa: E402,F401

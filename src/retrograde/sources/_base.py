@@ -1,6 +1,6 @@
 """The two contracts sources follow, and the file helpers the file sources share.
 
-A *file source* streams :class:`~retrograde._document.Document` records from files
+A *file source* streams :class:`~retrograde.data.Document` records from files
 (``paths()`` lists the files, for DVC dependencies; ``documents()`` yields records one at a
 time, so memory stays bounded by the largest record, not the corpus).
 
@@ -17,22 +17,33 @@ any work with ``source '<name>': parameter <key>=<value> is invalid; allowed: ..
 
 from __future__ import annotations
 
+import contextlib
 import glob
 import inspect
 import os
+import re
+import stat
 from abc import ABC, abstractmethod
 from collections.abc import Iterator, Mapping, Sequence
 from pathlib import Path
-from typing import Any, ClassVar
+from typing import Any, BinaryIO, ClassVar
 
 import numpy as np
 
-from .._document import Document
-from .._validation import check_choice, check_int, invalid
-from ..errors import DataError
-from ..sequences import SequenceSet
+from ..data import Document, SequenceSet
+from ..errors import DataError, MissingFileError
+from ..validation import check_choice, check_int, invalid
 
-__all__ = ["CalibrationSource", "FileSource", "Source", "expand_files", "iter_lines"]
+__all__ = [
+    "CalibrationSource",
+    "FileSource",
+    "Source",
+    "check_regular_file",
+    "expand_files",
+    "find_lone_carriage_return",
+    "iter_lines",
+    "open_regular",
+]
 
 #: how undecodable bytes are handled: refuse (naming file and byte offset) or U+FFFD
 DECODE_ERRORS = ("strict", "replace")
@@ -188,15 +199,19 @@ def expand_files(owner: str, key: str, value: Any) -> list[Path]:
     """Expand paths and globs into existing files, in the given order, sorted within a glob.
 
     A glob matching nothing, a missing file and a folder are refused with a one-line
-    :class:`DataError`; a file named twice is read once.
+    :class:`DataError`, and so is anything that is not a regular file (a FIFO, socket or
+    device, named or matched: reading one could block forever); a file named twice is read
+    once.
     """
     found: list[Path] = []
     for pattern in _as_path_list(owner, key, value):
         if _GLOB_CHARS & set(pattern):
             matches = sorted(Path(m) for m in glob.glob(pattern, recursive=True))
-            matches = [m for m in matches if m.is_file()]
+            matches = [m for m in matches if not m.is_dir()]
+            for match in matches:
+                check_regular_file(owner, match)
             if not matches:
-                raise DataError(
+                raise MissingFileError(
                     f"{owner}: {key} pattern {pattern!r} matches no file "
                     f"(relative to {Path.cwd()}); check the pattern"
                 )
@@ -206,17 +221,91 @@ def expand_files(owner: str, key: str, value: Any) -> list[Path]:
                 raise DataError(
                     f"{owner}: {key} {pattern!r} is a folder; name its files, e.g. '{pattern}/*.txt'"
                 )
-            if not path.is_file():
-                raise DataError(
+            if not path.exists():
+                raise MissingFileError(
                     f"{owner}: {key} file {pattern!r} not found (relative to {Path.cwd()})"
                 )
+            check_regular_file(owner, path)
             matches = [path]
         found.extend(m for m in matches if m not in found)
     return found
 
 
+def check_regular_file(owner: str, path: Path) -> None:
+    """Refuse ``path`` unless it is a regular file (or a link to one)."""
+    try:
+        mode = path.stat().st_mode
+    except OSError as exc:
+        raise DataError(f"{owner}: cannot read {str(path)!r} ({exc.strerror})") from None
+    if not stat.S_ISREG(mode):
+        raise DataError(
+            f"{owner}: {str(path)!r} is a {_file_kind(mode)}, not a regular file; reading it "
+            "could block or never end; point the source at regular files"
+        )
+
+
+def _file_kind(mode: int) -> str:
+    for test, kind in (
+        (stat.S_ISFIFO, "FIFO (named pipe)"),
+        (stat.S_ISCHR, "character device"),
+        (stat.S_ISBLK, "block device"),
+        (stat.S_ISSOCK, "socket"),
+        (stat.S_ISDIR, "folder"),
+    ):
+        if test(mode):
+            return kind
+    return "special file"
+
+
+@contextlib.contextmanager
+def open_regular(path: Path) -> Iterator[BinaryIO]:
+    """``path`` opened for reading bytes, refused unless it is a regular file.
+
+    Opened without blocking and checked on the open file itself, so a FIFO put in the
+    file's place after the sources were checked cannot hang a stage.
+    """
+    fd = os.open(path, os.O_RDONLY | os.O_NONBLOCK | os.O_CLOEXEC)
+    try:
+        mode = os.fstat(fd).st_mode
+        if not stat.S_ISREG(mode):
+            raise DataError(
+                f"{path}: is a {_file_kind(mode)}, not a regular file; point the source at "
+                "regular files"
+            )
+        os.set_blocking(fd, True)
+        handle = os.fdopen(fd, "rb")
+    except BaseException:
+        os.close(fd)
+        raise
+    with handle:
+        yield handle
+
+
 def check_decode_errors(owner: str, value: Any) -> str:
     return check_choice(owner, "errors", value, DECODE_ERRORS)
+
+
+def lone_carriage_return(path: Path | str, line_number: int, offset: int) -> DataError:
+    """The error for a CR not followed by LF at byte ``offset`` (on line ``line_number``)."""
+    return DataError(
+        f"{path}:{line_number}: carriage return without a line feed at byte offset {offset} "
+        "of the file (old Mac line ends, or a stray CR); lines would silently merge; convert "
+        "the line ends to LF (e.g. tr '\\r' '\\n') or remove the stray CR"
+    )
+
+
+def find_lone_carriage_return(path: Path | str, data: bytes) -> None:
+    """Raise :func:`lone_carriage_return` for the first CR in ``data`` not followed by LF.
+
+    A CR as the very last byte counts as a line end (as :func:`iter_lines` reads it).
+    """
+    match = _LONE_CR.search(data)
+    if match is not None and match.start() != len(data) - 1:
+        offset = match.start()
+        raise lone_carriage_return(path, data.count(b"\n", 0, offset) + 1, offset)
+
+
+_LONE_CR = re.compile(rb"\r(?!\n)")
 
 
 def iter_lines(path: Path, errors: str) -> Iterator[tuple[int, str, int]]:
@@ -225,10 +314,12 @@ def iter_lines(path: Path, errors: str) -> Iterator[tuple[int, str, int]]:
     The line ending (LF or CRLF) is removed, so CRLF files read exactly like LF files; a
     UTF-8 byte-order mark at the start is dropped. ``n_bytes`` counts the UTF-8 bytes of
     ``text``. Memory is bounded by the longest line. With ``errors="strict"`` invalid UTF-8
-    raises a :class:`DataError` naming the file, line and byte offset.
+    raises a :class:`DataError` naming the file, line and byte offset. A carriage return
+    not followed by a line feed (old Mac line ends) raises one too, whatever ``errors``
+    says: read as LF files, such lines would silently merge into one.
     """
     line_start = 0  # byte offset of the current line in the file
-    with open(path, "rb") as handle:
+    with open_regular(path) as handle:
         for line_number, raw in enumerate(handle, start=1):
             body = raw[:-1] if raw.endswith(b"\n") else raw
             if body.endswith(b"\r"):
@@ -236,6 +327,8 @@ def iter_lines(path: Path, errors: str) -> Iterator[tuple[int, str, int]]:
             body_start = line_start
             if line_number == 1 and body.startswith(b"\xef\xbb\xbf"):
                 body, body_start = body[3:], 3
+            if b"\r" in body:
+                raise lone_carriage_return(path, line_number, body_start + body.index(b"\r"))
             try:
                 text = body.decode("utf-8", errors=errors)
             except UnicodeDecodeError as exc:

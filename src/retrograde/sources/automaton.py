@@ -21,9 +21,8 @@ from typing import Any
 
 import numpy as np
 
-from .._validation import check_int
-from ..sequences import SequenceSet
-from . import registry
+from ..data import SequenceSet
+from ..validation import check_int
 from ._base import CalibrationSource
 
 __all__ = ["AutomatonSource", "evolve", "permutive", "step"]
@@ -68,7 +67,6 @@ def permutive(rule: int) -> tuple[bool, bool]:
     return left, right
 
 
-@registry.register("automaton")
 class AutomatonSource(CalibrationSource):
     """Rows of an elementary cellular automaton; token ids are the cell values 0 and 1.
 

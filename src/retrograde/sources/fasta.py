@@ -13,16 +13,14 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
-from .._document import Document
-from .._validation import invalid
+from ..data import Document
 from ..errors import DataError
-from . import registry
+from ..validation import invalid
 from ._base import EncodedFileSource, iter_lines
 
 __all__ = ["FastaSource"]
 
 
-@registry.register("fasta")
 class FastaSource(EncodedFileSource):
     """FASTA files.
 

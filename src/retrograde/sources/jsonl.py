@@ -13,16 +13,14 @@ from typing import Any
 
 import numpy as np
 
-from .._document import Document
-from .._validation import invalid
+from ..data import Document
 from ..errors import DataError
-from . import registry
+from ..validation import invalid
 from ._base import EncodedFileSource, iter_lines
 
 __all__ = ["JsonlSource"]
 
 
-@registry.register("jsonl")
 class JsonlSource(EncodedFileSource):
     """JSON Lines files.
 

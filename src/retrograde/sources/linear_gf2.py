@@ -31,9 +31,9 @@ from typing import Any
 
 import numpy as np
 
-from .._validation import check_choice, check_int
-from ..sequences import SequenceSet
-from . import _gf2, registry
+from ..data import SequenceSet
+from ..validation import check_choice, check_int
+from . import _gf2
 from ._base import CalibrationSource
 
 __all__ = ["LinearGF2Source"]
@@ -42,7 +42,6 @@ MAX_BITS = 1024
 STRUCTURES = ("lu", "banded")
 
 
-@registry.register("linear_gf2")
 class LinearGF2Source(CalibrationSource):
     """Units ``x ‖ A x`` over GF(2); token ids are the bits 0 and 1.
 

@@ -20,10 +20,9 @@ from typing import Any
 
 import numpy as np
 
-from .._validation import check_float, check_int
+from ..data import SequenceSet
 from ..errors import ConfigError
-from ..sequences import SequenceSet
-from . import registry
+from ..validation import check_float, check_int
 from ._base import CalibrationSource
 
 __all__ = [
@@ -132,7 +131,6 @@ def _digits(numbers: np.ndarray, base: int, width: int) -> np.ndarray:
     return (numbers[:, None] // powers) % base
 
 
-@registry.register("markov")
 class MarkovSource(CalibrationSource):
     """A random stationary Markov chain of order ``order`` over ``vocab_size`` symbols.
 

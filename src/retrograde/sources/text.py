@@ -8,7 +8,9 @@ one document share its ``doc_id`` (the bootstrap resamples documents as a whole)
 - ``split="paragraph"``: runs of non-blank lines separated by blank lines (streamed).
 - ``split="line"``: every non-blank line is one document (streamed).
 
-Line endings are normalized: CRLF reads as LF, and a UTF-8 byte-order mark is dropped.
+Line endings are normalized: CRLF reads as LF, and a UTF-8 byte-order mark is dropped. A
+carriage return without a line feed is refused naming file, line and byte offset (lines
+would silently merge).
 """
 
 from __future__ import annotations
@@ -17,18 +19,16 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
-from .._document import Document
-from .._validation import check_choice
+from ..data import Document
 from ..errors import DataError
-from . import registry
-from ._base import EncodedFileSource, iter_lines
+from ..validation import check_choice
+from ._base import EncodedFileSource, find_lone_carriage_return, iter_lines, open_regular
 
 __all__ = ["TextSource"]
 
 SPLITS = ("file", "paragraph", "line")
 
 
-@registry.register("text")
 class TextSource(EncodedFileSource):
     """UTF-8 text files.
 
@@ -104,7 +104,9 @@ def _paragraphs(path: Path, errors: str) -> Iterator[tuple[int, str, int]]:
 
 def _read_whole(path: Path, errors: str) -> tuple[int, str, int]:
     """The whole file as one text, CRLF normalized to LF (memory ~ file size)."""
-    data = path.read_bytes()
+    with open_regular(path) as handle:
+        data = handle.read()
+    find_lone_carriage_return(path, data)
     start = 3 if data.startswith(b"\xef\xbb\xbf") else 0
     try:
         text = data[start:].decode("utf-8", errors=errors)
@@ -116,4 +118,6 @@ def _read_whole(path: Path, errors: str) -> tuple[int, str, int]:
             "convert the file to UTF-8 or set the source's errors='replace'"
         ) from None
     text = text.replace("\r\n", "\n")
+    if text.endswith("\r"):  # a CR as the last byte ends the last line, as in iter_lines
+        text = text[:-1] + "\n"
     return 1, text, len(text.encode("utf-8"))

@@ -23,17 +23,14 @@ from typing import Any
 
 import numpy as np
 
-from .._document import Document
-from .._validation import check_int
-from ..errors import DataError
-from ..sequences import SequenceSet
-from . import registry
-from ._base import _GLOB_CHARS, FileSource, _as_path_list
+from ..data import Document, SequenceSet
+from ..errors import DataError, MissingFileError
+from ..validation import check_int
+from ._base import _GLOB_CHARS, FileSource, _as_path_list, check_regular_file
 
 __all__ = ["TokensSource"]
 
 
-@registry.register("tokens")
 class TokensSource(FileSource):
     """Token-id arrays (``SequenceSet`` folders or ``.npy`` files).
 
@@ -83,18 +80,23 @@ class TokensSource(FileSource):
         for pattern in _as_path_list(self._owner, "files", self.files):
             if _GLOB_CHARS & set(pattern):
                 matches = [Path(m) for m in sorted(glob.glob(pattern, recursive=True))]
+                for match in matches:
+                    if match.suffix == ".npy" and not match.is_dir():
+                        check_regular_file(self._owner, match)  # a FIFO would block np.load
                 matches = [m for m in matches if _is_input(m)]
                 if not matches:
-                    raise DataError(
+                    raise MissingFileError(
                         f"{self._owner}: files pattern {pattern!r} matches no .npy file or "
                         f"sequence folder (relative to {Path.cwd()}); check the pattern"
                     )
             else:
                 path = Path(pattern)
                 if not path.exists():
-                    raise DataError(
+                    raise MissingFileError(
                         f"{self._owner}: {pattern!r} not found (relative to {Path.cwd()})"
                     )
+                if not path.is_dir():
+                    check_regular_file(self._owner, path)
                 if not _is_input(path):
                     raise DataError(
                         f"{self._owner}: {pattern!r} is neither a .npy file nor a folder "

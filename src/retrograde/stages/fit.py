@@ -8,6 +8,11 @@
 - ``test_logprobs.npy`` float64 (n_test_tokens + n_test_units,): natural-log probabilities
   in the model's order, ``len + 1`` per test unit (end marker last), units back to back
 - ``curve.json``        the learning curve (one dict per epoch)
+- ``budget.json``       what the fit cost: ``train_tokens`` (target positions trained on,
+  end markers included), ``steps`` (optimizer or minibatch updates; ``null`` for counting
+  families), ``n_params`` (numbers learned), ``cpu_s`` and ``wall_s`` (fit, test scoring and
+  the normalization probe, trainer processes included). Times differ between runs, so they
+  stay out of ``metrics.json``; the table stage puts them in ``cells.csv`` and the report.
 - ``fit.log``           what happened; on a crash it ends with the traceback
 
 A crash becomes one line naming the cell and its ``fit.log`` (exit status 2).
@@ -16,7 +21,10 @@ A crash becomes one line naming the cell and its ``fit.log`` (exit status 2).
 from __future__ import annotations
 
 import argparse
+import contextlib
 import io
+import os
+import time
 import traceback
 from collections.abc import Sequence
 from pathlib import Path
@@ -24,12 +32,15 @@ from typing import Any, TextIO
 
 import numpy as np
 
-from .._io import atomic_write_bytes, atomic_write_json
+from ..config import ModelConfig, cell_dir, load_params, order_dir
+from ..data import SPLITS, SequenceSet, atomic_write_bytes, atomic_write_json, open_for_writing
 from ..errors import FitError, RetrogradeError
-from ..sequences import SequenceSet
-from . import cell_dir, order_dir, read_params, run_stage
+from . import run_stage
 
-__all__ = ["fit_cell", "main"]
+__all__ = ["BUDGET_FIELDS", "cell_budget", "fit_cell", "main"]
+
+#: the fields of ``budget.json``, in order
+BUDGET_FIELDS = ("train_tokens", "steps", "cpu_s", "wall_s", "n_params")
 
 
 def _plain(value: Any) -> Any:
@@ -38,32 +49,35 @@ def _plain(value: Any) -> Any:
 
 
 def fit_cell(
-    model_spec: dict[str, Any],
+    model_spec: ModelConfig,
     splits: dict[str, SequenceSet],
     *,
     seed: int,
     log: TextIO | None = None,
 ) -> tuple[Any, np.ndarray, list[dict[str, Any]]]:
-    """Fit ``model_spec`` (``{family, params}``) on train (valid for early stopping).
+    """Fit the model ``model_spec`` describes on train (valid for early stopping).
 
     Returns ``(model, test_logprobs, curve)``; ``test_logprobs`` is the flat float64 array
     of the test units' log-probabilities (``len + 1`` per unit, end marker last).
     """
     from .. import families
-    from ..families._probe import check_probe, probe_positions, probe_size
 
     def note(line: str) -> None:
         if log is not None:
             print(line, file=log, flush=True)
 
-    model = families.make(model_spec["family"], **model_spec["params"])
+    model = families.make(model_spec.family, **model_spec.params)
     train, valid, test = splits["train"], splits["valid"], splits["test"]
-    note(f"fit {model_spec['family']} {model_spec['params']} seed={seed}")
+    note(f"fit {model_spec.family} {model_spec.params} seed={seed}")
     note(
         f"train {len(train)} units / {len(train.tokens)} tokens; valid {len(valid)}; test {len(test)}"
     )
-    # One call, so a family whose training run scores the test units trains only once.
-    logprobs = model.fit_logprobs(train, valid if len(valid) else None, test, seed=seed)
+    # One call, so a family whose training run scores the test units trains only once;
+    # its progress goes to the log as plain lines (no terminal inside a DVC stage).
+    with contextlib.ExitStack() as stack:
+        if log is not None:
+            stack.enter_context(families.progress_log(log))
+        logprobs = model.fit_logprobs(train, valid if len(valid) else None, test, seed=seed)
     # Plain Python numbers only: curve.json must load anywhere (numpy ints are not JSON).
     curve = [
         {str(key): _plain(value) for key, value in epoch.items()}
@@ -75,21 +89,58 @@ def fit_cell(
     expected = len(test.tokens) + len(test)
     if values.shape != (expected,) or not np.array_equal(logprobs.lengths, test.lengths + 1):
         raise FitError(
-            f"family {model_spec['family']!r} returned {values.size} log-probabilities for "
+            f"family {model_spec.family!r} returned {values.size} log-probabilities for "
             f"{len(test)} test units; expected len + 1 per unit ({expected} in all)"
         )
     if not np.all(np.isfinite(values)) or np.any(values > 1e-9):
         raise FitError(
-            f"family {model_spec['family']!r} returned log-probabilities that are not finite "
+            f"family {model_spec.family!r} returned log-probabilities that are not finite "
             "and <= 0; every outcome needs a probability above 0"
         )
     # The normalization probe (families/_probe.py): whole distributions at a few positions.
-    positions = probe_positions(test, probe_size(model.vocab_size), seed)
+    positions = families.probe_positions(test, families.probe_size(model.vocab_size), seed)
     distributions = model.probe_logprobs(test, positions)
-    check_probe(f"family {model_spec['family']!r}", test, values, positions, distributions)
+    families.check_probe(f"family {model_spec.family!r}", test, values, positions, distributions)
     note(f"probe: {len(positions)} test positions score distributions that sum to 1")
     note(f"test nats {-values.sum():.6f} over {len(test.tokens)} tokens")
     return model, values, curve
+
+
+def _cpu_seconds() -> float:
+    """User + system CPU time of this process and its finished children (trainers)."""
+    times = os.times()
+    return times.user + times.system + times.children_user + times.children_system
+
+
+def cell_budget(
+    model: Any,
+    train: SequenceSet,
+    curve: list[dict[str, Any]],
+    *,
+    cpu_s: float,
+    wall_s: float,
+) -> dict[str, Any]:
+    """The ``budget.json`` of one cell (see the module docstring); unknown values are None.
+
+    ``train_tokens`` is what the family reports (``tokens_seen_``, or the last epoch's
+    ``tokens_seen`` in its curve), else one pass over the training positions per epoch of
+    the curve (at least one) for the built-in families, else None (an external trainer
+    that does not say).
+    """
+    seen = getattr(model, "tokens_seen_", None)
+    if seen is None and curve and isinstance(curve[-1].get("tokens_seen"), (int, float)):
+        seen = curve[-1]["tokens_seen"]
+    if seen is None and getattr(model, "name", "") != "command":
+        seen = max(len(curve), 1) * (len(train.tokens) + len(train))
+    steps = getattr(model, "steps_", None)
+    n_params = model.n_parameters() if hasattr(model, "n_parameters") else None
+    return {
+        "train_tokens": None if seen is None else int(seen),
+        "steps": None if steps is None else int(steps),
+        "cpu_s": round(float(cpu_s), 3),
+        "wall_s": round(float(wall_s), 3),
+        "n_params": None if n_params is None else int(n_params),
+    }
 
 
 def _body(args: argparse.Namespace) -> None:
@@ -97,19 +148,37 @@ def _body(args: argparse.Namespace) -> None:
     cell = wdir / str(cell_dir(args.source, args.model, args.order, args.seed))
     name = f"{args.source}/{args.model}/{args.order}/seed{args.seed}"
     cell.mkdir(parents=True, exist_ok=True)
+    if not cell.resolve().is_relative_to(wdir):
+        raise FitError(
+            f"cell {name}: its folder {cell.relative_to(wdir).as_posix()} leads outside "
+            f"{wdir} through a symbolic link; remove the link and rerun"
+        )
     log_path = cell / "fit.log"
-    # The log is written as the fit goes (not atomically) so that a crash leaves it behind.
-    with log_path.open("w", encoding="utf-8") as log:
+    # The log is written as the fit goes (not atomically) so that a crash leaves it behind;
+    # a symbolic link in its place is replaced, never written through.
+    with open_for_writing(log_path) as log:
         try:
-            spec = read_params(wdir)["study"]["models"][args.model]
+            spec = load_params(wdir).study.models[args.model]
             data = wdir / str(order_dir(args.source, args.order))
-            splits = {s: SequenceSet.load(data / s) for s in ("train", "valid", "test")}
+            splits = {s: SequenceSet.load(data / s) for s in SPLITS}
+            cpu_started, wall_started = _cpu_seconds(), time.perf_counter()
             model, values, curve = fit_cell(spec, splits, seed=args.seed, log=log)
+            budget = cell_budget(
+                model,
+                splits["train"],
+                curve,
+                cpu_s=_cpu_seconds() - cpu_started,
+                wall_s=time.perf_counter() - wall_started,
+            )
+            # Counts only: the log is hashed with the cell, its times are in budget.json.
+            counts = {k: v for k, v in budget.items() if k not in ("cpu_s", "wall_s")}
+            print(f"budget {counts} (times in budget.json)", file=log, flush=True)
             model.save(cell / "model")
             buffer = io.BytesIO()
             np.save(buffer, values)
             atomic_write_bytes(cell / "test_logprobs.npy", buffer.getvalue())
             atomic_write_json(cell / "curve.json", curve)
+            atomic_write_json(cell / "budget.json", budget)
         except Exception as exc:
             traceback.print_exc(file=log)
             reason = (

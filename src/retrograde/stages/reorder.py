@@ -16,9 +16,10 @@ from typing import Any
 
 import numpy as np
 
-from .._io import atomic_dir
-from ..sequences import SequenceSet
-from . import order_dir, read_params, run_stage, units_dir
+from .. import orders
+from ..config import load_params, order_dir, units_dir
+from ..data import SPLITS, SequenceSet, atomic_dir
+from . import run_stage
 
 __all__ = ["main", "reorder_splits"]
 
@@ -32,30 +33,25 @@ def reorder_splits(
 
     Examples
     --------
-    >>> from retrograde import orders
     >>> splits = {"test": SequenceSet.from_list([[1, 2, 3]], vocab_size=4)}
     >>> out, positions = reorder_splits(splits, orders.make("reverse"), order_name="reverse")
     >>> out["test"][0].tolist(), positions.tolist()
     ([3, 2, 1], [2, 1, 0])
     """
-    from ..orders import verify_bijection
-
     reordered = {}
     for name, units in splits.items():
-        verify_bijection(order, units, order_name=order_name)
+        orders.verify_bijection(order, units, order_name=order_name)
         reordered[name] = order.apply_set(units)
     positions_test = np.asarray(order.positions_set(splits["test"]), dtype=np.int64)
     return reordered, positions_test
 
 
 def _body(args: argparse.Namespace) -> None:
-    from .. import orders
-
     wdir = Path(args.params).resolve()
-    spec = read_params(wdir)["study"]["orders"][args.order]
-    order = orders.make(spec["name"], **spec["params"])
+    spec = load_params(wdir).study.orders[args.order]
+    order = orders.make(spec.name, **spec.params)
     source_units = wdir / str(units_dir(args.source))
-    splits = {name: SequenceSet.load(source_units / name) for name in ("train", "valid", "test")}
+    splits = {name: SequenceSet.load(source_units / name) for name in SPLITS}
     reordered, positions_test = reorder_splits(splits, order, order_name=args.order)
     with atomic_dir(wdir / str(order_dir(args.source, args.order))) as tmp:
         for name, units in reordered.items():

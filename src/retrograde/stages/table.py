@@ -3,7 +3,8 @@
 ``python -m retrograde.stages.table`` reads ``params.yaml`` and, for every cell the grid
 names (never a glob, so cells left over from a larger grid are ignored), the test
 log-probabilities; it writes ``metrics.json`` (``{source: {model: {order: leaf}}}``),
-``report.md`` and ``plots/`` through :func:`retrograde.report.write_all`.
+``report.md``, ``cells.csv`` (one row per fit cell: per-seed bits and gap, the cell's
+``budget.json``) and ``plots/`` through :func:`retrograde.report.write_all`.
 """
 
 from __future__ import annotations
@@ -17,10 +18,19 @@ from typing import Any
 
 import numpy as np
 
-from .. import __version__
+from .. import __version__, stats
+from ..config import (
+    RetrogradeConfig,
+    StudyConfig,
+    cell_dir,
+    check_stats,
+    load_params,
+    order_dir,
+    units_dir,
+)
+from ..data import Ragged, SequenceSet
 from ..errors import DataError
-from ..sequences import Ragged, SequenceSet
-from . import cell_dir, order_dir, read_params, run_stage, units_dir
+from . import run_stage
 
 __all__ = ["collect", "main"]
 
@@ -39,6 +49,107 @@ def _read_cell(wdir: Path, source: str, model: str, order: str, seed: int) -> tu
     return values, curve
 
 
+#: what a cell's budget.json holds (written by the fit stage); missing in older cells
+_BUDGET_FIELDS = ("train_tokens", "steps", "cpu_s", "wall_s", "n_params")
+
+
+def _read_budget(wdir: Path, source: str, model: str, order: str, seed: int) -> dict[str, Any]:
+    """The cell's ``budget.json`` (``None`` for every field when an older fit wrote none)."""
+    path = wdir / str(cell_dir(source, model, order, seed)) / "budget.json"
+    found = json.loads(path.read_text(encoding="utf-8")) if path.is_file() else {}
+    return {key: found.get(key) for key in _BUDGET_FIELDS}
+
+
+def _seed_rows(
+    wdir: Path,
+    source: str,
+    model: str,
+    unit_nll: dict[str, np.ndarray],
+    curves: dict[str, Any],
+    seeds: list[int],
+    reference: str,
+    test: SequenceSet,
+) -> list[dict[str, Any]]:
+    """One row per fit cell of one model: per-seed bits and gap, last validation score, budget."""
+    n_tokens = max(int(len(test.tokens)), 1)
+    rows = []
+    for order, losses in unit_nll.items():
+        for row, seed in enumerate(seeds):
+            total, reference_total = float(losses[row].sum()), float(unit_nll[reference][row].sum())
+            scored = [p for p in curves[order][row] if p.get("valid_bits_per_token") is not None]
+            rows.append(
+                {
+                    "source": source,
+                    "model": model,
+                    "order": order,
+                    "seed": seed,
+                    "bits_per_token": stats.rounded(total / np.log(2) / n_tokens),
+                    "gap_pct": stats.rounded(100.0 * (total / reference_total - 1.0)),
+                    "epochs": len(curves[order][row]),
+                    "last_valid_bits_per_token": (
+                        stats.rounded(scored[-1]["valid_bits_per_token"]) if scored else None
+                    ),
+                    "test_units": len(test),
+                    "test_tokens": int(len(test.tokens)),
+                    **_read_budget(wdir, source, model, order, seed),
+                }
+            )
+    return rows
+
+
+def _baseline_bits(wdir: Path, source: str, reference: str) -> float:
+    """Bits per token of a bigram (``ngram``, order ``stats.BASELINE_NGRAM_ORDER``) fitted on
+    the reference order's training units and scored on its test units: a floor of effort
+    that any model worth reading should beat."""
+    from .. import families
+
+    folder = wdir / str(order_dir(source, reference))
+    train, test = SequenceSet.load(folder / "train"), SequenceSet.load(folder / "test")
+    model = families.make("ngram", order=stats.BASELINE_NGRAM_ORDER).fit(train, seed=0)
+    nats = -float(model.logprobs(test).values.sum())
+    return nats / float(np.log(2)) / max(int(len(test.tokens)), 1)
+
+
+def _training_flags(
+    source: str,
+    models: dict[str, dict[str, dict[str, Any]]],
+    curves: dict[str, dict[str, list[Any]]],
+    reference: str,
+    baseline: float,
+) -> list[str]:
+    """Mark under-trained cells in their leaves; return the report's warning lines."""
+    lines = []
+    name = f"a bigram (ngram order {stats.BASELINE_NGRAM_ORDER}) fitted on the same training units"
+    for model, leaves in models.items():
+        falling: list[str] = []
+        n_fits = 0
+        for order, leaf in leaves.items():
+            leaf["baseline_bits_per_token"] = stats.rounded(baseline)
+            leaf["worse_than_baseline"] = stats.worse_than_baseline(
+                leaf["bits_per_token"], baseline
+            )
+            per_seed = [stats.still_falling(curve) for curve in curves[model][order]]
+            n_fits += len(per_seed)
+            leaf["still_improving"] = any(per_seed)
+            falling += [order] * sum(per_seed)
+        if leaves[reference]["worse_than_baseline"]:
+            lines.append(
+                f"source {source!r}: model {model!r} scores "
+                f"{leaves[reference]['bits_per_token']:.4f} bits/token in the reference order, "
+                f"worse than {name} ({baseline:.4f}); it has not learned what a simple model "
+                "learns, so its gaps may reflect its training, not the order"
+            )
+        if falling:
+            orders = ", ".join(dict.fromkeys(falling))
+            lines.append(
+                f"source {source!r}: model {model!r}: {len(falling)} of {n_fits} fits "
+                f"(orders {orders}) ended with the validation loss still falling by more than "
+                f"{stats.STEEP_FALL:.0%} per epoch; train longer (more epochs, or a token "
+                "budget) before reading its gaps"
+            )
+    return lines
+
+
 def _data_hash(units: SequenceSet) -> str:
     digest = hashlib.sha256()
     digest.update(np.ascontiguousarray(units.tokens, dtype="<i4").tobytes())
@@ -54,8 +165,6 @@ def _order_losses(
     Returns ``(unit_nll, natural, curves)``: (n_seeds, n_units) nats per test unit, the
     seed-averaged per-position losses in natural order (end marker last), one curve a seed.
     """
-    from .. import scoring
-
     source, model, order = where
     positions_path = wdir / str(order_dir(source, order)) / "positions_test.npy"
     if not positions_path.is_file():
@@ -70,8 +179,8 @@ def _order_losses(
     for seed in seeds:
         values, curve = _read_cell(wdir, source, model, order, seed)
         logprobs = Ragged(values, score_offsets)
-        unit_nll.append(scoring.unit_nll(logprobs))
-        losses.append(scoring.natural_order_losses(logprobs, positions, test).values)
+        unit_nll.append(stats.unit_nll(logprobs))
+        losses.append(stats.natural_order_losses(logprobs, positions, test).values)
         curves.append(curve)
     natural = Ragged(np.mean(losses, axis=0), score_offsets)
     return np.stack(unit_nll), natural, curves
@@ -85,69 +194,107 @@ def _check_floor(
     test: SequenceSet,
 ) -> None:
     """Refuse a cell that scores below the exact floor by more than noise."""
-    from ..stats import FLOOR_Z, below_floor
-
     n_tokens = max(int(len(test.tokens)), 1)
     for row, seed in enumerate(seeds):
-        excess = below_floor(unit_nll[row], floors)
+        excess = stats.below_floor(unit_nll[row], floors)
         if excess is not None:
             bits = float(unit_nll[row].sum()) / np.log(2) / n_tokens
             floor_bits = float(floors.sum()) / np.log(2) / n_tokens
             raise DataError(
                 f"cell {'/'.join(where)}/seed{seed} scores {bits:.4f} bits/token, below the "
                 f"exact floor {floor_bits:.4f} by more than noise (mean {excess:+.4g} nats per "
-                f"unit, over {FLOOR_Z:g} standard errors); no model beats the true distribution: "
+                f"unit, over {stats.FLOOR_Z:g} standard errors); no model beats the true distribution: "
                 "test units leaked into training, or the probabilities do not sum to 1"
             )
 
 
-def collect(wdir: Path, params: dict[str, Any]) -> dict[str, Any]:
-    """The keyword arguments of :func:`retrograde.report.write_all` for this grid."""
-    from .. import stats
+def _model_results(
+    wdir: Path,
+    source: str,
+    model: str,
+    config: RetrogradeConfig,
+    test: SequenceSet,
+    floors: Any,
+    replicates: dict[str, np.ndarray] | None = None,
+    seed_rows: list[dict[str, Any]] | None = None,
+) -> tuple[dict[str, Any], dict[str, Ragged], dict[str, Any]]:
+    """One model on one source: (its table leaves, natural-order losses, curves) per order.
 
-    study, stats_config = params["study"], params["stats"]
-    reference, seeds = study["reference_order"], [int(s) for s in study["seeds"]]
+    ``replicates``, when given, receives each order's bootstrap gaps; ``seed_rows`` one row
+    per fit cell (:func:`_seed_rows`)."""
+    study, stats_config = config.study, config.stats
+    seeds = study.seeds_of(model)
+    unit_nll: dict[str, np.ndarray] = {}
+    natural: dict[str, Ragged] = {}
+    curves: dict[str, Any] = {}
+    for order in study.orders:
+        where = (source, model, order)
+        unit_nll[order], natural[order], curves[order] = _order_losses(wdir, where, seeds, test)
+        if floors is not None:
+            _check_floor(unit_nll[order], floors, where, seeds, test)
+    leaves = stats.summarize_model(
+        unit_nll,
+        reference_order=study.reference_order,
+        n_tokens=test.lengths,
+        n_bytes=test.n_bytes,
+        doc_ids=test.doc_ids,
+        floors=floors,
+        level=stats_config.level,
+        n_boot=stats_config.n_boot,
+        seed=stats_config.seed,
+        bootstrap_gaps=replicates,
+    )
+    if seed_rows is not None:
+        seed_rows += _seed_rows(
+            wdir, source, model, unit_nll, curves, seeds, study.reference_order, test
+        )
+    return leaves, natural, curves
+
+
+def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
+    """The keyword arguments of :func:`retrograde.report.write_all` for this grid."""
+    check_stats(config.stats)  # the rule composition applied, again on what was read
+    study, stats_config = config.study, config.stats
+    reference = study.reference_order
     table: dict[str, Any] = {}
     profiles: dict[str, Any] = {}
     spans: dict[str, Any] = {}
     curves: dict[str, Any] = {}
+    replicates: dict[str, dict[str, dict[str, np.ndarray]]] = {}
+    cells: list[dict[str, Any]] = []
     data_hashes: dict[str, str] = {}
-    for source in study["sources"]:
+    for source in study.sources:
         folder = wdir / str(units_dir(source))
         info = json.loads((folder / "info.json").read_text(encoding="utf-8"))
         test = SequenceSet.load(folder / "test")
         data_hashes[source] = _data_hash(test)
         floors = np.load(folder / "floors.npy") if (folder / "floors.npy").is_file() else None
         table[source], profiles[source], curves[source] = {}, {}, {}
-        for model in study["models"]:
-            unit_nll: dict[str, np.ndarray] = {}
-            natural: dict[str, Ragged] = {}
-            curves[source][model] = {}
-            for order in study["orders"]:
-                unit_nll[order], natural[order], curves[source][model][order] = _order_losses(
-                    wdir, (source, model, order), seeds, test
-                )
-                if floors is not None:
-                    _check_floor(unit_nll[order], floors, (source, model, order), seeds, test)
-            table[source][model] = stats.summarize_model(
-                unit_nll,
-                reference_order=reference,
-                n_tokens=test.lengths,
-                n_bytes=test.n_bytes,
-                doc_ids=test.doc_ids,
-                floors=floors,
-                level=stats_config["level"],
-                n_boot=stats_config["n_boot"],
-                seed=stats_config["seed"],
+        for model in study.models_on(source):
+            draws = replicates.setdefault(source, {}).setdefault(model, {})
+            leaves, natural, model_curves = _model_results(
+                wdir, source, model, config, test, floors, draws, cells
             )
+            table[source][model], curves[source][model] = leaves, model_curves
             profiles[source][model] = stats.position_profile(
-                natural, reference_order=reference, n_buckets=stats_config["position_buckets"]
+                natural, reference_order=reference, n_buckets=stats_config.position_buckets
             )
             if info.get("spans"):
                 named = {k: (int(v[0]), int(v[1])) for k, v in info["spans"].items()}
                 spans.setdefault(source, {})[model] = stats.span_breakdown(natural, named)
     stats.adjust_holm(table, reference_order=reference)
-    warning = stats.seed_warning(len(seeds))
+    stats.simultaneous_intervals(table, replicates, reference_order=reference)
+    flags = [
+        line
+        for source in study.sources
+        for line in _training_flags(
+            source,
+            table[source],
+            curves[source],
+            reference,
+            _baseline_bits(wdir, source, reference),
+        )
+    ]
     return {
         "table": table,
         "profiles": profiles,
@@ -157,21 +304,43 @@ def collect(wdir: Path, params: dict[str, Any]) -> dict[str, Any]:
         "provenance": {
             "package_version": __version__,
             "test_units_sha256": data_hashes,
-            "params": params,
+            "params": config.to_dict(),
         },
-        "warnings": [warning] if warning else [],
-        "level": stats_config["level"],
+        "warnings": _seed_warnings(study) + flags,
+        "level": stats_config.level,
+        "cells": cells,
     }
 
 
-def _sweeps(study: dict[str, Any]) -> dict[str, Any]:
+def _seed_warnings(study: StudyConfig) -> list[str]:
+    """The report's caution about too few seeds, naming the models when not all share it."""
+    few: dict[int, list[str]] = {}
+    for model in study.models:
+        n_seeds = len(study.seeds_of(model))
+        if stats.seed_warning(n_seeds):
+            few.setdefault(n_seeds, []).append(model)
+    warnings = []
+    for n_seeds, models in few.items():
+        text = str(stats.seed_warning(n_seeds))
+        if len(models) < len(study.models):
+            names = ", ".join(repr(m) for m in models)
+            text = f"model{'s' if len(models) > 1 else ''} {names}: {text}"
+        warnings.append(text)
+    return warnings
+
+
+def _sweeps(study: StudyConfig) -> dict[str, Any]:
     """One report sweep per (sweep, source): ``{source, parameter, models: {name: value}}``."""
     out = {}
-    for name, sweep in study.get("sweeps", {}).items():
-        for source in study["sources"]:
-            key = name if len(study["sources"]) == 1 else f"{name}-{source}"
-            models = sweep.get("models", {})
-            out[key] = {"source": source, "parameter": sweep["parameter"], "models": models}
+    for name, sweep in study.sweeps.items():
+        sources = study.sources_of(sweep.model)
+        for source in sources:
+            key = name if len(sources) == 1 else f"{name}-{source}"
+            out[key] = {
+                "source": source,
+                "parameter": sweep.parameter,
+                "models": sweep.models or {},
+            }
     return out
 
 
@@ -179,7 +348,7 @@ def _body(args: argparse.Namespace) -> None:
     from .. import report
 
     wdir = Path(args.params).resolve()
-    report.write_all(wdir, **collect(wdir, read_params(wdir)))
+    report.write_all(wdir, **collect(wdir, load_params(wdir)))
 
 
 def main(argv: Sequence[str] | None = None) -> int:

@@ -28,11 +28,9 @@ import sys
 from collections.abc import Iterator, Sequence
 from pathlib import Path
 
-from ..._document import Document
-from ..._io import atomic_write_text
-from ..._validation import check_int
+from ...data import Document, atomic_write_text
 from ...errors import RetrogradeError
-from .. import registry
+from ...validation import check_int
 from .._base import FileSource
 
 __all__ = [
@@ -207,7 +205,6 @@ def write_corpus(path: str | Path, *, size_bytes: int = 2_000_000, seed: int = 0
     atomic_write_text(path, corpus_text(size_bytes=size_bytes, seed=seed))
 
 
-@registry.register("demo")
 class DemoSource(FileSource):
     """The invented log-book corpus, generated in memory, one document per entry.
 

@@ -1,0 +1,80 @@
+"""The grid: sweeps expanded into named models, and one fit cell per (source, model, order, seed)."""
+
+from __future__ import annotations
+
+import copy
+import re
+from typing import Any
+
+from ..errors import ConfigError
+from ..validation import did_you_mean
+from ._layout import WDIR_TO_ROOT, units_dir
+from ._schema import NAME_PATTERN, FitCell, StudyConfig
+
+__all__ = ["expand_sweeps", "fit_cells"]
+
+
+def _value_label(value: Any) -> str:
+    """A name-safe rendering of a sweep value: 3 -> '3', 0.5 -> '0p5', 'a-b' -> 'a_b'."""
+    return re.sub(r"[^A-Za-z0-9_]", "_", str(value).replace(".", "p"))
+
+
+def expand_sweeps(study: StudyConfig) -> None:
+    """Add one model per sweep value, named ``<base>_<parameter><value>`` (e.g. ``ngram_n3``).
+
+    Each sweep records ``models: {model_name: value}`` (what the report plots).
+
+    Examples
+    --------
+    >>> from retrograde.config import ModelConfig, SweepConfig
+    >>> study = StudyConfig(models={"ngram": ModelConfig(family="ngram", params={"n": 2})},
+    ...                     sweeps={"context": SweepConfig(model="ngram", parameter="n", values=[1, 3])})
+    >>> expand_sweeps(study)
+    >>> sorted(study.models), study.models["ngram_n3"].params
+    (['ngram', 'ngram_n1', 'ngram_n3'], {'n': 3})
+    """
+    declared = dict(study.models)
+    for sweep_name, sweep in sorted(study.sweeps.items()):
+        where = f"study.sweeps.{sweep_name}"
+        if sweep.model not in declared:
+            raise ConfigError(
+                f"{where}.model={sweep.model!r} is not a model"
+                f"{did_you_mean(sweep.model, declared)}; allowed: one of {', '.join(sorted(declared))}"
+            )
+        if not sweep.values:
+            raise ConfigError(f"{where}.values is empty; allowed: a non-empty list of values")
+        if not NAME_PATTERN.match(str(sweep.parameter)):
+            raise ConfigError(f"{where}.parameter={sweep.parameter!r} is not a parameter name")
+        sweep.models = {}
+        for value in sweep.values:
+            name = f"{sweep.model}_{sweep.parameter}{_value_label(value)}"
+            if name in study.models:
+                raise ConfigError(
+                    f"{where}: model name {name!r} (value {value!r}) is already taken; "
+                    "rename the model or drop the duplicate value"
+                )
+            model = copy.deepcopy(declared[sweep.model])
+            model.params = {**model.params, sweep.parameter: value}
+            study.models[name] = model
+            sweep.models[name] = value
+
+
+def fit_cells(study: StudyConfig) -> dict[str, FitCell]:
+    """The fit cells of a composed study, as the ``fits`` block of ``params.yaml``.
+
+    Keys are what DVC appends to ``fit@`` (``source-model-order-seed``), in the order
+    source, model, order, seed; a model with its own ``seeds`` or ``sources`` gets only
+    those. Each cell's ``code`` dependency (seen from the pipeline
+    folder) is a ``command`` model's trainer files, or else the source's units, which every
+    cell depends on anyway.
+    """
+    fits: dict[str, FitCell] = {}
+    for source in study.sources:
+        for model in study.models_on(source):
+            spec = study.models[model]
+            code = f"{WDIR_TO_ROOT}/{spec.code}" if spec.code else str(units_dir(source))
+            for order in study.orders:
+                for seed in study.seeds_of(model):
+                    key = f"{source}-{model}-{order}-{seed}"
+                    fits[key] = FitCell(source, model, order, int(seed), code)
+    return fits

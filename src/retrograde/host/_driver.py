@@ -1,0 +1,306 @@
+"""The pipeline driver: compose the config, write the generated files, ``dvc repro``, tidy.
+
+``retrograde run`` is :func:`run_pipeline`: it composes ``conf/retrograde/`` with the
+overrides, writes ``pipelines/retrograde/params.yaml`` and the stage file's units block
+(each only when its content changes, so DVC sees nothing new on a no-op run), runs ``dvc
+repro pipelines/retrograde/dvc.yaml`` (the host's stages upstream of the corpus included)
+and puts ``dvc.lock`` in stage-file order. With ``jobs > 1`` the stale fit stages run as
+parallel ``dvc repro -s`` processes (:mod:`retrograde.host._parallel`) after units and
+reorder are done. ``plan --run`` and ``check`` use the same pieces.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import re
+import subprocess
+import sys
+from collections.abc import Iterator, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path, PurePosixPath
+from typing import NamedTuple
+
+from ..config import (
+    DVC_FILE,
+    PARAMS_DIGEST_ENV,
+    RetrogradeConfig,
+    compose,
+    fit_stage_name,
+    params_digest,
+    params_text,
+)
+from ..data import atomic_write_text
+from ..errors import FitError, HostRepoError, RetrogradeError
+from ..report import recover_report
+from ..validation import check_int
+from ._corpus_paths import check_source_files
+from ._lock import pipeline_lock
+from ._lockfile import normalize_lock_order
+from ._parallel import run_stages_in_parallel, stale_stages
+from ._progress import Progress
+from ._repo import HostRepo, dvc_argv, find_host, last_error_line, require_installed
+from ._scaffold import SOURCE_CONFIG, InstallResult, install, planned_files
+from ._stagefile import render_dvc_yaml
+
+__all__ = [
+    "RunResult",
+    "StageLine",
+    "compose_for",
+    "initialize",
+    "parse_repro_line",
+    "run_pipeline",
+    "stage_environment",
+    "write_pipeline_files",
+]
+
+_STAGE = r"'(?P<name>[^']+)'"
+_EVENTS = (
+    ("ran", re.compile(rf"^Running stage {_STAGE}")),
+    ("unchanged", re.compile(rf"^Stage {_STAGE} didn't change")),
+    ("restored", re.compile(rf"^Stage {_STAGE} is cached")),
+    ("failed", re.compile(rf"^ERROR: failed to reproduce {_STAGE}")),
+)
+
+
+class StageLine(NamedTuple):
+    """A ``dvc repro`` line about a stage: what happened, the stage, and whose it is."""
+
+    event: str
+    stage: str
+    ours: bool
+
+
+def parse_repro_line(line: str) -> StageLine | None:
+    """The stage event a ``dvc repro`` output line reports, else ``None``.
+
+    ``stage`` is the name inside the pipeline's stage file for retrograde's own stages
+    (``ours``), and the name DVC printed for the host's.
+
+    Examples
+    --------
+    >>> parse_repro_line("Running stage 'pipelines/retrograde/dvc.yaml:fit@a-m-reverse-0':")
+    StageLine(event='ran', stage='fit@a-m-reverse-0', ours=True)
+    >>> parse_repro_line("Stage 'prepare' didn't change, skipping")
+    StageLine(event='unchanged', stage='prepare', ours=False)
+    >>> parse_repro_line("Updating lock file 'dvc.lock'") is None
+    True
+    """
+    for event, pattern in _EVENTS:
+        match = pattern.match(line.strip())
+        if match:
+            name = match["name"]
+            prefix = f"{DVC_FILE.as_posix()}:"
+            ours = name.startswith(prefix)
+            return StageLine(event, name.removeprefix(prefix), ours)
+    return None
+
+
+@dataclass
+class RunResult:
+    """What a run did: the host, the composed config, the stages DVC reported by event."""
+
+    host: HostRepo
+    config: RetrogradeConfig
+    events: dict[str, list[str]] = field(default_factory=dict)
+
+
+def compose_for(
+    host_dir: str | os.PathLike[str], overrides: Sequence[str]
+) -> tuple[HostRepo, RetrogradeConfig]:
+    """The host (checked for ``init``) and its composed config; nothing is written."""
+    host = find_host(host_dir)
+    require_installed(host)
+    config = compose(host.root, overrides)
+    check_source_files(host, config)  # missing files only if a host stage writes them
+    render_dvc_yaml(host.dvc_file.read_text(encoding="utf-8"), config)  # markers present?
+    return host, config
+
+
+@contextlib.contextmanager
+def stage_environment(host: HostRepo) -> Iterator[None]:
+    """The environment DVC's stage processes inherit while the body runs.
+
+    Stage commands start with ``python``: this interpreter's folder goes first on ``PATH``.
+    The digest of the ``params.yaml`` just written lets every stage check that it still
+    reads the file this command composed (:mod:`retrograde.host._lock`).
+    """
+    saved = {key: os.environ.get(key) for key in ("PATH", PARAMS_DIGEST_ENV)}
+    os.environ["PATH"] = os.pathsep.join([str(Path(sys.executable).parent), saved["PATH"] or ""])
+    os.environ[PARAMS_DIGEST_ENV] = params_digest(host.params_file)
+    try:
+        yield
+    finally:
+        for key, value in saved.items():
+            if value is None:
+                os.environ.pop(key, None)
+            else:
+                os.environ[key] = value
+
+
+def _write_if_changed(path: Path, text: str) -> bool:
+    if path.is_file() and path.read_text(encoding="utf-8") == text:
+        return False
+    atomic_write_text(path, text)
+    return True
+
+
+def write_pipeline_files(host: HostRepo, config: RetrogradeConfig) -> list[Path]:
+    """Write ``params.yaml`` and the units block of the stage file; return what changed.
+
+    A file whose content would not change is left alone (its timestamp too), so a no-op
+    ``run`` gives DVC nothing new to look at.
+    """
+    dvc_text = render_dvc_yaml(host.dvc_file.read_text(encoding="utf-8"), config)
+    written = []
+    for path, text in ((host.params_file, params_text(config)), (host.dvc_file, dvc_text)):
+        if _write_if_changed(path, text):
+            written.append(path)
+    return written
+
+
+def _repro(host: HostRepo, target: str, *, pull: bool, progress: Progress) -> None:
+    """Run ``dvc repro target``, reporting each stage's start and end to ``progress``.
+
+    DVC runs the stages of one ``repro`` one after another, so a stage has finished when
+    the next one is announced. On failure raise one line naming the stage (and, for a fit,
+    the cell and its log); DVC's whole output is in ``logs/run.log``.
+    """
+    argv = [*dvc_argv(), "repro", *(["--pull"] if pull else []), target]
+    log_path = host.pipeline_dir / "logs" / "run.log"
+    log_path.parent.mkdir(parents=True, exist_ok=True)
+    failed: list[str] = []
+    lines: list[str] = []
+    current: StageLine | None = None
+    with subprocess.Popen(
+        argv,
+        cwd=host.root,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.STDOUT,
+        text=True,
+        stdin=subprocess.DEVNULL,
+    ) as process:
+        assert process.stdout is not None
+        for line in process.stdout:
+            lines.append(line)
+            parsed = parse_repro_line(line)
+            if parsed is None:
+                continue
+            if current is not None and parsed.event != "failed":
+                progress.finished(current.stage, "ran", host=not current.ours)
+                current = None
+            if parsed.event == "ran":
+                progress.started(parsed.stage, host=not parsed.ours)
+                current = parsed
+            else:
+                progress.finished(parsed.stage, parsed.event, host=not parsed.ours)
+                current = None
+                if parsed.event == "failed":
+                    failed.append(parsed.stage)
+    if current is not None:
+        event = "ran" if process.returncode == 0 else "failed"
+        progress.finished(current.stage, event, host=not current.ours)
+    _append_log(log_path, "".join(lines))
+    if process.returncode != 0:
+        _raise_failure(host, "".join(lines), failed, log_path)
+
+
+def _append_log(path: Path, text: str) -> None:
+    """Add one ``dvc repro``'s output to the run's log (a run may start several).
+
+    Never through a symbolic link: one in its place is removed, and ``O_NOFOLLOW`` refuses
+    one put there meanwhile.
+    """
+    if path.is_symlink():
+        path.unlink()
+    flags = os.O_WRONLY | os.O_CREAT | os.O_APPEND | os.O_NOFOLLOW | os.O_CLOEXEC
+    with os.fdopen(os.open(path, flags, 0o666), "a", encoding="utf-8") as handle:
+        handle.write(text)
+
+
+def _raise_failure(host: HostRepo, output: str, failed: list[str], log_path: Path) -> None:
+    # Our stages print one "retrograde <stage>: error: ..." line naming the cell and its log.
+    ours = [line for line in output.splitlines() if re.match(r"^retrograde \w+: error: ", line)]
+    if ours:
+        message = ours[-1].split(": error: ", 1)[1]
+        if failed and failed[0].startswith("fit@"):
+            raise FitError(message)  # already names the cell and its fit.log
+        raise HostRepoError(f"stage {failed[0] if failed else '?'!r}: {message}")
+    stage = f"stage {failed[0]!r}" if failed else "dvc repro"
+    raise HostRepoError(f"{stage} failed in {host.root}: {last_error_line(output)}; see {log_path}")
+
+
+def _run_jobs(
+    host: HostRepo,
+    target: str,
+    cells: list[tuple[str, str, str, int]],
+    jobs: int,
+    *,
+    pull: bool,
+    progress: Progress,
+) -> None:
+    """``dvc repro`` the pipeline; with ``jobs > 1`` the stale fit stages run in parallel."""
+    if jobs == 1:
+        _repro(host, target, pull=pull, progress=progress)
+        return
+    # One `dvc status` (host stages upstream included) decides whether anything is stale:
+    # a no-op run then costs seconds, not a DVC process per stage.
+    if not pull and not stale_stages(host.root, None, with_deps=True):
+        return
+    _repro(host, f"{target}:reorder", pull=pull, progress=progress)  # units, reorder, host
+    names = stale_stages(host.root, [fit_stage_name(*cell) for cell in cells])
+    run_stages_in_parallel(host.root, names, jobs, pull=pull, progress=progress)
+    _repro(host, target, pull=pull, progress=progress)
+
+
+def initialize(
+    host: HostRepo, sources: Sequence[str] = (), *, force: bool = False
+) -> InstallResult:
+    """``retrograde init``: install the config and stage file, and a first ``params.yaml``.
+
+    The params and the stage file's units block are those ``run`` would write for the
+    default config, so every ``dvc`` command (``status``, ``dag``, the host's own
+    ``repro``) works at the commit that adopts retrograde, before any run. When the default
+    config does not compose yet (a corpus the host has not declared), the grid is empty.
+    """
+    with pipeline_lock(host.root, "retrograde init"):
+        result = install(
+            host,
+            planned_files(sources=sources),
+            force=force,
+            must_write=[SOURCE_CONFIG] if sources else [],
+        )
+        try:
+            config = compose(host.root)
+        except RetrogradeError:
+            config = RetrogradeConfig()
+            config.fits = {}
+        for path in write_pipeline_files(host, config):
+            result.written.append(PurePosixPath(path.relative_to(host.root).as_posix()))
+    return result
+
+
+def run_pipeline(
+    host_dir: str | os.PathLike[str],
+    overrides: Sequence[str] = (),
+    *,
+    jobs: int = 1,
+    pull: bool = False,
+) -> RunResult:
+    """Compose, write the generated files, reproduce the pipeline, order ``dvc.lock``."""
+    jobs = check_int("option 'run'", "jobs", jobs, low=1)
+    host, config = compose_for(host_dir, overrides)
+    with pipeline_lock(host.root, "retrograde run"):  # before the first write
+        recover_report(host.pipeline_dir)
+        write_pipeline_files(host, config)
+        study = config.study
+        cells = config.cells()
+        total = len(study.sources) * (1 + len(study.orders)) + len(cells) + 1
+        target = host.dvc_file.relative_to(host.root).as_posix()
+        # The log of this run's DVC output starts empty (each `dvc repro` appends).
+        (host.pipeline_dir / "logs").mkdir(parents=True, exist_ok=True)
+        atomic_write_text(host.pipeline_dir / "logs" / "run.log", "")  # replaces a link
+        with stage_environment(host), Progress(total) as progress:
+            _run_jobs(host, target, cells, jobs, pull=pull, progress=progress)
+        normalize_lock_order(host.root)  # dvc.lock in stage-file order, whatever jobs was
+    return RunResult(host, config, progress.counts())

@@ -1,0 +1,340 @@
+"""Markdown text of the gap table and of ``report.md`` (pure functions, no file access).
+
+Re-exported by :mod:`retrograde.report`, which writes the files.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+from typing import Any
+
+from .. import __version__
+
+__all__ = [
+    "CAUTIONS",
+    "CELL_FIELDS",
+    "CONCLUSION",
+    "LEAF_FIELDS",
+    "markdown_budget",
+    "fields_present",
+    "is_reference_leaf",
+    "markdown_table",
+    "render_report",
+    "table_rows",
+]
+
+Table = Mapping[str, Mapping[str, Mapping[str, Mapping[str, Any]]]]
+
+#: shown in every report; each is a way a gap table is commonly over-read
+CAUTIONS = (
+    "A gap belongs to this model family, this amount of data and this training budget, "
+    "not to the language or the data source as such.",
+    "A gap whose interval contains 0 is not a finding, and not evidence that the order "
+    "makes no difference either: only the `significant` column marks gaps unlikely to be "
+    "chance, and its interval is the simultaneous one shown in the table, not the per-cell "
+    "interval in metrics.json.",
+    "Small or under-trained models can show a gap with the opposite sign to larger ones.",
+    "With fewer than 3 seeds the interval resamples test units only and ignores training "
+    "randomness.",
+)
+
+#: what a reader may conclude from a table with simultaneous intervals (one sentence)
+CONCLUSION = (
+    "Intervals are simultaneous: each row's interval is the bootstrap interval at the "
+    "level (column *level*) at which Holm's procedure judged that row, so a row is "
+    "significant exactly when its interval excludes 0, and you may conclude, with at most "
+    "a 5% chance that any one of them is wrong, that every significant row's order "
+    "changes the test loss in the direction of its sign; a row that is not significant "
+    "shows no detectable gap, which is not evidence that there is none."
+)
+
+#: CSV and Markdown column order; later fields appear only when some leaf has them
+LEAF_FIELDS = (
+    "bits_per_token",
+    "bits_per_byte",
+    "floor_bits_per_token",
+    "excess_bits_per_token",
+    "gap_pct",
+    "gap_pct_low",
+    "gap_pct_high",
+    "gap_pct_simultaneous_low",
+    "gap_pct_simultaneous_high",
+    "simultaneous_level",
+    "gap_pct_simultaneous_extended",
+    "p_value",
+    "p_value_sign_flip",
+    "p_value_holm",
+    "significant",
+    "seed_spread_pct",
+    "seeds",
+    "units",
+    "tokens",
+    "groups",
+    "documents",
+)
+
+
+def is_reference_leaf(leaf: Mapping[str, Any]) -> bool:
+    """Whether ``leaf`` is a reference order's (gap and interval exactly 0, never tested)."""
+    return (
+        "p_value_holm" not in leaf
+        and leaf.get("gap_pct") == 0
+        and leaf.get("gap_pct_low") == 0
+        and leaf.get("gap_pct_high") == 0
+    )
+
+
+def table_rows(table: Table) -> list[dict[str, Any]]:
+    """One flat dict per cell: ``source``, ``model``, ``order`` and the leaf's fields."""
+    return [
+        {"source": source, "model": model, "order": order, **leaf}
+        for source, models in table.items()
+        for model, orders in models.items()
+        for order, leaf in orders.items()
+    ]
+
+
+def fields_present(rows: Sequence[Mapping[str, Any]]) -> list[str]:
+    present = {key for row in rows for key in row}
+    extra = sorted(present - set(LEAF_FIELDS) - {"source", "model", "order"})
+    return [f for f in LEAF_FIELDS if f in present] + extra
+
+
+def _number(value: Any, spec: str) -> str:
+    if value is None:
+        return "–"
+    if isinstance(value, bool):
+        return "yes" if value else ""
+    return format(value, spec)
+
+
+def _p_text(value: Any) -> str:
+    if value is None:
+        return "–"
+    return "<0.001" if value < 0.001 else f"{value:.3f}"
+
+
+def _interval_title(level: float | None) -> str:
+    return "interval" if level is None else f"{level:.0%} interval"
+
+
+def _markdown_source(source: str, models: Mapping[str, Any], level: float | None) -> str:
+    rows = table_rows({source: models})
+    fields = set(fields_present(rows))
+    header = ["model", "order", "bits/token"]
+    optional = [
+        ("bits_per_byte", "bits/byte"),
+        ("floor_bits_per_token", "floor bits/token"),
+        ("excess_bits_per_token", "excess bits/token"),
+    ]
+    header += [title for key, title in optional if key in fields]
+    simultaneous = "gap_pct_simultaneous_low" in fields
+    if simultaneous:
+        header += ["gap % [simultaneous interval]", "level"]
+    else:
+        header += [f"gap % [{_interval_title(level)}]"]
+    header += ["seed spread %", "p (Holm)", "significant"]
+    lines = ["| " + " | ".join(header) + " |", "|" + "---|" * len(header)]
+    stretched = False
+    for row in rows:
+        reference = is_reference_leaf(row)
+        cells = [f"`{row['model']}`", f"`{row['order']}`", _number(row["bits_per_token"], ".4f")]
+        cells += [_number(row.get(key), ".4f") for key, _ in optional if key in fields]
+        if reference:
+            cells += ["reference", *([""] * (len(header) - len(cells) - 1))]
+        else:
+            p_holm = row.get("p_value_holm", row.get("p_value"))
+            if simultaneous and "gap_pct_simultaneous_low" in row:
+                low, high = row["gap_pct_simultaneous_low"], row["gap_pct_simultaneous_high"]
+                mark = "†" if row.get("gap_pct_simultaneous_extended") else ""
+                stretched = stretched or bool(mark)
+                cells += [
+                    f"{row['gap_pct']:+.2f} [{low:+.2f}, {high:+.2f}]{mark}",
+                    _level_text(row.get("simultaneous_level")),
+                ]
+            else:
+                interval = f"[{row['gap_pct_low']:+.2f}, {row['gap_pct_high']:+.2f}]"
+                cells += [f"{row['gap_pct']:+.2f} {interval}"]
+                cells += [_level_text(level)] if simultaneous else []
+            cells += [
+                _number(row.get("seed_spread_pct"), ".2f"),
+                _p_text(p_holm),
+                "**yes**" if row.get("significant") else "",
+            ]
+        lines.append("| " + " | ".join(cells) + " |")
+    if stretched:
+        lines += [
+            "",
+            "† interval stretched to 0: the bootstrap alone excludes 0 at this level, but the "
+            "test that decided the row (sign flips over units) does not.",
+        ]
+    return f"### Source `{source}`\n\n" + "\n".join(lines) + "\n"
+
+
+def _level_text(level: float | None) -> str:
+    """``0.996875`` -> ``99.69%``: enough digits to tell Holm's steps apart."""
+    return "–" if level is None else f"{100 * level:.2f}%"
+
+
+def _has_simultaneous(table: Table) -> bool:
+    return any("gap_pct_simultaneous_low" in row for row in table_rows(table))
+
+
+def markdown_table(table: Table, level: float | None = None) -> str:
+    """One Markdown table per source, each under a ``### Source`` heading."""
+    return "\n".join(_markdown_source(s, models, level) for s, models in table.items())
+
+
+def _markdown_spans(spans: Mapping[str, Mapping[str, Any]]) -> str:
+    lines = []
+    for source, models in spans.items():
+        lines += [
+            f"### Spans of `{source}`",
+            "",
+            "| model | order | span | bits/token | perplexity | bits/unit |",
+            "|---|---|---|---|---|---|",
+        ]
+        for model, by_order in models.items():
+            for order, by_span in by_order.items():
+                for span, value in by_span.items():
+                    cells = [
+                        f"`{model}`",
+                        f"`{order}`",
+                        f"`{span}`",
+                        _number(value.get("bits_per_token"), ".4f"),
+                        _number(value.get("perplexity"), ".3f"),
+                        _number(value.get("bits_per_unit"), ".2f"),
+                    ]
+                    lines.append("| " + " | ".join(cells) + " |")
+        lines.append("")
+    return "\n".join(lines)
+
+
+#: ``cells.csv`` columns: one row per fit cell (source, model, order, seed)
+CELL_FIELDS = (
+    "source",
+    "model",
+    "order",
+    "seed",
+    "bits_per_token",
+    "gap_pct",
+    "epochs",
+    "last_valid_bits_per_token",
+    "test_units",
+    "test_tokens",
+    "train_tokens",
+    "steps",
+    "n_params",
+    "cpu_s",
+    "wall_s",
+)
+
+
+def _mean(values: Sequence[Any]) -> float | None:
+    known = [float(v) for v in values if isinstance(v, (int, float)) and not isinstance(v, bool)]
+    return sum(known) / len(known) if known else None
+
+
+def _count_text(value: float | None) -> str:
+    return "–" if value is None else f"{round(value):,}"
+
+
+def _seconds_text(value: float | None) -> str:
+    return "–" if value is None else f"{value:.1f}"
+
+
+def markdown_budget(table: Table, cells: Sequence[Mapping[str, Any]]) -> str:
+    """The report's test-set sizes per source and, per cell averaged over seeds, the fit's
+    parameters, training tokens, steps and times (from each cell's ``budget.json``)."""
+    lines: list[str] = []
+    for source, models in table.items():
+        leaf = next((leaf for orders in models.values() for leaf in orders.values()), {})
+        documents = f", {leaf['documents']:,} documents" if "documents" in leaf else ""
+        lines += [
+            f"### Source `{source}`",
+            "",
+            f"Test set: {leaf.get('units', 0):,} units, {leaf.get('tokens', 0):,} tokens"
+            f"{documents}.",
+            "",
+        ]
+        mine = [c for c in cells if c["source"] == source]
+        if not mine:
+            continue
+        lines += [
+            "| model | order | seeds | parameters | train tokens per fit | steps | "
+            "fit wall s (mean) | fit CPU s (mean) |",
+            "|---|---|---|---|---|---|---|---|",
+        ]
+        for model, orders in models.items():
+            for order in orders:
+                group = [c for c in mine if c["model"] == model and c["order"] == order]
+                cells_text = [
+                    f"`{model}`",
+                    f"`{order}`",
+                    str(len(group)),
+                    _count_text(_mean([c.get("n_params") for c in group])),
+                    _count_text(_mean([c.get("train_tokens") for c in group])),
+                    _count_text(_mean([c.get("steps") for c in group])),
+                    _seconds_text(_mean([c.get("wall_s") for c in group])),
+                    _seconds_text(_mean([c.get("cpu_s") for c in group])),
+                ]
+                lines.append("| " + " | ".join(cells_text) + " |")
+        lines.append("")
+    return "\n".join(lines)
+
+
+def render_report(
+    table: Table,
+    *,
+    spans: Mapping[str, Mapping[str, Any]],
+    provenance: Mapping[str, Any],
+    warnings: Sequence[str],
+    figures: Sequence[str],
+    level: float | None = None,
+    cells: Sequence[Mapping[str, Any]] = (),
+) -> str:
+    """The text of ``report.md`` (pure: no file access)."""
+    parts = ["# Order-ablation gap table", ""]
+    if warnings:
+        parts += ["> **Warnings**", ">"] + [f"> - {w}" for w in warnings] + [""]
+    parts += [
+        "Each gap is `100 * (NLL(order) / NLL(reference) - 1)` on the same test units, with a "
+        f"{_interval_title(level) if not _has_simultaneous(table) else 'simultaneous interval'}"
+        " from a bootstrap over units and seeds, and a p-value from a "
+        "paired sign-flip test on units (with 3 or more seeds, no smaller than the bootstrap's "
+        "own p-value), Holm-adjusted over every gap in this table. Positive gaps mean the "
+        "order is harder to learn than the reference.",
+        "",
+        *([CONCLUSION, ""] if _has_simultaneous(table) else []),
+        markdown_table(table, level),
+    ]
+    if spans:
+        parts += ["## Loss per span", "", _markdown_spans(spans)]
+    parts += [
+        "## Data and budget",
+        "",
+        "Test units and tokens per source; per cell, averaged over its seeds: numbers the "
+        "model learned, target positions trained on (end markers included), optimizer or "
+        "minibatch steps, and the time to fit and score. Per-seed values, times included, "
+        "are in `cells.csv`; times stay out of `metrics.json`, which is byte-identical for "
+        "the same config and data.",
+        "",
+        markdown_budget(table, cells),
+    ]
+    parts += ["## Cautions", ""] + [f"- {c}" for c in CAUTIONS] + [""]
+    if figures:
+        parts += ["## Figures", ""] + [f"![{Path(f).stem}]({f})" for f in figures] + [""]
+    version = provenance.get("package_version", __version__)
+    parts += [
+        "## Provenance",
+        "",
+        f"retrograde {version}. Data hashes, configuration and versions of this run:",
+        "",
+        "```json",
+        json.dumps(provenance, indent=2, sort_keys=True, default=str),
+        "```",
+        "",
+    ]
+    return "\n".join(parts)
