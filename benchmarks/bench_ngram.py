@@ -1,7 +1,9 @@
 """Throughput and peak memory of the ``ngram`` family, with NLTK as the reference.
 
 Data: Python source files shipped with this machine (see ``_corpus.py``), line units, the
-``chars`` and ``words`` tokenizers. Every measured case runs in a fresh process.
+``chars`` and ``words`` tokenizers; one more character case on the ``unicode`` source (the
+``site-packages`` files with non-ASCII text: thousands of distinct, mostly rare, symbols).
+Every measured case runs in a fresh process.
 
 What is timed
 -------------
@@ -23,7 +25,10 @@ What is timed
 
 Targets (issues #3 and #9): fit >= 100x and scoring >= 1000x NLTK's throughput; fit +
 score >= 2 M tokens/s for a character 5-gram; time per token flat within 30% from 1 M to
-16 M tokens; peak memory < 1 GB for a character 5-gram with 25 M training tokens.
+16 M tokens; peak memory < 1 GB for a character 5-gram with 25 M training tokens. Large
+alphabets and word corpora: a character 5-gram on 25 M tokens of the ``unicode`` source at
+>= 6 M tokens per CPU second and <= 500 MiB peak; word time per token (CPU) at 16 M within
+25% of that at 1 M, for every order.
 
 Run: ``python benchmarks/bench_ngram.py [--quick] [--out PATH]``.
 """
@@ -47,11 +52,22 @@ ORDERS = (3, 5, 8)
 KINDS = ("chars", "words")
 SIZES = (1_000_000, 4_000_000, 16_000_000)
 LARGE_CASE = ("chars", 5, 25_000_000)  # issue #3's memory target
+#: (corpus folder, tokenizer, order, train tokens): the large-alphabet target
+UNICODE_CASE = ("unicode", "chars", 5, 25_000_000)
+UNICODE_TOKENS_PER_CPU_S = 6e6
+UNICODE_PEAK_MIB = 500
+WORD_CPU_RATIO_TARGET = 1.25
 NLTK_TRAIN_TOKENS = 20_000
 #: scored events (tokens + end markers) per NLTK order: its scoring slows with the order
 NLTK_SCORED_EVENTS = {3: 2000, 5: 1000, 8: 250}
 #: --quick: enough to run every code path in seconds
-QUICK = {"orders": (3,), "sizes": (20_000, 40_000), "large": 60_000, "nltk_train": 2000}
+QUICK = {
+    "orders": (3,),
+    "sizes": (20_000, 40_000),
+    "large": 60_000,
+    "unicode": 60_000,
+    "nltk_train": 2000,
+}
 QUICK_NLTK_EVENTS = 40
 GIGABYTE = 1e9
 
@@ -178,22 +194,40 @@ def run_all(args: argparse.Namespace, workdir: Path) -> dict[str, Any]:
     large_size = QUICK["large"] if args.quick else large_size
     nltk_train = QUICK["nltk_train"] if args.quick else NLTK_TRAIN_TOKENS
     corpora = {}
-    for kind in KINDS:
-        need = max(sizes) if kind != large_kind else max(*sizes, large_size)
-        print(f"preparing {kind} units ({need:,} train tokens) ...", flush=True)
+    unicode_corpus, unicode_kind, unicode_order, unicode_size = UNICODE_CASE
+    unicode_size = QUICK["unicode"] if args.quick else unicode_size
+    for corpus, kind, need, source in [
+        *(
+            (kind, kind, max(sizes) if kind != large_kind else max(*sizes, large_size), "python")
+            for kind in KINDS
+        ),
+        (unicode_corpus, unicode_kind, unicode_size, "unicode"),
+    ]:
+        print(f"preparing {corpus} units ({need:,} train tokens) ...", flush=True)
         start = time.perf_counter()
-        corpora[kind] = _corpus.prepare_corpus(kind, need, workdir / kind, n_test_tokens=need // 8)
-        corpora[kind]["prepare_seconds"] = round(time.perf_counter() - start, 1)
+        corpora[corpus] = _corpus.prepare_corpus(
+            kind, need, workdir / corpus, n_test_tokens=need // 8, source=source
+        )
+        corpora[corpus]["prepare_seconds"] = round(time.perf_counter() - start, 1)
 
     grid = []
-    cases = [(k, o, n) for k in KINDS for o in orders for n in sizes]
-    for kind, order, size in [*cases, (large_kind, large_order, large_size)]:
-        is_large = (kind, order, size) == (large_kind, large_order, large_size)
-        case = {"data": str(workdir / kind), "order": order}
+    # (corpus folder, tokenizer, order, size, large case, unicode case)
+    cases = [(k, k, o, n, False, False) for k in KINDS for o in orders for n in sizes]
+    cases.append((large_kind, large_kind, large_order, large_size, True, False))
+    cases.append((unicode_corpus, unicode_kind, unicode_order, unicode_size, False, True))
+    for corpus, kind, order, size, is_large, is_unicode in cases:
+        case = {"data": str(workdir / corpus), "order": order}
         case |= {"train_tokens": size, "test_tokens": size // 8}
         row = with_throughput(_common.run_fresh(script, case | {"system": "ours"}))
-        grid.append({"tokens": kind, "order": order, "size": size, "large_case": is_large, **row})
-        print(f"  ours {kind} order {order} N={size:,}: {row['fit_score_tokens_per_s']:,.0f} tok/s")
+        source = "unicode" if is_unicode else "python"
+        grid.append(
+            {"tokens": kind, "corpus": source, "order": order, "size": size}
+            | {"large_case": is_large, "unicode_case": is_unicode, **row}
+        )
+        print(
+            f"  ours {corpus} {kind} order {order} N={size:,}: "
+            f"{row['fit_score_tokens_per_s']:,.0f} tok/s"
+        )
 
     versus_nltk = []
     for kind in KINDS:
@@ -233,7 +267,9 @@ def scaling(grid: list[dict[str, Any]]) -> list[dict[str, Any]]:
                 (
                     r
                     for r in grid
-                    if (r["tokens"], r["order"]) == (kind, order) and not r["large_case"]
+                    if (r["tokens"], r["order"]) == (kind, order)
+                    and not r["large_case"]
+                    and not r.get("unicode_case")
                 ),
                 key=lambda r: r["size"],
             )
@@ -260,6 +296,10 @@ def targets(results: dict[str, Any]) -> dict[str, Any]:
     large = next(r for r in grid if r["large_case"])
     ratios = [r["time_per_token_ratio"] for r in results["scaling"]]
     cpu_ratios = [r["cpu_time_per_token_ratio"] for r in results["scaling"]]
+    word_cpu_ratios = [
+        r["cpu_time_per_token_ratio"] for r in results["scaling"] if r["tokens"] == "words"
+    ]
+    unicode = next(r for r in grid if r.get("unicode_case"))
     return {
         "fit_ratio_min": min(r["fit_ratio"] for r in versus),
         "fit_ratio_target": 100,
@@ -276,6 +316,15 @@ def targets(results: dict[str, Any]) -> dict[str, Any]:
         "large_case_peak_rss_mib": large["peak_rss_mib"],
         "large_case_train_tokens": large["train_tokens"],
         "large_case_peak_target_mib": GIGABYTE / _common.MIB,
+        "word_cpu_time_per_token_ratio_max": max(word_cpu_ratios) if word_cpu_ratios else None,
+        "word_cpu_time_per_token_ratio_target": WORD_CPU_RATIO_TARGET,
+        "unicode_case_fit_score_tokens_per_s": unicode["fit_score_tokens_per_s"],
+        "unicode_case_fit_score_tokens_per_cpu_s": unicode["fit_score_tokens_per_cpu_s"],
+        "unicode_case_fit_score_target_per_cpu_s": UNICODE_TOKENS_PER_CPU_S,
+        "unicode_case_peak_rss_mib": unicode["peak_rss_mib"],
+        "unicode_case_peak_target_mib": UNICODE_PEAK_MIB,
+        "unicode_case_train_tokens": unicode["train_tokens"],
+        "unicode_case_vocab_size": results["corpora"]["unicode"]["vocab_size"],
     }
 
 
@@ -295,6 +344,7 @@ def print_report(results: dict[str, Any]) -> None:
             results["grid"],
             [
                 ("tokens", "tokens", ""),
+                ("corpus", "corpus", ""),
                 ("order", "order", "d"),
                 ("train_tokens", "train tok", ",d"),
                 ("fit_tokens_per_s", "fit tok/s", ",.0f"),
@@ -370,6 +420,17 @@ def print_report(results: dict[str, Any]) -> None:
     print(
         f"  peak memory, char 5-gram at {goal['large_case_train_tokens']:,} train tokens: "
         f"{goal['large_case_peak_rss_mib']:,.0f} MiB (target < 1 GB = 954 MiB)"
+    )
+    print(
+        f"  word CPU time per token largest/smallest: "
+        f"{_common.cell(goal['word_cpu_time_per_token_ratio_max'], '.2f')} (target <= 1.25)"
+    )
+    print(
+        f"  unicode char 5-gram ({goal['unicode_case_vocab_size']:,} symbols, "
+        f"{goal['unicode_case_train_tokens']:,} train tokens): "
+        f"{goal['unicode_case_fit_score_tokens_per_cpu_s']:,.0f} tok/CPU s "
+        f"({goal['unicode_case_fit_score_tokens_per_s']:,.0f} tok/s wall; target >= 6,000,000 "
+        f"per CPU s), peak {goal['unicode_case_peak_rss_mib']:,.0f} MiB (target <= 500 MiB)"
     )
 
 

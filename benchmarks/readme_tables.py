@@ -46,7 +46,9 @@ def _machine(result: dict[str, Any]) -> str:
 def ngram_section(result: dict[str, Any]) -> list[str]:
     grid = [
         [
-            r["tokens"],
+            r["tokens"]
+            if r.get("corpus", "python") == "python"
+            else f"{r['tokens']} ({r['corpus']})",
             str(r["order"]),
             _number(r["train_tokens"]),
             _number(r["fit_tokens_per_s"]),
@@ -122,6 +124,36 @@ def ngram_section(result: dict[str, Any]) -> list[str]:
             "",
         ]
     )
+    if "word_cpu_time_per_token_ratio_max" in t:
+        rows.append(
+            [
+                "word time per token, 16 M / 1 M (max over orders)",
+                "<= 1.25 (CPU)",
+                "",
+                _number(t["word_cpu_time_per_token_ratio_max"], ".2f"),
+            ]
+        )
+    if "unicode_case_peak_rss_mib" in t:
+        label = (
+            f"char 5-gram, unicode source ({t['unicode_case_vocab_size']:,} symbols), "
+            f"{t['unicode_case_train_tokens']:,} train tokens"
+        )
+        rows.append(
+            [
+                f"{label}: fit + score, tok/s",
+                ">= 6,000,000 (CPU)",
+                _number(t["unicode_case_fit_score_tokens_per_s"]),
+                _number(t["unicode_case_fit_score_tokens_per_cpu_s"]),
+            ]
+        )
+        rows.append(
+            [
+                f"{label}: peak memory",
+                "<= 500 MiB",
+                f"{t['unicode_case_peak_rss_mib']:,.0f} MiB",
+                "",
+            ]
+        )
     return [
         "### n-gram (`bench_ngram.py`)",
         "",

@@ -182,3 +182,65 @@ def test_fixed_discount_scores_agree_with_nltk_on_sixty_thousand_distinct_words(
             for g in grams(unit, order, vocab_size)
         ]
         np.testing.assert_allclose(ours[index], expected, rtol=1e-9)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("order", [5, 7])
+def test_every_counting_and_scoring_path_agrees_past_the_int32_boundary(monkeypatch, order):
+    # The fit's ways through count_tables (one window sort, ranked jumps by dense table,
+    # packed sort or argsort, windows with a far context id) and scoring sorted by context
+    # or in event order must give bit-identical log-probabilities at a vocabulary where
+    # one-symbol context keys pass 2**31; the default path is checked against the
+    # reference from the paper (Chen & Goodman 1998, eqs. 17, 19, 26).
+    from retrograde.families import _ngram_counts
+    from retrograde.families import ngram as ngram_module
+
+    vocab_size = 46_341
+    rng = np.random.default_rng(order)
+    train = mixed_units(rng, vocab_size, 4_000, every_id=True, n_frequent=8)
+    train_set = SequenceSet.from_list(train, vocab_size=vocab_size)
+    scored = mixed_units(rng, vocab_size, 300) + train[-3_000:] + train[:3_000]
+    scored_set = SequenceSet.from_list(scored, vocab_size=vocab_size)
+    model = make("ngram", order=order).fit(train_set)
+    assert len(model.tables_.context_keys[1]) * (vocab_size + 1) > 2**31
+    assert len(model.tables_.context_keys[2]) * (vocab_size + 1) > 2**31
+    default = model.logprobs(scored_set).values
+    paths = {
+        "dense jumps": {"_WINDOW_LIMIT": 40},
+        "packed jumps": {"_WINDOW_LIMIT": 40, "_DENSE_KEYS": 0, "_BITSET_KEYS_PER_EVENT": 0},
+        "argsort jumps": {
+            "_WINDOW_LIMIT": 40,
+            "_DENSE_KEYS": 0,
+            "_BITSET_KEYS_PER_EVENT": 0,
+            "packed_fits": lambda space, n: False,
+        },
+        # far context ids: in ranking steps (2**40), in the final window (2**50)
+        "far ranking": {"_WINDOW_LIMIT": 1 << 40, "_jump_length": lambda *args: 1},
+        "far windows": {"_WINDOW_LIMIT": 1 << 50, "_jump_length": lambda *args: 1},
+        "unsorted scoring": {"_SORT_SCORED_EVENTS": 1 << 40},
+    }
+    far_keys = _ngram_counts._far_keys
+    for path, changes in paths.items():
+        far_calls: list[int] = []
+        with monkeypatch.context() as patch:
+            for name, value in changes.items():
+                patch.setattr(_ngram_counts, name, value)
+            patch.setattr(
+                _ngram_counts,
+                "_far_keys",
+                lambda *args, calls=far_calls, **kwargs: (
+                    calls.append(1) or far_keys(*args, **kwargs)
+                ),
+            )
+            if path == "unsorted scoring":
+                values = model.logprobs(scored_set).values
+            else:
+                patch.setattr(ngram_module, "_SCORE_TOKENS", 1 << 12)  # many small batches
+                values = make("ngram", order=order).fit(train_set).logprobs(scored_set).values
+        assert np.array_equal(values, default), path
+        assert far_calls or not path.startswith("far"), path  # the far path was taken
+    reference = ReferenceKneserNey(train, order, vocab_size)
+    ours = model.logprobs(scored_set)
+    for index in [*range(0, 300, 10), *range(300, len(scored), 97)]:
+        expected = reference.logprobs(scored[index])
+        np.testing.assert_allclose(ours[index], expected, rtol=1e-9, atol=1e-12)

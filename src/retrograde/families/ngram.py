@@ -19,14 +19,16 @@ from ..data import Ragged, SequenceSet
 from ..errors import DataError
 from ..validation import check_float, check_int
 from ._base import Family
-from ._events import unit_events
+from ._events import unit_event_blocks, unit_events
 from ._ngram_counts import KneserNeyTables, count_tables, interpolated_probs
 from ._progress import progress_bar
 
 __all__ = ["NGram"]
 
-#: tokens scored per batch in ``logprobs``
-_SCORE_TOKENS = 1 << 22
+#: tokens scored per batch in ``logprobs``: about 100 bytes of working memory per event;
+#: measured faster than 2**20 and 2**22 (the batch's arrays stay in cache) and than 2**17
+#: at order 8 (per-batch costs), benchmarks/README.md
+_SCORE_TOKENS = 1 << 19
 
 
 class NGram(Family):
@@ -80,12 +82,13 @@ class NGram(Family):
             raise DataError(f"family {self.name!r}: the training split has no units")
         self.vocab_size_ = train.effective_vocab_size()
         train = _with_vocab(train, self.vocab_size_)
-        symbol_at_lag, outcomes, _ = unit_events(train)
+        # Events read a block at a time from the tokens: no per-event array but the keys.
+        symbol_at_lag, n_events = unit_event_blocks(train)
         # One step per pass over the events (a bar on a terminal, lines in a fit.log).
         with progress_bar(total=self.order, desc="ngram fit", unit="pass") as bar:
             self.tables_ = count_tables(
                 symbol_at_lag,
-                outcomes,
+                n_events,
                 order=self.order,
                 n_symbols=self.vocab_size_ + 1,
                 fixed_discount=self.discount,
@@ -113,7 +116,7 @@ class NGram(Family):
         event_offsets = units.offsets + np.arange(len(units) + 1)
         values = np.empty(int(event_offsets[-1]), dtype=np.float64)
         # Whole units in batches of about _SCORE_TOKENS tokens bound the working memory
-        # (about 80 bytes per event) whatever the size of the test split.
+        # (about 100 bytes per event) whatever the size of the test split.
         cuts = np.unique(
             np.searchsorted(units.offsets, np.arange(0, len(units.tokens), _SCORE_TOKENS))
         )
@@ -152,7 +155,8 @@ class NGram(Family):
             state[f"context_keys_{j}"] = tables.context_keys[j]
         for k in range(1, self.order + 1):
             state[f"type_keys_{k}"] = tables.type_keys[k]
-            state[f"type_counts_{k}"] = tables.type_counts[k]
+            # int64 on disk whatever the dtype in memory (int32 when the counts fit)
+            state[f"type_counts_{k}"] = tables.type_counts[k].astype(np.int64)
         return state
 
     def _set_state(self, state: dict[str, np.ndarray]) -> None:
