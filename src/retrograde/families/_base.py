@@ -41,6 +41,11 @@ class Family(ABC):
     #: parameters) changes what ``fit`` or ``logprobs`` return. The composed params record
     #: it for every model, so a raise reruns exactly that family's cells.
     numerics_version: ClassVar[int] = 1
+    #: Whether ``fit`` draws random numbers of its own from ``seed`` (initial weights, batch
+    #: order). A family whose fit is a function of the training units alone ignores the
+    #: seed, so the pipeline fits each (source, model, order) of it once
+    #: (:func:`retrograde.config.ignores_seed`).
+    has_own_randomness: ClassVar[bool] = True
 
     def __init__(self, **params: Any) -> None:
         self._params = dict(params)

@@ -54,6 +54,8 @@ class NGram(Family):
     name: ClassVar[str] = "ngram"
     #: 2: context ids and keys in int64 on every look-up path (vocabularies above ~46 k)
     numerics_version: ClassVar[int] = 2
+    #: counting is exact: the fit does not depend on the seed
+    has_own_randomness: ClassVar[bool] = False
     #: small, fast parameters for the conformance test and the docs
     example_params: ClassVar[dict[str, Any]] = {"order": 3}
 

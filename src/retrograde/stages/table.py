@@ -24,6 +24,7 @@ from ..config import (
     StudyConfig,
     cell_dir,
     check_stats,
+    fitted_seed,
     load_params,
     order_dir,
     units_dir,
@@ -69,8 +70,10 @@ def _seed_rows(
     seeds: list[int],
     reference: str,
     test: SequenceSet,
+    cell_seeds: list[int],
 ) -> list[dict[str, Any]]:
-    """One row per fit cell of one model: per-seed bits and gap, last validation score, budget."""
+    """One row per seed of one model and order: per-seed bits and gap, last validation
+    score, and the budget of the cell that holds the seed's results (``cell_seeds``)."""
     n_tokens = max(int(len(test.tokens)), 1)
     rows = []
     for order, losses in unit_nll.items():
@@ -91,7 +94,7 @@ def _seed_rows(
                     ),
                     "test_units": len(test),
                     "test_tokens": int(len(test.tokens)),
-                    **_read_budget(wdir, source, model, order, seed),
+                    **_read_budget(wdir, source, model, order, cell_seeds[row]),
                 }
             )
     return rows
@@ -158,9 +161,10 @@ def _data_hash(units: SequenceSet) -> str:
 
 
 def _order_losses(
-    wdir: Path, where: tuple[str, str, str], seeds: list[int], test: SequenceSet
+    wdir: Path, where: tuple[str, str, str], cell_seeds: list[int], test: SequenceSet
 ) -> tuple[np.ndarray, Ragged, list[Any]]:
-    """One (source, model, order) over its seeds.
+    """One (source, model, order) over its seeds; ``cell_seeds[k]`` is the seed of the cell
+    holding seed ``k``'s results (:func:`retrograde.config.fitted_seed`).
 
     Returns ``(unit_nll, natural, curves)``: (n_seeds, n_units) nats per test unit, the
     seed-averaged per-position losses in natural order (end marker last), one curve a seed.
@@ -176,7 +180,7 @@ def _order_losses(
     # Each unit has len + 1 scores (end marker last): offsets of the flat score arrays.
     score_offsets = np.concatenate([[0], np.cumsum(test.lengths + 1)]).astype(np.int64)
     unit_nll, losses, curves = [], [], []
-    for seed in seeds:
+    for seed in cell_seeds:
         values, curve = _read_cell(wdir, source, model, order, seed)
         logprobs = Ragged(values, score_offsets)
         unit_nll.append(stats.unit_nll(logprobs))
@@ -224,14 +228,18 @@ def _model_results(
     per fit cell (:func:`_seed_rows`)."""
     study, stats_config = config.study, config.stats
     seeds = study.seeds_of(model)
+    # a model that ignores the seed was fitted once: every seed reads that cell
+    cell_seeds = [fitted_seed(study, model, seed) for seed in seeds]
     unit_nll: dict[str, np.ndarray] = {}
     natural: dict[str, Ragged] = {}
     curves: dict[str, Any] = {}
     for order in study.orders:
         where = (source, model, order)
-        unit_nll[order], natural[order], curves[order] = _order_losses(wdir, where, seeds, test)
+        unit_nll[order], natural[order], curves[order] = _order_losses(
+            wdir, where, cell_seeds, test
+        )
         if floors is not None:
-            _check_floor(unit_nll[order], floors, where, seeds, test)
+            _check_floor(unit_nll[order], floors, where, cell_seeds, test)
     leaves = stats.summarize_model(
         unit_nll,
         reference_order=study.reference_order,
@@ -246,7 +254,7 @@ def _model_results(
     )
     if seed_rows is not None:
         seed_rows += _seed_rows(
-            wdir, source, model, unit_nll, curves, seeds, study.reference_order, test
+            wdir, source, model, unit_nll, curves, seeds, study.reference_order, test, cell_seeds
         )
     return leaves, natural, curves
 
