@@ -46,6 +46,10 @@ class Family(ABC):
     #: seed, so the pipeline fits each (source, model, order) of it once
     #: (:func:`retrograde.config.ignores_seed`).
     has_own_randomness: ClassVar[bool] = True
+    #: Modules the family imports to fit (beyond numpy): a run's stage server imports them
+    #: once, before its first fit, instead of every fit stage paying for them
+    #: (:mod:`retrograde.stages.server`).
+    warm_imports: ClassVar[tuple[str, ...]] = ()
 
     def __init__(self, **params: Any) -> None:
         self._params = dict(params)

@@ -32,7 +32,7 @@ from ._driver import (
 )
 from ._file_check import check_file, format_file_check, parse_order_spec, read_text
 from ._lock import pipeline_lock
-from ._lockfile import normalize_lock_order, order_lock_entries, ordered_keys
+from ._lockfile import normalize_lock_order, order_lock_entries, ordered_keys, stage_order
 from ._parallel import log_path_for, repro_argv, run_stages_in_parallel, stale_stages
 from ._plan import Shard, parse_shard, plan_shard, reproduce_shard, shard_of
 from ._repo import (
@@ -95,6 +95,7 @@ __all__ = [
     "normalize_lock_order",
     "order_lock_entries",
     "ordered_keys",
+    "stage_order",
     "parse_order_spec",
     "parse_repro_line",
     "parse_shard",

@@ -9,6 +9,11 @@ log-probabilities; it writes ``metrics.json`` (``{source: {model: {order: leaf}}
 
 from __future__ import annotations
 
+if __name__ == "__main__":  # a command of a run: the run's stage server may run it (server.py)
+    from retrograde.stages.server import delegate
+
+    delegate("table")
+
 import argparse
 import hashlib
 import json
