@@ -112,7 +112,7 @@ def test_pipeline_benchmark_times_scratch_noop_and_one_model_edit(tmp_path):
     assert runs["direct"]["in_process"]["fits"] == results["grid"]["fit_stages"] == 4
     assert results["summary"]["same_results_for_every_jobs"]
     for run in runs.values():
-        assert 0 < run["cpu_seconds"] and 0 < run["wall_seconds"]
+        assert run["cpu_seconds"] > 0 and run["wall_seconds"] > 0
 
 
 def test_torch_calibration_benchmark_runs_quick_and_records_both_orders(tmp_path):
