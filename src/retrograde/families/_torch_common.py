@@ -129,7 +129,11 @@ def require_torch(family: str) -> None:
     ``run --dry``, ``plan`` and ``check`` need not pay."""
     import importlib.util
 
-    if importlib.util.find_spec("torch") is None:
+    try:
+        found = importlib.util.find_spec("torch") is not None
+    except (ImportError, ValueError):  # a broken or blocked installation
+        found = False
+    if not found:
         import_torch(family)
 
 
