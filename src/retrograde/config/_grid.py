@@ -11,7 +11,7 @@ from ..validation import did_you_mean
 from ._layout import WDIR_TO_ROOT, units_dir
 from ._schema import NAME_PATTERN, FitCell, ModelConfig, StudyConfig
 
-__all__ = ["expand_sweeps", "fit_cells", "fitted_seed", "ignores_seed"]
+__all__ = ["expand_sweeps", "fit_cells", "fitted_seed", "grid_size", "ignores_seed"]
 
 
 def _value_label(value: Any) -> str:
@@ -90,6 +90,16 @@ def fitted_seed(study: StudyConfig, model: str, seed: int) -> int:
     if ignores_seed(study.models[model]):
         return study.seeds_of(model)[0]
     return int(seed)
+
+
+def grid_size(study: StudyConfig) -> int:
+    """How many (source, model, order, seed) cells the grid names: the rows of the table;
+    :func:`fit_cells` may hold fewer (a model that :func:`ignores_seed` is fitted once)."""
+    return sum(
+        len(study.orders) * len(study.seeds_of(model))
+        for source in study.sources
+        for model in study.models_on(source)
+    )
 
 
 def fit_cells(study: StudyConfig) -> dict[str, FitCell]:

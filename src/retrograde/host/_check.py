@@ -28,6 +28,7 @@ from ..config import (
     DVC_FILE,
     RetrogradeConfig,
     fit_stage_name,
+    grid_size,
     reorder_stage_name,
     units_stage_name,
 )
@@ -156,11 +157,7 @@ def check_host(host_dir: str, overrides: Sequence[str] = ()) -> dict[str, Any]:
             "seeds": [int(s) for s in study.seeds],
             # (source, model, order, seed) cells; a model that ignores the seed has one fit
             # stage per (source, model, order), so there may be fewer fit stages
-            "cells": sum(
-                len(study.orders) * len(study.seeds_of(model))
-                for source in study.sources
-                for model in study.models_on(source)
-            ),
+            "cells": grid_size(study),
             "fit_stages": len(config.cells()),
         },
         "round_trip": sources,
