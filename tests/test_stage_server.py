@@ -74,3 +74,41 @@ def test_a_run_with_the_server_writes_the_same_results_as_one_without(tmp_path, 
     assert len(first) > 10
     metrics = {mode: (p / "metrics.json").read_bytes() for mode, p in pipelines.items()}
     assert metrics["served"] == metrics["alone"]
+
+
+@pytest.mark.dvc
+@pytest.mark.slow
+def test_killing_a_served_stage_command_stops_the_stage_and_its_trainer(tmp_path):
+    from retrograde.stages import reorder as reorder_stage
+    from retrograde.stages import units as units_stage
+
+    host = new_pipeline_host(tmp_path / "host")
+    alive = tmp_path / "alive"
+    os.mkfifo(alive)
+    # A trainer that says it is up through a FIFO, then holds it open for 10 minutes: the
+    # reader sees end-of-file only once the trainer is gone.
+    trainer = (
+        f"import time; f = open({str(alive)!r}, 'w'); f.write('up'); f.flush(); time.sleep(600)"
+    )
+    slow = f"+study.models.slow={{family: command, params: {{command: [python, -c, {trainer!r}]}}}}"
+    with contextlib.redirect_stdout(io.StringIO()):
+        assert main(["check", "--dir", str(host), "study=smoke", slow]) == 0  # params.yaml
+    wdir = host / "pipelines" / "retrograde"
+    assert units_stage.main(["--params", str(wdir), "--source", "corpus"]) == 0
+    assert (
+        reorder_stage.main(["--params", str(wdir), "--source", "corpus", "--order", "forward"]) == 0
+    )
+    cell = ["--source", "corpus", "--model", "slow", "--order", "forward", "--seed", "0"]
+    with stage_server(["retrograde.families"]):
+        client = subprocess.Popen(
+            [sys.executable, "-m", "retrograde.stages.fit", *cell],
+            cwd=wdir,
+            stdout=subprocess.DEVNULL,
+            stderr=subprocess.DEVNULL,
+        )
+        with open(alive) as up:  # blocks until the trainer runs
+            assert up.read(2) == "up"
+            client.kill()  # as when DVC's own process is killed
+            client.wait()
+            assert up.read() == ""  # the trainer is gone (its process group was killed)
+    assert not (wdir / "cells/corpus/slow/forward/seed0/test_logprobs.npy").exists()

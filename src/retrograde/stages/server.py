@@ -14,7 +14,9 @@ command, the same outputs and the same exit status.
 Safety:
 
 - a client killed while its stage runs (DVC interrupted) closes its connection; the child
-  notices and kills itself, so no stage keeps writing after its command is gone;
+  notices, interrupts itself as Ctrl-C would (so a trainer's process group is killed as
+  usual) and is killed if still there 10 s later: no stage keeps writing after its
+  command is gone;
 - the server exits when the process that started it ends (its standard input closes);
 - when there is no server, it cannot be reached, or ``RETROGRADE_STAGE_SERVER`` is empty,
   the command runs the stage itself (plain ``dvc repro`` works as always);
@@ -43,6 +45,8 @@ __all__ = ["SERVER_ENV", "available", "delegate", "serve", "stage_server"]
 SERVER_ENV = "RETROGRADE_STAGE_SERVER"
 #: the stage modules a client may ask for
 STAGES = ("units", "reorder", "fit", "table")
+#: seconds a stage whose command was killed gets to clean up before it is killed too
+_GRACE_SECONDS = 10.0
 _HEADER = struct.Struct("!I")
 _STATUS = struct.Struct("!i")
 
@@ -193,12 +197,15 @@ def _run_child(conn: socket.socket, fds: list[int], request: dict[str, object], 
     run the stage's ``main`` and send its exit status. Never returns."""
     import importlib
     import threading
+    import time
     import traceback
 
     status = 1
     try:
-        for sig in (signal.SIGTERM, signal.SIGINT, signal.SIGCHLD, signal.SIGPIPE):
+        for sig in (signal.SIGTERM, signal.SIGCHLD, signal.SIGPIPE):
             signal.signal(sig, signal.SIG_DFL)
+        # as in a fresh interpreter: Ctrl-C is KeyboardInterrupt, so cleanups run
+        signal.signal(signal.SIGINT, signal.default_int_handler)
         for target, fd in zip((0, 1, 2), fds, strict=True):
             os.dup2(fd, target)
             os.close(fd)
@@ -211,6 +218,10 @@ def _run_child(conn: socket.socket, fds: list[int], request: dict[str, object], 
         def watch() -> None:  # the client never sends again: EOF means it is gone
             with contextlib.suppress(OSError):
                 conn.recv(1)
+            # Interrupt the stage as Ctrl-C would (its cleanups run: a trainer's process
+            # group is killed), and kill it if it is still there after a grace period.
+            os.kill(os.getpid(), signal.SIGINT)
+            time.sleep(_GRACE_SECONDS)
             os.kill(os.getpid(), signal.SIGKILL)
 
         threading.Thread(target=watch, daemon=True).start()
