@@ -19,7 +19,8 @@ Safety:
   command is gone;
 - the server exits when the process that started it ends (its standard input closes);
 - when there is no server, it cannot be reached, or ``RETROGRADE_STAGE_SERVER`` is empty,
-  the command runs the stage itself (plain ``dvc repro`` works as always);
+  the command runs the stage itself (plain ``dvc repro`` works as always); so it does,
+  from the start, when the served stage ends without a status (its process died);
 - heavy modules a family needs (``Family.warm_imports``) are imported by the server at its
   first fit, never for a run with nothing to fit.
 
@@ -78,12 +79,16 @@ def delegate(stage: str) -> None:
     except OSError:
         reply = b""
     if len(reply) != _STATUS.size:
+        # The served stage ended without a status (its process died). Closing the
+        # connection stops it if it is still there (its watchdog); the stage then runs
+        # here, from the start: every output it writes is replaced whole, and DVC records
+        # only what this command's exit status says.
+        client.close()
         print(
-            f"retrograde {stage}: error: the stage server stopped before the stage ended; "
-            "run `retrograde run` again",
+            f"retrograde {stage}: the stage server gave no result; running the stage here",
             file=sys.stderr,
         )
-        os._exit(1)
+        return
     os._exit(_STATUS.unpack(reply)[0])
 
 
@@ -155,9 +160,16 @@ def serve(path: str, warm: Sequence[str] = ()) -> None:
 def _reap(children: set[int]) -> None:
     for pid in list(children):
         with contextlib.suppress(ChildProcessError):
-            done, _ = os.waitpid(pid, os.WNOHANG)
+            done, status = os.waitpid(pid, os.WNOHANG)
             if done == 0:
                 continue
+            if os.WIFSIGNALED(status):  # a stage that died, not one that failed: say so
+                print(
+                    f"retrograde: stage server: stage process {pid} died by signal "
+                    f"{os.WTERMSIG(status)}",
+                    file=sys.stderr,
+                    flush=True,
+                )
         children.discard(pid)
 
 
@@ -202,8 +214,9 @@ def _run_child(conn: socket.socket, fds: list[int], request: dict[str, object], 
 
     status = 1
     try:
-        for sig in (signal.SIGTERM, signal.SIGCHLD, signal.SIGPIPE):
+        for sig in (signal.SIGTERM, signal.SIGCHLD):
             signal.signal(sig, signal.SIG_DFL)
+        signal.signal(signal.SIGPIPE, signal.SIG_IGN)  # as Python sets it at start-up
         # as in a fresh interpreter: Ctrl-C is KeyboardInterrupt, so cleanups run
         signal.signal(signal.SIGINT, signal.default_int_handler)
         for target, fd in zip((0, 1, 2), fds, strict=True):
