@@ -213,6 +213,7 @@ def _run_child(conn: socket.socket, fds: list[int], request: dict[str, object], 
     import traceback
 
     status = 1
+    done = threading.Event()
     try:
         for sig in (signal.SIGTERM, signal.SIGCHLD):
             signal.signal(sig, signal.SIG_DFL)
@@ -231,6 +232,8 @@ def _run_child(conn: socket.socket, fds: list[int], request: dict[str, object], 
         def watch() -> None:  # the client never sends again: EOF means it is gone
             with contextlib.suppress(OSError):
                 conn.recv(1)
+            if done.is_set():  # the status was sent; the client is gone because it ended
+                return
             # Interrupt the stage as Ctrl-C would (its cleanups run: a trainer's process
             # group is killed), and kill it if it is still there after a grace period.
             os.kill(os.getpid(), signal.SIGINT)
@@ -256,6 +259,8 @@ def _run_child(conn: socket.socket, fds: list[int], request: dict[str, object], 
         with contextlib.suppress(Exception):
             sys.stdout.flush()
             sys.stderr.flush()
+        signal.signal(signal.SIGINT, signal.SIG_IGN)  # the stage is over: nothing to stop
+        done.set()
         with contextlib.suppress(OSError):
             conn.sendall(_STATUS.pack(status))
         os._exit(0)
