@@ -1,30 +1,32 @@
-"""Wall time of ``retrograde run`` in a throwaway git + DVC host, and DVC's share of it.
+"""What ``retrograde run`` costs beyond the fits themselves, on a grid of cheap fits.
 
-The host: ``git init``, ``dvc init``, the invented demo corpus (``retrograde.sources.demo``,
-300,000 bytes) at ``data/corpus.txt``, ``retrograde init --source data/corpus.txt``, and a
-study of 2 orders (``forward``, ``reverse``) x 2 models (``ngram`` order 3, a small
-``mlp``) x 3 seeds = 12 fit cells, all committed. Three runs are timed, each as the CLI a
-user types (a fresh ``python -m retrograde run`` process):
+The host: ``git init``, ``dvc init``, ``retrograde init`` and a grid of 3 sources (the
+invented demo corpus, 40,000 bytes; the ``markov`` and ``linear_gf2`` calibration sources)
+x 4 orders (``forward``, ``reverse``, ``block_reverse`` size 4, ``stride`` step 2) x 2 models
+(``ngram`` order 3, a small ``mlp``) x 5 seeds = 120 fit cells, all committed. The n-gram
+ignores the seed, so it is fitted once per (source, order): 72 fit stages, 88 stages in
+all. ``--quick``: the corpus only (20,000 bytes), 2 orders, 1 seed (4 fit stages).
 
-``scratch``  the first run: every stage runs;
-``noop``     the same command again: nothing should run;
-``edit``     one model's parameter changed (``study.models.ngram.params.order=4``): only
-             that model's 6 cells and the table should run.
+For each ``--jobs`` value (1 and 2) the benchmark copies the host and runs, each as a fresh
+process whose CPU time is read with ``os.wait4`` (every descendant it waited for: DVC, the
+stage commands, the stage server and its forks):
 
-How DVC's share is measured
----------------------------
-retrograde starts DVC as ``sys.executable -m dvc`` and stage commands as ``python -m
-retrograde.stages.<stage>`` (``run`` puts ``sys.executable``'s folder first on ``PATH``). The
-benchmark starts ``run`` with ``sys.executable`` set to a small shell shim named ``python``
-that runs the real interpreter and appends its start and end time to a log. So each run
-splits into: the ``dvc repro`` process's wall time, the stage commands' wall time (stages
-run one after another with ``--jobs 1``), and the rest (retrograde's CLI: Hydra compose,
-printing the table). **DVC's share** = (``dvc repro`` wall - stage commands' wall) / total:
-DVC's start-up, hashing, lock files, cache checkouts. A stage's wall includes its own
-interpreter start-up and imports, counted as ours.
+``scratch``  ``retrograde run --jobs N`` on the fresh copy: every stage runs;
+``noop``     the same command again: nothing runs;
+``bare``     ``python -m dvc repro pipelines/retrograde/dvc.yaml``: DVC's own no-op;
+``edit``     (``--jobs 1`` only) ``study.models.ngram.params.order=4``: only that model's
+             fit stages and the table run.
 
-Which stages ran is read from DVC's own ``Running stage`` lines, which ``run`` keeps in
-``pipelines/retrograde/logs/run.log``.
+``direct`` fits the same cells (the ``fits`` block of the composed params) in one process
+with :func:`retrograde.stages.fit.fit_cell` and saves what the stage saves; data loading
+is inside the timer, imports outside. Then:
+
+- overhead per cell = (CPU of ``scratch`` - CPU of ``direct``) / grid cells (120);
+- ``--jobs 2`` over ``--jobs 1``: wall and CPU of ``scratch``;
+- no-op ratio: ``noop`` over ``bare``, wall and CPU.
+
+``metrics.json`` must be the same bytes for every ``--jobs`` (checked; ``report.md`` and
+``cells.csv`` hold each cell's measured CPU and wall time, so they differ).
 
 Run: ``python benchmarks/bench_pipeline.py [--quick] [--out PATH]``.
 """
@@ -32,7 +34,9 @@ Run: ``python benchmarks/bench_pipeline.py [--quick] [--out PATH]``.
 from __future__ import annotations
 
 import argparse
+import json
 import os
+import shutil
 import subprocess
 import sys
 import tempfile
@@ -44,35 +48,72 @@ import _common
 
 from retrograde.host import parse_repro_line
 
-CORPUS_BYTES = 300_000
+CORPUS_BYTES = 40_000
+CONFIG = """\
+defaults:
+  - source: SOURCES
+  - study: grid
+  - stats: default
+  - _self_
+"""
 STUDY = """\
 # @package study
 orders:
-  forward: {name: forward}
-  reverse: {name: reverse}
+ORDERS
 models:
   ngram: {family: ngram, params: {order: 3}}
-  mlp: {family: mlp, params: {window: 4, hidden: 32, epochs: 3}}
+  mlp:
+    family: mlp
+    params: {window: 8, hidden: 32, epochs: 3, lr: 0.01, batch_size: 128, progress: false}
 seeds: SEEDS
 reference_order: forward
 sweeps: {}
 """
-EDIT = "study.models.ngram.params.order=4"
-SHIM = """\
-#!/bin/sh
-# Benchmark shim: run the real interpreter and log "start end arguments" (seconds).
-start=$(date +%s.%N)
-"$RETROGRADE_BENCH_PYTHON" "$@"
-status=$?
-end=$(date +%s.%N)
-printf '%s %s %s\\n' "$start" "$end" "$*" >> "$RETROGRADE_BENCH_LOG"
-exit $status
+ORDERS = {
+    "forward": "{name: forward}",
+    "reverse": "{name: reverse}",
+    "block4": "{name: block_reverse, params: {size: 4}}",
+    "stride2": "{name: stride, params: {step: 2}}",
+}
+MARKOV = """\
+# @package study.sources.markov
+name: markov
+params: {vocab_size: 4, order: 1, concentration: 1.0, length: 32, chain_seed: 0}
+calibration: {n_units: 400, seed: 0}
+split: {fractions: [0.8, 0.1, 0.1], salt: retrograde}
 """
-# `python -c` launcher: point sys.executable at the shim, then run the real CLI.
-LAUNCH = (
-    "import sys; sys.executable = sys.argv.pop(1); "
-    "from retrograde.cli import main; sys.exit(main(sys.argv[1:]))"
-)
+LINEAR_GF2 = """\
+# @package study.sources.linear_gf2
+name: linear_gf2
+params: {n_bits: 8, nonzeros: 1, matrix_seed: 57}
+calibration: {n_units: 1000, seed: 0}
+split: {fractions: [0.7, 0.1, 0.2], salt: retrograde}
+"""
+EDIT = "study.models.ngram.params.order=4"
+#: the direct fits, in a fresh process: imports outside the timer
+DIRECT = """\
+import json, sys, time
+from pathlib import Path
+import numpy as np
+from retrograde import families
+from retrograde.config import load_params
+from retrograde.data import SequenceSet
+from retrograde.stages.fit import fit_cell
+import sklearn.neural_network, scipy.sparse  # the mlp's imports, outside the timer
+wdir, out = Path(sys.argv[1]), Path(sys.argv[2])
+config = load_params(wdir)
+wall, cpu = time.perf_counter(), time.process_time()
+for key, cell in config.fits.items():
+    data = wdir / "data" / cell.source / "orders" / cell.order
+    splits = {s: SequenceSet.load(data / s) for s in ("train", "valid", "test")}
+    spec = config.study.models[cell.model]
+    model, values, curve = fit_cell(spec, splits, seed=cell.seed)
+    model.save(out / key / "model")
+    np.save(out / key / "test_logprobs.npy", values)
+    (out / key / "curve.json").write_text(json.dumps(curve))
+print(json.dumps({"wall": time.perf_counter() - wall, "cpu": time.process_time() - cpu,
+                  "fits": len(config.fits)}))
+"""
 
 
 def sh(argv: list[str], cwd: Path) -> str:
@@ -82,8 +123,8 @@ def sh(argv: list[str], cwd: Path) -> str:
     return result.stdout
 
 
-def make_host(host: Path, *, corpus_bytes: int, seeds: list[int]) -> None:
-    """A committed git + DVC repository with the demo corpus and `retrograde init` done."""
+def make_host(host: Path, *, quick: bool) -> dict[str, int]:
+    """A committed git + DVC host holding the grid; returns its shape."""
     from retrograde.sources.demo import write_corpus
 
     host.mkdir(parents=True)
@@ -95,97 +136,123 @@ def make_host(host: Path, *, corpus_bytes: int, seeds: list[int]) -> None:
     sh([*dvc, "init", "-q"], host)
     sh([*dvc, "config", "core.analytics", "false"], host)
     sh([*dvc, "config", "core.check_update", "false"], host)
-    write_corpus(host / "data" / "corpus.txt", size_bytes=corpus_bytes, seed=0)
-    retrograde = [sys.executable, "-m", "retrograde"]
-    sh([*retrograde, "init", "--dir", str(host), "--source", "data/corpus.txt"], host)
-    study = STUDY.replace("SEEDS", str(seeds))
-    (host / "conf" / "retrograde" / "study" / "default.yaml").write_text(study)
+    write_corpus(host / "data" / "corpus.txt", size_bytes=20_000 if quick else CORPUS_BYTES, seed=0)
+    sh([sys.executable, "-m", "retrograde", "init", "--dir", str(host)], host)
+    conf = host / "conf" / "retrograde"
+    sources = ["corpus"] if quick else ["corpus", "markov", "linear_gf2"]
+    orders = list(ORDERS)[:2] if quick else list(ORDERS)
+    seeds = [0] if quick else [0, 1, 2, 3, 4]
+    (conf / "config.yaml").write_text(CONFIG.replace("SOURCES", f"[{', '.join(sources)}]"))
+    order_lines = "\n".join(f"  {name}: {ORDERS[name]}" for name in orders)
+    study = STUDY.replace("ORDERS", order_lines).replace("SEEDS", str(seeds))
+    (conf / "study" / "grid.yaml").write_text(study)
+    (conf / "source" / "markov.yaml").write_text(MARKOV)
+    (conf / "source" / "linear_gf2.yaml").write_text(LINEAR_GF2)
     sh(["git", "add", "-A"], host)
     sh(["git", "commit", "-q", "-m", "host with retrograde"], host)
+    return {"sources": len(sources), "orders": len(orders), "models": 2, "seeds": len(seeds)}
 
 
-def split_log(lines: list[str]) -> dict[str, float]:
-    """Seconds per kind of process in the shim's log: ``dvc`` and each stage kind."""
-    seconds: dict[str, float] = {}
-    for line in lines:
-        start, end, *argv = line.split()
-        module = argv[1] if len(argv) > 1 and argv[0] == "-m" else "other"
-        kind = "dvc" if module == "dvc" else module.rsplit(".", 1)[-1]
-        seconds[kind] = seconds.get(kind, 0.0) + float(end) - float(start)
-    return seconds
-
-
-def timed_run(host: Path, shim: Path, log: Path, overrides: list[str]) -> dict[str, Any]:
-    log.write_text("")
-    argv = [sys.executable, "-c", LAUNCH, str(shim), "run", "--dir", str(host), *overrides]
-    env = os.environ | {"RETROGRADE_BENCH_PYTHON": sys.executable, "RETROGRADE_BENCH_LOG": str(log)}
-    start = time.perf_counter()
-    result = subprocess.run(argv, cwd=host, capture_output=True, text=True, env=env, check=False)
-    total = time.perf_counter() - start
-    if result.returncode != 0:
-        raise RuntimeError(f"retrograde run failed:\n{result.stderr[-3000:]}")
-    seconds = split_log(log.read_text().splitlines())
-    dvc_total = seconds.pop("dvc", 0.0)
-    stages = sum(seconds.values())
-    # What ran, from DVC's own "Running stage" lines, which `run` keeps in logs/run.log.
-    repro_log = host / "pipelines" / "retrograde" / "logs" / "run.log"
-    events = [parse_repro_line(line) for line in repro_log.read_text().splitlines()]
-    ran = [event[1] for event in events if event is not None and event[0] == "ran"]
+def measure(argv: list[str], cwd: Path, log: Path) -> dict[str, Any]:
+    """Wall and CPU seconds of ``argv`` and every process it waited for (``os.wait4``)."""
+    load = os.getloadavg()[0]
+    with log.open("w") as out:
+        start = time.perf_counter()
+        process = subprocess.Popen(argv, cwd=cwd, stdout=out, stderr=subprocess.STDOUT)
+        _, status, usage = os.wait4(process.pid, 0)
+        wall = time.perf_counter() - start
+    if os.waitstatus_to_exitcode(status) != 0:
+        raise RuntimeError(f"{argv} failed; see {log}:\n{log.read_text()[-3000:]}")
     return {
-        "total_seconds": total,
-        "dvc_repro_seconds": dvc_total,
-        "stage_seconds": stages,
-        "stage_seconds_by_kind": seconds,
-        "dvc_overhead_seconds": dvc_total - stages,
-        "cli_seconds": total - dvc_total,
-        "dvc_share": (dvc_total - stages) / total,
-        "stages_ran": len(ran),
-        "fit_stages_ran": sum(name.startswith("fit@") for name in ran),
+        "wall_seconds": round(wall, 3),
+        "cpu_seconds": round(usage.ru_utime + usage.ru_stime, 3),
+        "load_average_1min_before": round(load, 2),
     }
+
+
+def stages_ran(host: Path) -> tuple[int, int]:
+    """(stages, fit stages) DVC reported running in the last run (its ``run.log``)."""
+    log = host / "pipelines" / "retrograde" / "logs" / "run.log"
+    events = [parse_repro_line(line) for line in log.read_text().splitlines()]
+    ran = [event.stage for event in events if event is not None and event.event == "ran"]
+    return len(ran), sum(name.startswith("fit@") for name in ran)
+
+
+def _direct(host: Path, tmp: Path, runs: dict[str, Any], grid: dict[str, int]) -> None:
+    """The run's fits called directly in one process (before any edit of the params)."""
+    grid["fit_stages"] = runs["scratch_jobs1" if "scratch_jobs1" in runs else next(iter(runs))][
+        "fit_stages_ran"
+    ]
+    argv = [sys.executable, "-c", DIRECT, str(host / "pipelines" / "retrograde"), str(tmp / "d")]
+    log = tmp / "direct.log"
+    runs["direct"] = measure(argv, host, log)
+    runs["direct"]["in_process"] = json.loads(log.read_text().splitlines()[-1])
+    print(f"  direct: {runs['direct']}", flush=True)
 
 
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     _common.add_common_arguments(parser, "pipeline")
+    parser.add_argument("--jobs", default="1,2", help="comma-separated --jobs values")
     args = parser.parse_args(argv)
     started = time.perf_counter()
     info = _common.machine()
-    corpus_bytes = 20_000 if args.quick else CORPUS_BYTES
-    seeds = [0] if args.quick else [0, 1, 2]
-    runs = {}
+    py = sys.executable
+    jobs_values = [int(j) for j in args.jobs.split(",")]
+    runs: dict[str, dict[str, Any]] = {}
     with tempfile.TemporaryDirectory(prefix="retrograde-bench-pipeline-") as tmp:
-        host = Path(tmp) / "host"
+        template = Path(tmp) / "template"
         print("creating the host repository ...", flush=True)
-        make_host(host, corpus_bytes=corpus_bytes, seeds=seeds)
-        shim, log = Path(tmp) / "shim" / "python", Path(tmp) / "timing.log"
-        shim.parent.mkdir()
-        shim.write_text(SHIM)
-        shim.chmod(0o755)
-        for name, overrides in (("scratch", []), ("noop", []), ("edit", [EDIT])):
-            runs[name] = timed_run(host, shim, log, overrides)
-            print(f"  {name}: {runs[name]['total_seconds']:.1f} s", flush=True)
+        grid = make_host(template, quick=args.quick)
+        grid["cells"] = grid["sources"] * grid["orders"] * grid["models"] * grid["seeds"]
+        outputs: dict[int, dict[str, bytes]] = {}
+        for jobs in jobs_values:
+            host = Path(tmp) / f"jobs{jobs}"
+            shutil.copytree(template, host, symlinks=True)
+            run = [py, "-m", "retrograde", "run", "--jobs", str(jobs)]
+            bare = [py, "-m", "dvc", "repro", "pipelines/retrograde/dvc.yaml"]
+            steps = [("scratch", run), ("noop", run), ("bare", bare)]
+            if jobs == jobs_values[0]:
+                steps.append(("direct", []))
+            if jobs == 1:
+                steps.append(("edit", [*run, EDIT]))
+            for name, command in steps:
+                if name == "direct":
+                    _direct(host, Path(tmp), runs, grid)
+                    continue
+                result = measure(command, host, Path(tmp) / f"{name}-{jobs}.log")
+                if name != "bare":
+                    result["stages_ran"], result["fit_stages_ran"] = stages_ran(host)
+                runs[f"{name}_jobs{jobs}"] = result
+                print(f"  --jobs {jobs} {name}: {result}", flush=True)
+                if name == "noop":
+                    pipeline = host / "pipelines" / "retrograde"
+                    outputs[jobs] = {"metrics.json": (pipeline / "metrics.json").read_bytes()}
     info["load_average_1min_after"] = round(os.getloadavg()[0], 2)
-    grid = {"orders": 2, "models": 2, "seeds": len(seeds), "corpus_bytes": corpus_bytes}
-    results = {"machine": info, "quick": args.quick, "grid": grid, "runs": runs}
-    results["wall_seconds"] = round(time.perf_counter() - started, 1)
-    rows = [{"run": name, **run} for name, run in runs.items()]
-    print(
-        f"\nretrograde run, {len(seeds) * 4} fit cells (2 orders x 2 models x {len(seeds)} seeds)"
-    )
-    print(
-        _common.format_table(
-            rows,
-            [
-                ("run", "run", ""),
-                ("stages_ran", "stages ran", "d"),
-                ("total_seconds", "total s", ".1f"),
-                ("stage_seconds", "our stages s", ".1f"),
-                ("dvc_overhead_seconds", "DVC s", ".1f"),
-                ("cli_seconds", "CLI s", ".1f"),
-                ("dvc_share", "DVC share", ".0%"),
-            ],
+    direct_cpu = runs["direct"]["in_process"]["cpu"]
+    summary: dict[str, Any] = {
+        "same_results_for_every_jobs": all(outputs[j] == outputs[jobs_values[0]] for j in outputs),
+        "direct_cpu_seconds": round(direct_cpu, 3),
+    }
+    for jobs in jobs_values:
+        scratch, noop, bare = (runs[f"{k}_jobs{jobs}"] for k in ("scratch", "noop", "bare"))
+        summary[f"overhead_cpu_per_cell_jobs{jobs}"] = round(
+            (scratch["cpu_seconds"] - direct_cpu) / grid["cells"], 3
         )
-    )
+        summary[f"noop_over_bare_wall_jobs{jobs}"] = round(
+            noop["wall_seconds"] / bare["wall_seconds"], 2
+        )
+        summary[f"noop_over_bare_cpu_jobs{jobs}"] = round(
+            noop["cpu_seconds"] / bare["cpu_seconds"], 2
+        )
+    if 1 in jobs_values and 2 in jobs_values:
+        one, two = runs["scratch_jobs1"], runs["scratch_jobs2"]
+        summary["jobs2_over_jobs1_wall"] = round(two["wall_seconds"] / one["wall_seconds"], 2)
+        summary["jobs2_over_jobs1_cpu"] = round(two["cpu_seconds"] / one["cpu_seconds"], 2)
+    results = {"machine": info, "quick": args.quick, "grid": grid, "runs": runs}
+    results["summary"] = summary
+    results["wall_seconds"] = round(time.perf_counter() - started, 1)
+    print(json.dumps(summary, indent=1))
     print(f"total wall time {results['wall_seconds']:.0f} s")
     _common.write_results(args.out, results)
     return 0

@@ -21,6 +21,8 @@ from retrograde.config import (
     SweepConfig,
     compose,
     expand_sweeps,
+    fitted_seed,
+    ignores_seed,
     normalize,
     parse,
     register_configs,
@@ -86,11 +88,16 @@ def test_default_config_composes_into_the_documented_shape(host):
             "trainer_sha256": None,
         }
     }
-    assert params["fits"]["corpus-ngram-reverse-2"] == {
+    # Each seed of the n-gram is its own half-sample, so a fit per (order, seed); with
+    # train_sample none it would ignore the seed (test_a_family_that_ignores_the_seed_...).
+    assert list(params["fits"]) == [
+        f"corpus-ngram-{order}-{seed}" for order in ("forward", "reverse") for seed in (0, 1, 2)
+    ]
+    assert params["fits"]["corpus-ngram-reverse-0"] == {
         "source": "corpus",
         "model": "ngram",
         "order": "reverse",
-        "seed": 2,
+        "seed": 0,
         "code": "data/corpus/units",
     }
     assert study["seeds"] == [0, 1, 2] and study["reference_order"] == "forward"
@@ -128,12 +135,19 @@ def test_several_sources_including_a_calibration_source(host):
 
 
 def test_grid_has_one_cell_per_source_model_order_seed(host):
-    params = composed(host, ["source=[corpus,markov]", "study.seeds=[0,1]"])
+    # an mlp (it draws from the seed) replaces the n-gram, which is fitted once (below)
+    overrides = [
+        "source=[corpus,markov]",
+        "study.seeds=[0,1]",
+        "~study.models.ngram",
+        "+study.models.mlp={family: mlp, params: {window: 2}}",
+    ]
+    params = composed(host, overrides)
     study = params["study"]
     expected = list(
         itertools.product(study["sources"], study["models"], study["orders"], study["seeds"])
     )
-    assert compose(host, ["source=[corpus,markov]", "study.seeds=[0,1]"]).cells() == expected
+    assert compose(host, overrides).cells() == expected
     assert len(expected) == 2 * 1 * 2 * 2
 
 
@@ -397,7 +411,7 @@ def test_a_model_may_name_its_own_seeds_and_sources(host):
         [
             "source=[corpus,markov]",
             "study.seeds=[0]",
-            "+study.models.big={family: ngram, params: {order: 4}, seeds: [1, 2, 3], sources: [markov]}",
+            "+study.models.big={family: mlp, params: {window: 2}, seeds: [1, 2, 3], sources: [markov]}",
         ],
     )
     cells = config.cells()
@@ -409,6 +423,37 @@ def test_a_model_may_name_its_own_seeds_and_sources(host):
         ("markov", "big", o, seed) for o in ("forward", "reverse") for seed in (1, 2, 3)
     ]
     assert config.study.models_on("corpus") == ["ngram"]
+
+
+def test_a_family_that_ignores_the_seed_is_fitted_once_per_source_model_and_order(host):
+    config = compose(
+        host,
+        [
+            "study.seeds=[3,4,5]",
+            "++study.models.ngram.train_sample=none",
+            "+study.models.mlp={family: mlp, params: {window: 2}}",
+            "+study.models.few={family: ngram, params: {order: 2}, seeds: [7, 8]}",
+        ],
+    )
+    study = config.study
+    # the n-gram with train_sample none ignores the seed; 'few' (auto) trains each seed on
+    # its own half-sample of the units, and the mlp draws its weights from the seed
+    assert [ignores_seed(study.models[m]) for m in ("ngram", "mlp", "few")] == [True, False, False]
+    cells = config.cells()
+    # fitted with the model's first seed
+    assert [c for c in cells if c[1] == "ngram"] == [
+        ("corpus", "ngram", o, 3) for o in ("forward", "reverse")
+    ]
+    assert [c for c in cells if c[1] == "few"] == [
+        ("corpus", "few", o, s) for o in ("forward", "reverse") for s in (7, 8)
+    ]
+    assert [c for c in cells if c[1] == "mlp"] == [
+        ("corpus", "mlp", o, s) for o in ("forward", "reverse") for s in (3, 4, 5)
+    ]
+    # every seed's results are read from the cell that was fitted
+    assert [fitted_seed(study, "ngram", s) for s in (3, 4, 5)] == [3, 3, 3]
+    assert [fitted_seed(study, "few", s) for s in (7, 8)] == [7, 8]
+    assert [fitted_seed(study, "mlp", s) for s in (3, 4, 5)] == [3, 4, 5]
 
 
 @pytest.mark.parametrize(

@@ -14,7 +14,14 @@ from _host_fixtures import DVC, new_host, new_pipeline_host, sh
 from retrograde.cli import main
 from retrograde.config import LOG_DIR
 from retrograde.errors import ConfigError, FitError
-from retrograde.host import log_path_for, order_lock_entries, run_stages_in_parallel
+from retrograde.host import (
+    batch_pattern,
+    batches,
+    log_path_for,
+    order_lock_entries,
+    run_stage_batches,
+    run_stages_in_parallel,
+)
 
 pytestmark = pytest.mark.dvc
 
@@ -129,21 +136,23 @@ def test_run_with_two_jobs_writes_byte_identical_metrics_to_one_job(tmp_path):
         else:
             assert {f: (cells / f).read_bytes() for f in files} == first
     assert b'"reverse"' in metrics[1]  # the table really holds the smoke grid's cells
-    # The two-job run went through the parallel path: one log per fit stage.
+    # The two-job run went through the parallel path: one log per fit stage (the n-gram
+    # ignores the seed: one stage per order).
     logs = sorted(p.name for p in (hosts[2] / LOG_DIR).glob("fit@*.log"))
-    assert logs == [f"fit@corpus-ngram-{o}-{s}.log" for o in ("forward", "reverse") for s in (0, 1)]
+    assert logs == [f"fit@corpus-ngram-{o}-0.log" for o in ("forward", "reverse")]
 
 
 def _without_measured(lock: str) -> str:
-    """``dvc.lock`` without the hashes of what holds measured times (a cell's budget.json
-    and the table's cells.csv): the cell folders (as outs, and as the table's deps)."""
+    """``dvc.lock`` without the hashes of what holds measured times (a cell's budget.json,
+    the table's cells.csv and the budget section of report.md): the cell folders (as outs,
+    and as the table's deps), cells.csv and report.md."""
     lines = lock.splitlines()
     kept, skip = [], False
     for line in lines:
         stripped = line.strip()
         if stripped.startswith("- path:"):
             path = stripped.split(":", 1)[1].strip()
-            skip = path.startswith("cells") or path == "cells.csv"
+            skip = path.startswith("cells") or path in ("cells.csv", "report.md")
         elif not stripped.startswith(("md5:", "size:", "nfiles:", "hash:")):
             skip = False
         if not (skip and stripped.startswith(("md5:", "size:", "nfiles:"))):
@@ -225,3 +234,45 @@ def test_a_parallel_run_with_nothing_stale_starts_no_stage_process(tmp_path, cap
     assert main(["run", "--dir", str(host), "--jobs", "2", "study=smoke"]) == 0
     assert "retrograde: 0 stages ran" in capsys.readouterr().err
     assert (host / "pipelines/retrograde/dvc.lock").read_bytes() == lock
+
+
+# Batches: stage names as the fit stages' (parts joined by "-"), so one glob names a group.
+BATCH_FILE = textwrap.dedent(
+    """\
+    stages:
+      fit:
+        matrix:
+          model: [x, y]
+          cell: [a, b]
+        cmd: >-
+          python -c "import time, pathlib;
+          start = time.time(); time.sleep(1.0);
+          pathlib.Path('../../trace').mkdir(exist_ok=True);
+          pathlib.Path('../../trace/${item.model}${item.cell}').write_text(f'{start} {time.time()}');
+          print('fitting ${item.model}-${item.cell}');
+          pathlib.Path('out-${item.model}-${item.cell}.txt').write_text('${item.cell}')"
+        outs:
+          - out-${item.model}-${item.cell}.txt
+    """
+)
+BATCHED = ["fit@x-a", "fit@x-b", "fit@y-a", "fit@y-b"]
+
+
+@pytest.mark.slow
+def test_batches_are_dvc_processes_of_several_stages_two_at_a_time(tmp_path):
+    assert batches(BATCHED, 2, 1) == [["fit@x-a", "fit@x-b"], ["fit@y-a", "fit@y-b"]]
+    assert [batch_pattern(b) for b in batches(BATCHED, 2, 1)] == ["fit@x-*", "fit@y-*"]
+    host = new_host(tmp_path / "host")
+    pipeline = host / "pipelines" / "retrograde"
+    pipeline.mkdir(parents=True)
+    (pipeline / "dvc.yaml").write_text(BATCH_FILE)
+    run_stage_batches(host, BATCHED, jobs=2, per_job=1)
+    assert _max_overlap(host / "trace") == 2  # one stage of each batch at a time
+    lock = yaml.safe_load((pipeline / "dvc.lock").read_text())
+    assert sorted(lock["stages"]) == BATCHED
+    # Outside reference: DVC's own status agrees that nothing is left to run.
+    assert "up to date" in sh([*DVC, "status", "pipelines/retrograde/dvc.yaml:fit"], host)
+    for name in BATCHED:  # each stage's part of its process's output in its own log
+        log = log_path_for(host, name).read_text()
+        assert f"fitting {name.removeprefix('fit@')}" in log
+        assert log.count("Running stage") == 1

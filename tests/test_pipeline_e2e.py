@@ -145,9 +145,14 @@ def test_editing_one_models_hyperparameter_reruns_only_its_cells_and_the_table(h
         assert lock_after[cell] == lock_before[cell]
 
 
-def test_adding_a_seed_fits_only_the_new_cells(host, capsys):
+def test_adding_a_seed_refits_nothing_of_models_that_ignore_the_seed(host, capsys):
+    # Both models are n-grams: fitted once per (source, model, order), whatever the seeds;
+    # the table counts the new seed (its cells read the one fit).
     status, ran, _, _ = _run(capsys, host, "stats.n_boot=200", "study.seeds=[0,1]")
-    assert status == 0 and ran == _cells(seeds=(1,)) | {"table"}
+    assert status == 0 and ran == {"table"}
+    assert not _cells(seeds=(1,)) & set(_lock(host))
+    metrics = yaml.safe_load((host / "pipelines/retrograde/metrics.json").read_text())
+    assert metrics["corpus"]["small"]["reverse"]["seeds"] == 2
 
 
 def test_removing_an_order_removes_it_from_the_table(host, capsys):
@@ -247,9 +252,10 @@ def test_a_crashing_fit_names_the_cell_and_its_log(host, capsys, monkeypatch):
 
 
 def test_jobs_runs_the_new_fit_stages_as_parallel_dvc_processes(host, capsys):
-    status, ran, _, err = _run(capsys, host, "--jobs", "2", "stats.n_boot=200", "study.seeds=[0,1]")
+    edits = ["study.seeds=[0,1]", "study.models.small.params.order=4"]
+    status, ran, _, err = _run(capsys, host, "--jobs", "2", "stats.n_boot=200", *edits)
     assert status == 0
-    new_cells = _cells(seeds=(1,))
+    new_cells = _cells(models=("small",))  # fitted once (the n-gram ignores the seed)
     assert new_cells <= set(_lock(host))
     # The parallel executor logs each stage it ran, and each is reported as run exactly once
     # (the closing `dvc repro` sees it unchanged, which is not counted again).

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import csv
+import io
 import json
 import math
 import shutil
@@ -343,11 +345,31 @@ def test_table_names_a_missing_cell_and_how_to_fit_it(pipeline, tmp_path, capsys
     wdir = tmp_path / "wdir"
     shutil.copytree(pipeline / "data", wdir / "data")
     shutil.copytree(pipeline / "cells", wdir / "cells")
-    shutil.rmtree(wdir / "cells/corpus/ngram/reverse/seed1")
+    shutil.rmtree(wdir / "cells/corpus/ngram/reverse/seed0")  # the n-gram's one fit
     _write_params(wdir, _params(pipeline))
     assert table_stage.main(["--params", str(wdir)]) == 2
     err = capsys.readouterr().err
-    assert "cell corpus/ngram/reverse/seed1 has no results" in err and "retrograde run" in err
+    assert "cell corpus/ngram/reverse/seed0 has no results" in err and "retrograde run" in err
+
+
+def test_a_model_that_ignores_the_seed_is_read_from_its_one_fit_for_every_seed(pipeline):
+    # The fixture fitted the n-gram with seeds 0 and 1 (stage by stage): the same bytes,
+    # so reading seed 0's cell for seed 1 (what the pipeline's single fit stage gives the
+    # table) changes no number of the table.
+    for order in ("forward", "reverse"):
+        cells = pipeline / f"cells/corpus/ngram/{order}"
+        for name in ("test_logprobs.npy", "curve.json", "model/family.json"):
+            assert (cells / "seed0" / name).read_bytes() == (cells / "seed1" / name).read_bytes()
+    assert load_params(pipeline).cells() == [
+        ("corpus", "ngram", "forward", 0),
+        ("corpus", "ngram", "reverse", 0),
+    ]
+    metrics = json.loads((pipeline / "metrics.json").read_text())
+    assert metrics["corpus"]["ngram"]["reverse"]["seeds"] == 2  # both seeds are counted
+    rows = list(csv.DictReader(io.StringIO((pipeline / "cells.csv").read_text())))
+    assert [(r["order"], r["seed"]) for r in rows] == [
+        (o, s) for o in ("forward", "reverse") for s in ("0", "1")
+    ]
 
 
 # ------------------------------------------------------------------------- dvc.yaml

@@ -23,9 +23,13 @@ from __future__ import annotations
 
 __version__ = "0.1.0"
 
+from typing import TYPE_CHECKING, Any
+
 from . import errors, validation
-from .data import Document, Ragged, SequenceSet
 from .errors import RetrogradeError
+
+if TYPE_CHECKING:
+    from .data import Document, Ragged, SequenceSet
 
 __all__ = [
     "Document",
@@ -36,3 +40,13 @@ __all__ = [
     "errors",
     "validation",
 ]
+
+
+def __getattr__(name: str) -> Any:
+    # The data classes load numpy: imported on first use, so that a stage command handing
+    # itself to the run's stage server (retrograde.stages.server) starts in milliseconds.
+    if name in ("Document", "Ragged", "SequenceSet"):
+        from . import data
+
+        return getattr(data, name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

@@ -11,6 +11,7 @@ import json
 import sys
 
 from .. import report
+from ..config import grid_size
 from ..host import RunResult, compose_for, run_pipeline
 from ..validation import check_int
 
@@ -34,7 +35,7 @@ def run(args: argparse.Namespace) -> int:
     if args.dry:
         _, config = compose_for(args.dir, args.overrides)
         cells = config.fits or {}
-        print(f"{len(cells)} fit cells; stage names:")
+        print(f"{grid_size(config.study)} fit cells in {len(cells)} fit stages; stage names:")
         for key in cells:
             print(f"  fit@{key}")
         return 0

@@ -26,7 +26,7 @@ from typing import Any
 
 from ..errors import ConfigError, HostRepoError
 from ._checks import MIN_BOOT, check_source_values, check_stats, check_study
-from ._grid import expand_sweeps, fit_cells
+from ._grid import expand_sweeps, fit_cells, fitted_seed, grid_size, ignores_seed
 from ._hydra import compose_raw, first_line
 from ._layout import (
     CONF_DIR,
@@ -111,7 +111,10 @@ __all__ = [
     "expand_sweeps",
     "fit_cells",
     "fit_stage_name",
+    "fitted_seed",
     "from_dict",
+    "grid_size",
+    "ignores_seed",
     "load_params",
     "normalize",
     "order_dir",

@@ -9,9 +9,9 @@ from typing import Any
 from ..errors import ConfigError
 from ..validation import did_you_mean
 from ._layout import WDIR_TO_ROOT, units_dir
-from ._schema import NAME_PATTERN, FitCell, StudyConfig
+from ._schema import NAME_PATTERN, FitCell, ModelConfig, StudyConfig
 
-__all__ = ["expand_sweeps", "fit_cells"]
+__all__ = ["expand_sweeps", "fit_cells", "fitted_seed", "grid_size", "ignores_seed"]
 
 
 def _value_label(value: Any) -> str:
@@ -59,12 +59,66 @@ def expand_sweeps(study: StudyConfig) -> None:
             sweep.models[name] = value
 
 
+def ignores_seed(spec: ModelConfig) -> bool:
+    """Whether a model's fit is the same for every seed, so it is fitted once per
+    (source, model, order): the one rule :func:`fit_cells` and the table stage follow.
+
+    True for a family without randomness of its own (``Family.has_own_randomness`` is
+    false: the ``ngram``'s exact counts) whose ``train_sample`` resolves to ``none``: by
+    default (``auto``) such a family's seed chooses its training sample
+    (:func:`retrograde.data.resample_train`), so each seed is a fit of its own. A model
+    setting that makes the seed matter for such a family belongs here, as one more
+    condition.
+
+    Examples
+    --------
+    >>> ignores_seed(ModelConfig(family="ngram", train_sample="none"))
+    True
+    >>> ignores_seed(ModelConfig(family="ngram")), ignores_seed(ModelConfig(family="mlp"))
+    (False, False)
+    """
+    from .. import families
+    from ..data import resolve_train_sample
+
+    family = families.registry.get(spec.family)
+    if getattr(family, "has_own_randomness", True):
+        return False
+    return resolve_train_sample(spec.train_sample, family) == "none"
+
+
+def fitted_seed(study: StudyConfig, model: str, seed: int) -> int:
+    """The seed of the cell that holds ``model``'s results for ``seed``: ``seed`` itself,
+    or the model's first seed when it :func:`ignores_seed` (its only fit).
+
+    Examples
+    --------
+    >>> n = ModelConfig(family="ngram", train_sample="none")
+    >>> study = StudyConfig(models={"n": n}, seeds=[3, 4])
+    >>> fitted_seed(study, "n", 4)
+    3
+    """
+    if ignores_seed(study.models[model]):
+        return study.seeds_of(model)[0]
+    return int(seed)
+
+
+def grid_size(study: StudyConfig) -> int:
+    """How many (source, model, order, seed) cells the grid names: the rows of the table;
+    :func:`fit_cells` may hold fewer (a model that :func:`ignores_seed` is fitted once)."""
+    return sum(
+        len(study.orders) * len(study.seeds_of(model))
+        for source in study.sources
+        for model in study.models_on(source)
+    )
+
+
 def fit_cells(study: StudyConfig) -> dict[str, FitCell]:
     """The fit cells of a composed study, as the ``fits`` block of ``params.yaml``.
 
     Keys are what DVC appends to ``fit@`` (``source-model-order-seed``), in the order
     source, model, order, seed; a model with its own ``seeds`` or ``sources`` gets only
-    those. Each cell's ``code`` dependency (seen from the pipeline
+    those, and a model that :func:`ignores_seed` only its first seed (every seed's row of
+    the table reads that cell). Each cell's ``code`` dependency (seen from the pipeline
     folder) is a ``command`` model's trainer files, or else the source's units, which every
     cell depends on anyway.
     """
@@ -73,8 +127,11 @@ def fit_cells(study: StudyConfig) -> dict[str, FitCell]:
         for model in study.models_on(source):
             spec = study.models[model]
             code = f"{WDIR_TO_ROOT}/{spec.code}" if spec.code else str(units_dir(source))
+            seeds = study.seeds_of(model)
+            if ignores_seed(spec):
+                seeds = seeds[:1]
             for order in study.orders:
-                for seed in study.seeds_of(model):
+                for seed in seeds:
                     key = f"{source}-{model}-{order}-{seed}"
                     fits[key] = FitCell(source, model, order, int(seed), code)
     return fits

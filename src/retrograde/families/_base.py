@@ -45,7 +45,13 @@ class Family(ABC):
     #: order). A family that does not (its fit is a function of the training units alone) has
     #: seed ``s`` train on a sample of the units it chooses instead, so its seeds vary like
     #: every other family's (``retrograde.data.resample_train``; ``train_sample`` in docs/config.md).
+    #: With ``train_sample: none`` its fit ignores the seed, and the pipeline fits each
+    #: (source, model, order) once (:func:`retrograde.config.ignores_seed`).
     has_own_randomness: ClassVar[bool] = True
+    #: Modules the family imports to fit (beyond numpy): a run's stage server imports them
+    #: once, before its first fit, instead of every fit stage paying for them
+    #: (:mod:`retrograde.stages.server`).
+    warm_imports: ClassVar[tuple[str, ...]] = ()
 
     def __init__(self, **params: Any) -> None:
         self._params = dict(params)

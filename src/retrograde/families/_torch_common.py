@@ -50,6 +50,7 @@ __all__ = [
     "batches",
     "import_torch",
     "learning_rate",
+    "require_torch",
     "make_stream",
     "make_windows",
     "prediction_windows",
@@ -120,6 +121,20 @@ def resolve_device(torch: ModuleType, owner: str, device: Any) -> str:
             "allowed: cpu or auto"
         )
     return device
+
+
+def require_torch(family: str) -> None:
+    """Refuse (as :func:`import_torch` does) when torch is not installed, without importing
+    it: composing a config builds every model, and importing torch costs seconds that
+    ``run --dry``, ``plan`` and ``check`` need not pay."""
+    import importlib.util
+
+    try:
+        found = importlib.util.find_spec("torch") is not None
+    except (ImportError, ValueError):  # a broken or blocked installation
+        found = False
+    if not found:
+        import_torch(family)
 
 
 def import_torch(family: str) -> ModuleType:

@@ -34,6 +34,7 @@ from ._torch_common import (
     make_stream,
     make_windows,
     prediction_windows,
+    require_torch,
     resolve_device,
     torch_session,
 )
@@ -65,7 +66,7 @@ class TorchFamily(Family):
     device: str
 
     def __init__(self, **params: Any) -> None:
-        import_torch(self.name)  # fail at construction, with the install hint
+        require_torch(self.name)  # fail at construction, with the install hint
         super().__init__(**params)
 
     # ------------------------------------------------------------------ parameters
@@ -89,8 +90,12 @@ class TorchFamily(Family):
         for key in ("bf16", "progress"):
             if not isinstance(p[key], bool):
                 raise invalid(owner, key, p[key], "True or False")
-        check_bf16(import_torch(self.name), owner, p["bf16"])
-        resolve_device(import_torch(self.name), owner, p["device"])
+        # Only what depends on this machine imports torch (seconds): a bf16 request, and a
+        # named accelerator; ``cpu`` and ``auto`` are valid everywhere.
+        if p["bf16"]:
+            check_bf16(import_torch(self.name), owner, p["bf16"])
+        if p["device"] not in ("cpu", "auto"):
+            resolve_device(import_torch(self.name), owner, p["device"])
         self._validate_network(owner, p)
 
     def _validate_network(self, owner: str, params: dict[str, Any]) -> None:

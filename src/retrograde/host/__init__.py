@@ -32,8 +32,16 @@ from ._driver import (
 )
 from ._file_check import check_file, format_file_check, parse_order_spec, read_text
 from ._lock import pipeline_lock, release_dead_dvc_locks
-from ._lockfile import normalize_lock_order, order_lock_entries, ordered_keys
-from ._parallel import log_path_for, repro_argv, run_stages_in_parallel, stale_stages
+from ._lockfile import normalize_lock_order, order_lock_entries, ordered_keys, stage_order
+from ._parallel import (
+    batch_pattern,
+    batches,
+    log_path_for,
+    repro_argv,
+    run_stage_batches,
+    run_stages_in_parallel,
+    stale_stages,
+)
 from ._plan import Shard, parse_shard, plan_shard, reproduce_shard, shard_of
 from ._repo import (
     HostRepo,
@@ -74,6 +82,8 @@ __all__ = [
     "InstallResult",
     "RunResult",
     "Shard",
+    "batch_pattern",
+    "batches",
     "cell_status",
     "check_source_files",
     "check_file",
@@ -95,6 +105,7 @@ __all__ = [
     "normalize_lock_order",
     "order_lock_entries",
     "ordered_keys",
+    "stage_order",
     "parse_order_spec",
     "parse_repro_line",
     "parse_shard",
@@ -114,6 +125,7 @@ __all__ = [
     "run_dvc",
     "run_git",
     "run_pipeline",
+    "run_stage_batches",
     "run_stages_in_parallel",
     "run_tool",
     "shard_of",

@@ -28,6 +28,7 @@ from ..config import (
     DVC_FILE,
     RetrogradeConfig,
     fit_stage_name,
+    grid_size,
     reorder_stage_name,
     units_stage_name,
 )
@@ -154,7 +155,10 @@ def check_host(host_dir: str, overrides: Sequence[str] = ()) -> dict[str, Any]:
             "models": list(study.models),
             "orders": list(study.orders),
             "seeds": [int(s) for s in study.seeds],
-            "cells": len(config.cells()),
+            # (source, model, order, seed) cells; a model that ignores the seed has one fit
+            # stage per (source, model, order), so there may be fewer fit stages
+            "cells": grid_size(study),
+            "fit_stages": len(config.cells()),
         },
         "round_trip": sources,
         "cells": cells,
@@ -181,6 +185,9 @@ def format_host_check(report: dict[str, Any]) -> str:
         f"config: {len(grid['sources'])} source(s) x {len(grid['models'])} model(s) x "
         f"{len(grid['orders'])} order(s) x {len(grid['seeds'])} seed(s) = {grid['cells']} fit cells"
     ]
+    stages = grid.get("fit_stages", grid["cells"])
+    if stages != grid["cells"]:
+        lines[0] += f" in {stages} fit stages (a model that ignores the seed is fitted once)"
     for source, info in report["round_trip"].items():
         lines.append(
             f"round trip: source {source!r}: {len(info['orders'])} order(s) on "

@@ -33,11 +33,12 @@ from ..config import (
 from ..data import atomic_write_text
 from ..errors import FitError, HostRepoError, RetrogradeError
 from ..report import recover_report
+from ..stages.server import stage_server
 from ..validation import check_int
 from ._corpus_paths import check_source_files
 from ._lock import pipeline_lock
 from ._lockfile import normalize_lock_order
-from ._parallel import run_stages_in_parallel, stale_stages
+from ._parallel import run_stage_batches, stale_stages
 from ._progress import Progress
 from ._repo import HostRepo, dvc_argv, find_host, last_error_line, require_installed
 from ._scaffold import SOURCE_CONFIG, InstallResult, install, planned_files
@@ -51,6 +52,8 @@ __all__ = [
     "parse_repro_line",
     "run_pipeline",
     "stage_environment",
+    "stream_repro",
+    "warm_modules",
     "write_pipeline_files",
 ]
 
@@ -117,6 +120,17 @@ def compose_for(
     return host, config
 
 
+def warm_modules(config: RetrogradeConfig) -> list[str]:
+    """What the run's stage server imports before its first fit: the families and the
+    heavy modules of the families the config names (``Family.warm_imports``)."""
+    from .. import families
+
+    names = ["retrograde.families"]
+    for spec in config.study.models.values():
+        names += getattr(families.registry.get(spec.family), "warm_imports", ())
+    return list(dict.fromkeys(names))
+
+
 @contextlib.contextmanager
 def stage_environment(host: HostRepo) -> Iterator[None]:
     """The environment DVC's stage processes inherit while the body runs.
@@ -159,18 +173,25 @@ def write_pipeline_files(host: HostRepo, config: RetrogradeConfig) -> list[Path]
     return written
 
 
-def _repro(host: HostRepo, target: str, *, pull: bool, progress: Progress) -> None:
-    """Run ``dvc repro target``, reporting each stage's start and end to ``progress``.
+def stream_repro(
+    host: HostRepo, argv: list[str], progress: Progress, *, split_logs: bool = False
+) -> tuple[int, str, list[str]]:
+    """Run one ``dvc repro`` (``argv``), reporting each stage's start and end to
+    ``progress``; returns ``(exit status, output, failed stages)``.
 
     DVC runs the stages of one ``repro`` one after another, so a stage has finished when
-    the next one is announced. On failure raise one line naming the stage (and, for a fit,
-    the cell and its log); DVC's whole output is in ``logs/run.log``.
+    the next one is announced. The whole output is added to ``logs/run.log``; with
+    ``split_logs`` each stage's part of it also goes to its own log
+    (:func:`~retrograde.host.log_path_for`).
     """
-    argv = [*dvc_argv(), "repro", *(["--pull"] if pull else []), target]
+    from ._parallel import log_path_for
+
     log_path = host.pipeline_dir / "logs" / "run.log"
     log_path.parent.mkdir(parents=True, exist_ok=True)
     failed: list[str] = []
     lines: list[str] = []
+    segments: dict[str, list[str]] = {}
+    segment: list[str] = []
     current: StageLine | None = None
     with subprocess.Popen(
         argv,
@@ -184,6 +205,9 @@ def _repro(host: HostRepo, target: str, *, pull: bool, progress: Progress) -> No
         for line in process.stdout:
             lines.append(line)
             parsed = parse_repro_line(line)
+            if parsed is not None and parsed.event != "failed":
+                segment = segments.setdefault(parsed.stage, [])
+            segment.append(line)
             if parsed is None:
                 continue
             if current is not None and parsed.event != "failed":
@@ -200,9 +224,27 @@ def _repro(host: HostRepo, target: str, *, pull: bool, progress: Progress) -> No
     if current is not None:
         event = "ran" if process.returncode == 0 else "failed"
         progress.finished(current.stage, event, host=not current.ours)
-    _append_log(log_path, "".join(lines))
-    if process.returncode != 0:
-        _raise_failure(host, "".join(lines), failed, log_path)
+    output = "".join(lines)
+    _append_log(log_path, output)
+    if split_logs:
+        command = " ".join(["dvc", *argv[len(dvc_argv()) :]])
+        for stage, text in segments.items():
+            path = log_path_for(host.root, stage)
+            atomic_write_text(path, f"$ {command}\n" + "".join(text))  # replaces a link
+    return process.returncode, output, failed
+
+
+def _repro(
+    host: HostRepo, target: str, *, pull: bool, progress: Progress, single: bool = False
+) -> None:
+    """Run ``dvc repro target`` (:func:`stream_repro`). On failure raise one line naming
+    the stage (and, for a fit, the cell and its log); DVC's whole output is in
+    ``logs/run.log``."""
+    argv = [*dvc_argv(), "repro", *(["--single-item"] if single else [])]
+    argv += [*(["--pull"] if pull else []), target]
+    status, output, failed = stream_repro(host, argv, progress)
+    if status != 0:
+        _raise_failure(host, output, failed, host.pipeline_dir / "logs" / "run.log")
 
 
 def _append_log(path: Path, text: str) -> None:
@@ -239,18 +281,33 @@ def _run_jobs(
     pull: bool,
     progress: Progress,
 ) -> None:
-    """``dvc repro`` the pipeline; with ``jobs > 1`` the stale fit stages run in parallel."""
+    """``dvc repro`` the pipeline; with ``jobs > 1`` the stale fit stages run in parallel.
+
+    With ``jobs > 1``: one ``dvc status`` (host stages upstream included) first; when
+    nothing is stale the run ends there. Then ``repro ...:reorder`` (units, reorder, the
+    host's stages upstream) when one of those is stale, the stale fits in batches of one
+    DVC process each, ``jobs`` at a time (:func:`~retrograde.host.run_stage_batches`), and
+    ``repro --single-item ...:table``.
+    """
     if jobs == 1:
         _repro(host, target, pull=pull, progress=progress)
         return
-    # One `dvc status` (host stages upstream included) decides whether anything is stale:
-    # a no-op run then costs seconds, not a DVC process per stage.
-    if not pull and not stale_stages(host.root, None, with_deps=True):
+    stale = None if pull else stale_stages(host.root, None, with_deps=True)
+    if stale == []:
         return
-    _repro(host, f"{target}:reorder", pull=pull, progress=progress)  # units, reorder, host
-    names = stale_stages(host.root, [fit_stage_name(*cell) for cell in cells])
-    run_stages_in_parallel(host.root, names, jobs, pull=pull, progress=progress)
-    _repro(host, target, pull=pull, progress=progress)
+    fit_names = [fit_stage_name(*cell) for cell in cells]
+    stale_names = None if stale is None else {key.rpartition(":")[2] for key in stale}
+    upstream = stale_names is None or any(
+        not name.startswith("fit@") and name != "table" for name in stale_names
+    )
+    if upstream:
+        _repro(host, f"{target}:reorder", pull=pull, progress=progress)  # units, reorder, host
+    if stale_names is None or (upstream and not stale_names.issuperset(fit_names)):
+        names = stale_stages(host.root, fit_names)  # fits made stale by what just ran
+    else:
+        names = [name for name in fit_names if name in stale_names]
+    run_stage_batches(host.root, names, jobs, pull=pull, progress=progress)
+    _repro(host, f"{target}:table", pull=pull, progress=progress, single=True)
 
 
 def initialize(
@@ -300,7 +357,11 @@ def run_pipeline(
         # The log of this run's DVC output starts empty (each `dvc repro` appends).
         (host.pipeline_dir / "logs").mkdir(parents=True, exist_ok=True)
         atomic_write_text(host.pipeline_dir / "logs" / "run.log", "")  # replaces a link
-        with stage_environment(host), Progress(total) as progress:
+        with (
+            stage_environment(host),
+            stage_server(warm_modules(config)),
+            Progress(total) as progress,
+        ):
             _run_jobs(host, target, cells, jobs, pull=pull, progress=progress)
-        normalize_lock_order(host.root)  # dvc.lock in stage-file order, whatever jobs was
+        normalize_lock_order(host.root, config)  # stage-file order, whatever jobs was
     return RunResult(host, config, progress.counts())

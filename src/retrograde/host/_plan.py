@@ -20,8 +20,9 @@ from typing import TypeVar
 
 from ..config import RetrogradeConfig, fit_stage_name, reorder_stage_name
 from ..errors import ConfigError
+from ..stages.server import stage_server
 from ..validation import check_int
-from ._driver import compose_for, stage_environment, write_pipeline_files
+from ._driver import compose_for, stage_environment, warm_modules, write_pipeline_files
 from ._lock import pipeline_lock
 from ._parallel import run_stages_in_parallel
 from ._repo import HostRepo, run_dvc
@@ -97,7 +98,7 @@ def reproduce_shard(shard: Shard, *, jobs: int = 1, pull: bool = False) -> None:
     upstream = sorted({host.target(reorder_stage_name(s, o)) for s, _, o, _ in shard.cells})
     with pipeline_lock(host.root, "retrograde plan --run"):
         write_pipeline_files(host, shard.config)
-        with stage_environment(host):
+        with stage_environment(host), stage_server(warm_modules(shard.config)):
             run_dvc(
                 host.root,
                 ["repro", *(["--pull"] if pull else []), *upstream],

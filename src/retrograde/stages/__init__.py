@@ -16,7 +16,6 @@ import sys
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
-from ..config import PARAMS_DIGEST_ENV, params_digest
 from ..errors import HostRepoError, RetrogradeError
 
 __all__ = ["run_stage"]
@@ -51,6 +50,8 @@ def _check_params_unchanged(folder: str) -> None:
     params file rewritten since (by another command, or by hand) would make this stage
     compute with parameters its run did not ask for, and DVC record the wrong ones.
     """
+    from ..config import PARAMS_DIGEST_ENV, params_digest  # not at the top: see server.py
+
     expected = os.environ.get(PARAMS_DIGEST_ENV)
     if expected and params_digest(Path(folder) / "params.yaml") != expected:
         raise HostRepoError(

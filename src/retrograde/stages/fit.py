@@ -20,6 +20,11 @@ A crash becomes one line naming the cell and its ``fit.log`` (exit status 2).
 
 from __future__ import annotations
 
+if __name__ == "__main__":  # a command of a run: the run's stage server may run it (server.py)
+    from retrograde.stages.server import delegate
+
+    delegate("fit")
+
 import argparse
 import contextlib
 import io

@@ -9,6 +9,11 @@ the table stage uses to map per-position losses back to the natural order.
 
 from __future__ import annotations
 
+if __name__ == "__main__":  # a command of a run: the run's stage server may run it (server.py)
+    from retrograde.stages.server import delegate
+
+    delegate("reorder")
+
 import argparse
 from collections.abc import Mapping, Sequence
 from pathlib import Path

@@ -9,6 +9,11 @@ log-probabilities; it writes ``metrics.json`` (``{source: {model: {order: leaf}}
 
 from __future__ import annotations
 
+if __name__ == "__main__":  # a command of a run: the run's stage server may run it (server.py)
+    from retrograde.stages.server import delegate
+
+    delegate("table")
+
 import argparse
 import hashlib
 import json
@@ -25,6 +30,7 @@ from ..config import (
     StudyConfig,
     cell_dir,
     check_stats,
+    fitted_seed,
     load_params,
     order_dir,
     units_dir,
@@ -71,8 +77,10 @@ def _seed_rows(
     seeds: list[int],
     reference: str,
     test: SequenceSet,
+    cell_seeds: list[int],
 ) -> list[dict[str, Any]]:
-    """One row per fit cell of one model: per-seed bits and gap, last validation score, budget."""
+    """One row per seed of one model and order: per-seed bits and gap, last validation
+    score, and the budget of the cell that holds the seed's results (``cell_seeds``)."""
     n_tokens = max(int(len(test.tokens)), 1)
     rows = []
     for order, losses in unit_nll.items():
@@ -93,7 +101,7 @@ def _seed_rows(
                     ),
                     "test_units": len(test),
                     "test_tokens": int(len(test.tokens)),
-                    **_read_budget(wdir, source, model, order, seed),
+                    **_read_budget(wdir, source, model, order, cell_seeds[row]),
                 }
             )
     return rows
@@ -188,9 +196,10 @@ def _data_hash(units: SequenceSet) -> str:
 
 
 def _order_losses(
-    wdir: Path, where: tuple[str, str, str], seeds: list[int], test: SequenceSet
+    wdir: Path, where: tuple[str, str, str], cell_seeds: list[int], test: SequenceSet
 ) -> tuple[np.ndarray, np.ndarray, Ragged, list[Any]]:
-    """One (source, model, order) over its seeds.
+    """One (source, model, order) over its seeds; ``cell_seeds[k]`` is the seed of the cell
+    holding seed ``k``'s results (:func:`retrograde.config.fitted_seed`).
 
     Returns ``(unit_nll, end_nll, natural, curves)``: (n_seeds, n_units) nats per test unit,
     the end marker's share of them, the seed-averaged per-position losses in natural order
@@ -207,7 +216,7 @@ def _order_losses(
     # Each unit has len + 1 scores (end marker last): offsets of the flat score arrays.
     score_offsets = np.concatenate([[0], np.cumsum(test.lengths + 1)]).astype(np.int64)
     unit_nll, end_nll, losses, curves = [], [], [], []
-    for seed in seeds:
+    for seed in cell_seeds:
         values, curve = _read_cell(wdir, source, model, order, seed)
         logprobs = Ragged(values, score_offsets)
         unit_nll.append(stats.unit_nll(logprobs))
@@ -256,6 +265,8 @@ def _model_results(
     simultaneous intervals); ``seed_rows`` one row per fit cell (:func:`_seed_rows`)."""
     study, stats_config = config.study, config.stats
     seeds = study.seeds_of(model)
+    # a model that ignores the seed was fitted once: every seed reads that cell
+    cell_seeds = [fitted_seed(study, model, seed) for seed in seeds]
     unit_nll: dict[str, np.ndarray] = {}
     end_nll: dict[str, np.ndarray] = {}
     natural: dict[str, Ragged] = {}
@@ -263,10 +274,10 @@ def _model_results(
     for order in study.orders:
         where = (source, model, order)
         unit_nll[order], end_nll[order], natural[order], curves[order] = _order_losses(
-            wdir, where, seeds, test
+            wdir, where, cell_seeds, test
         )
         if floors is not None:
-            _check_floor(unit_nll[order], floors, where, seeds, test)
+            _check_floor(unit_nll[order], floors, where, cell_seeds, test)
     leaves = stats.summarize_model(
         unit_nll,
         reference_order=study.reference_order,
@@ -283,7 +294,7 @@ def _model_results(
     )
     if seed_rows is not None:
         seed_rows += _seed_rows(
-            wdir, source, model, unit_nll, curves, seeds, study.reference_order, test
+            wdir, source, model, unit_nll, curves, seeds, study.reference_order, test, cell_seeds
         )
     return leaves, natural, curves
 

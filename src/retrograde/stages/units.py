@@ -9,6 +9,11 @@ split folders, ``info.json``, and ``tokenizer.json`` (file sources) or ``floors.
 
 from __future__ import annotations
 
+if __name__ == "__main__":  # a command of a run: the run's stage server may run it (server.py)
+    from retrograde.stages.server import delegate
+
+    delegate("units")
+
 import argparse
 from collections.abc import Sequence
 from pathlib import Path
