@@ -7,6 +7,7 @@ does, as functions the command line only calls:
 - :func:`find_host`, :class:`HostRepo`, :func:`run_git`, :func:`run_dvc` — the repository;
 - :func:`install`, :func:`planned_files`, :func:`resolve_sources` — ``retrograde init``;
 - :func:`run_pipeline` — ``retrograde run``: compose, write, ``dvc repro``, tidy the lock;
+  :class:`ClusterOptions` — its ``--cluster`` (fit stages as Dask tasks);
 - :func:`check_host`, :func:`check_file` — ``retrograde check``;
 - :func:`plan_shard`, :func:`reproduce_shard` — ``retrograde plan``;
 - :func:`read_table_at` — the gap table at a git revision (``compare``, ``table``);
@@ -19,6 +20,7 @@ Everything written in a host lies under ``conf/retrograde/`` and ``pipelines/ret
 from __future__ import annotations
 
 from ._check import cell_status, check_host, format_host_check, round_trip_orders
+from ._cluster import CLUSTER_MODES, ClusterOptions, parse_cluster
 from ._corpus_paths import check_source_files, host_stage_outputs, resolve_sources
 from ._demo import MARKER, commit_demo_results, next_steps, prepare_demo
 from ._driver import (
@@ -33,7 +35,14 @@ from ._driver import (
 from ._file_check import check_file, format_file_check, parse_order_spec, read_text
 from ._lock import pipeline_lock
 from ._lockfile import normalize_lock_order, order_lock_entries, ordered_keys
-from ._parallel import log_path_for, repro_argv, run_stages_in_parallel, stale_stages
+from ._parallel import (
+    StageRun,
+    log_path_for,
+    repro_argv,
+    run_stages_in_parallel,
+    stage_log,
+    stale_stages,
+)
 from ._plan import Shard, parse_shard, plan_shard, reproduce_shard, shard_of
 from ._repo import (
     HostRepo,
@@ -62,6 +71,7 @@ from ._scaffold import (
 from ._stagefile import UNITS_BEGIN, UNITS_END, render_dvc_yaml
 
 __all__ = [
+    "CLUSTER_MODES",
     "DVCIGNORE",
     "DVCIGNORE_RULES",
     "GITIGNORE",
@@ -70,10 +80,12 @@ __all__ = [
     "SOURCE_CONFIG",
     "UNITS_BEGIN",
     "UNITS_END",
+    "ClusterOptions",
     "HostRepo",
     "InstallResult",
     "RunResult",
     "Shard",
+    "StageRun",
     "cell_status",
     "check_source_files",
     "check_file",
@@ -95,6 +107,7 @@ __all__ = [
     "normalize_lock_order",
     "order_lock_entries",
     "ordered_keys",
+    "parse_cluster",
     "parse_order_spec",
     "parse_repro_line",
     "parse_shard",
@@ -117,6 +130,7 @@ __all__ = [
     "run_tool",
     "shard_of",
     "source_config",
+    "stage_log",
     "stage_environment",
     "stale_stages",
     "write_pipeline_files",

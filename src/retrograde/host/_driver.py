@@ -29,11 +29,13 @@ from ..config import (
     fit_stage_name,
     params_digest,
     params_text,
+    reorder_stage_name,
 )
 from ..data import atomic_write_text
 from ..errors import FitError, HostRepoError, RetrogradeError
 from ..report import recover_report
 from ..validation import check_int
+from ._cluster import Cluster, ClusterOptions, open_cluster, run_on_cluster
 from ._corpus_paths import check_source_files
 from ._lock import pipeline_lock
 from ._lockfile import normalize_lock_order
@@ -238,9 +240,11 @@ def _run_jobs(
     *,
     pull: bool,
     progress: Progress,
+    cluster: tuple[Cluster, ClusterOptions] | None = None,
 ) -> None:
-    """``dvc repro`` the pipeline; with ``jobs > 1`` the stale fit stages run in parallel."""
-    if jobs == 1:
+    """``dvc repro`` the pipeline; with ``jobs > 1`` the stale fit stages run in parallel,
+    with a ``cluster`` they run as its tasks."""
+    if jobs == 1 and cluster is None:
         _repro(host, target, pull=pull, progress=progress)
         return
     # One `dvc status` (host stages upstream included) decides whether anything is stale:
@@ -249,7 +253,19 @@ def _run_jobs(
         return
     _repro(host, f"{target}:reorder", pull=pull, progress=progress)  # units, reorder, host
     names = stale_stages(host.root, [fit_stage_name(*cell) for cell in cells])
-    run_stages_in_parallel(host.root, names, jobs, pull=pull, progress=progress)
+    if cluster is None:
+        run_stages_in_parallel(host.root, names, jobs, pull=pull, progress=progress)
+    else:
+        handle, options = cluster
+        upstream = {
+            fit_stage_name(*cell): host.target(reorder_stage_name(cell[0], cell[2]))
+            for cell in cells
+        }
+        run_on_cluster(
+            host, names, handle, options, upstream=upstream, pull=pull, progress=progress
+        )
+        # Clones sent their results to the remote: the closing repro restores them.
+        pull = pull or options.mode == "clone"
     _repro(host, target, pull=pull, progress=progress)
 
 
@@ -286,10 +302,30 @@ def run_pipeline(
     *,
     jobs: int = 1,
     pull: bool = False,
+    cluster: ClusterOptions | None = None,
 ) -> RunResult:
-    """Compose, write the generated files, reproduce the pipeline, order ``dvc.lock``."""
+    """Compose, write the generated files, reproduce the pipeline, order ``dvc.lock``.
+
+    With ``cluster`` the stale fit stages run as tasks of a Dask cluster
+    (:mod:`retrograde.host._cluster`), which is reached before anything is written.
+    """
     jobs = check_int("option 'run'", "jobs", jobs, low=1)
     host, config = compose_for(host_dir, overrides)
+    with contextlib.ExitStack() as stack:
+        on: tuple[Cluster, ClusterOptions] | None = None
+        if cluster is not None:
+            on = (stack.enter_context(open_cluster(cluster)), cluster)
+        events = _run_locked(host, config, jobs, pull, on)
+    return RunResult(host, config, events)
+
+
+def _run_locked(
+    host: HostRepo,
+    config: RetrogradeConfig,
+    jobs: int,
+    pull: bool,
+    cluster: tuple[Cluster, ClusterOptions] | None,
+) -> dict[str, list[str]]:
     with pipeline_lock(host.root, "retrograde run"):  # before the first write
         recover_report(host.pipeline_dir)
         write_pipeline_files(host, config)
@@ -301,6 +337,6 @@ def run_pipeline(
         (host.pipeline_dir / "logs").mkdir(parents=True, exist_ok=True)
         atomic_write_text(host.pipeline_dir / "logs" / "run.log", "")  # replaces a link
         with stage_environment(host), Progress(total) as progress:
-            _run_jobs(host, target, cells, jobs, pull=pull, progress=progress)
+            _run_jobs(host, target, cells, jobs, pull=pull, progress=progress, cluster=cluster)
         normalize_lock_order(host.root)  # dvc.lock in stage-file order, whatever jobs was
-    return RunResult(host, config, progress.counts())
+    return progress.counts()
