@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import subprocess
 import sys
 import textwrap
@@ -173,3 +174,95 @@ def test_a_cell_failing_on_a_worker_is_one_line_naming_the_cell_the_worker_and_t
     assert log.endswith(".log")
     with open(log, encoding="utf-8") as handle:
         assert "diverged at step 3" in handle.read()
+
+
+@pytest.mark.slow
+@pytest.mark.dvc
+def test_clone_mode_fits_in_the_workers_clone_and_results_come_back_through_the_remote(
+    tmp_path, capsys
+):
+    host = new_pipeline_host(tmp_path / "host")
+    remote = tmp_path / "remote"
+    remote.mkdir()
+    sh([sys.executable, "-m", "dvc", "remote", "add", "-d", "store", str(remote)], host)
+    sh(["git", "commit", "-q", "-m", "remote", "--", ".dvc/config"], host)
+    clone = tmp_path / "worker-clone"
+    sh(["git", "clone", "-q", str(host), str(clone)], tmp_path)
+    status, _, err = _run(
+        capsys,
+        "--dir",
+        str(host),
+        "--cluster",
+        "local:1",
+        "--cluster-mode",
+        "clone",
+        "--cluster-repo",
+        str(clone),
+        *SMOKE,
+    )
+    assert status == 0, err
+    # The fits ran in the clone (its dvc.lock records them) and came back here from the
+    # remote's run-cache: restored, not fitted, by the closing `dvc repro --pull`.
+    clone_lock = (clone / PIPELINE / "dvc.lock").read_text()
+    assert "fit@corpus-ngram-forward-0" in clone_lock
+    assert "fit@corpus-ngram-reverse-0" in clone_lock
+    assert "1 there" in err and "retrograde: 4 stages ran, 2 restored" in err, err
+    for cell in ("forward", "reverse"):
+        log = (host / LOG_DIR / f"fit@corpus-ngram-{cell}-0.log").read_text()
+        assert "push --run-cache" in log
+    metrics = json.loads((host / PIPELINE / "metrics.json").read_text())
+    assert set(metrics["corpus"]["ngram"]) == {"forward", "reverse"}
+    assert "up to date" in sh([sys.executable, "-m", "dvc", "status", f"{PIPELINE}/dvc.yaml"], host)
+
+
+@pytest.mark.dvc
+def test_clone_mode_refuses_a_clone_at_another_commit(tmp_path, capsys):
+    host = new_pipeline_host(tmp_path / "host")
+    clone = tmp_path / "worker-clone"
+    sh(["git", "clone", "-q", str(host), str(clone)], tmp_path)
+    (host / "notes.txt").write_text("a newer commit\n")
+    sh(["git", "add", "notes.txt"], host)
+    sh(["git", "commit", "-q", "-m", "newer"], host)
+    sh([sys.executable, "-m", "dvc", "remote", "add", "-d", "store", str(tmp_path / "r")], host)
+    before = snapshot(host)
+    status, _, err = _run(
+        capsys,
+        "--dir",
+        str(host),
+        "--cluster",
+        "local:1",
+        "--cluster-mode",
+        "clone",
+        "--cluster-repo",
+        str(clone),
+        *SMOKE,
+    )
+    # Every worker is asked before anything is written.
+    assert status == 2
+    assert len(err.strip().splitlines()) == 1, err
+    assert "retrograde: error: option --cluster: worker tcp://127.0.0.1:" in err
+    assert f"the clone at {clone} is at commit " in err and "check out the same commit" in err
+    assert snapshot(host) == before
+
+
+@pytest.mark.dvc
+def test_clone_mode_without_a_default_dvc_remote_is_one_line(tmp_path, capsys):
+    host = new_pipeline_host(tmp_path / "host")
+    status, _, err = _run(
+        capsys, "--dir", str(host), "--cluster", "local:1", "--cluster-mode", "clone", *SMOKE
+    )
+    assert status == 2 and len(err.strip().splitlines()) == 1, err
+    assert "needs a default DVC remote" in err
+
+
+@pytest.mark.dvc
+def test_a_worker_without_the_repository_is_refused_before_anything_is_written(tmp_path, capsys):
+    host = new_pipeline_host(tmp_path / "host")
+    before = snapshot(host)
+    missing = tmp_path / "not-mounted-here"
+    status, _, err = _run(
+        capsys, "--dir", str(host), "--cluster", "local:1", "--cluster-repo", str(missing), *SMOKE
+    )
+    assert status == 2 and len(err.strip().splitlines()) == 1, err
+    assert f"no DVC repository at {missing} there" in err
+    assert snapshot(host) == before

@@ -58,6 +58,7 @@ __all__ = [
     "Cluster",
     "ClusterOptions",
     "WorkerJob",
+    "check_workers",
     "open_cluster",
     "parse_cluster",
     "run_on_cluster",
@@ -202,6 +203,81 @@ def open_cluster(options: ClusterOptions) -> Iterator[Cluster]:
             executor.shutdown(wait=False)
 
 
+def check_workers(cluster: Cluster, options: ClusterOptions, host: HostRepo) -> None:
+    """Ask every worker, before anything is written, whether it can run this run's cells:
+    the repository at its path there (in clone mode: a clone at this commit), and the
+    same versions of retrograde and DVC as here. Workers that join later are checked by
+    each task.
+
+    Raises
+    ------
+    HostRepoError
+        One line naming the first worker that cannot, and why; or (clone mode) this
+        repository has no default DVC remote.
+    """
+    commit = None
+    if options.mode == "clone":
+        default = run_dvc(host.root, ["remote", "default"], check=False)
+        if default.returncode != 0 or not default.stdout.strip():
+            raise HostRepoError(
+                f"--cluster-mode clone needs a default DVC remote in {host.root} that every "
+                "worker can reach; run `dvc remote add -d NAME URL` and commit .dvc/config"
+            )
+        commit = run_git(host.git_root, ["rev-parse", "HEAD"]).stdout.strip()
+    root = options.repo or str(host.root)
+    answers: dict[str, str | None] = cluster.client.run(_probe, root, commit, _versions())
+    problems = sorted((address, text) for address, text in answers.items() if text)
+    if problems:
+        address, text = problems[0]
+        raise HostRepoError(
+            f"option --cluster: worker {address} cannot run the cells: {text} "
+            f"({len(problems)} of {len(answers)} workers)"
+        )
+
+
+def _versions() -> dict[str, str]:
+    from importlib.metadata import PackageNotFoundError, version
+
+    found = {}
+    for package in ("retrograde", "dvc"):
+        try:
+            found[package] = version(package)
+        except PackageNotFoundError:
+            found[package] = "?"
+    return found
+
+
+def _probe(root: str, commit: str | None, versions: dict[str, str]) -> str | None:
+    """On a worker: why it cannot run this run's cells, or ``None``."""
+    for package, wanted in _versions().items():
+        if wanted != versions.get(package):
+            return (
+                f"it has {package} {wanted}, this machine {versions.get(package)}; install "
+                "the same packages on every worker"
+            )
+    return _repository_problem(Path(root), commit)
+
+
+def _repository_problem(root: Path, commit: str | None) -> str | None:
+    if not (root / ".dvc").is_dir():
+        return (
+            f"no DVC repository at {root} there; every worker needs the repository at that "
+            "path (a shared filesystem, or a clone with --cluster-mode clone)"
+        )
+    if commit is None:
+        return None
+    result = subprocess.run(
+        ["git", "rev-parse", "HEAD"], cwd=root, capture_output=True, text=True, check=False
+    )
+    head = result.stdout.strip()
+    if head != commit:
+        return (
+            f"the clone at {root} is at commit {head[:12] or '?'}, this run at "
+            f"{commit[:12]}; check out the same commit on every worker"
+        )
+    return None
+
+
 @dataclass(frozen=True)
 class WorkerJob:
     """What a task needs to run one fit stage on a worker (pickled to it).
@@ -304,13 +380,9 @@ def _stop_requested(event_name: str | None) -> Callable[[], bool]:
 def _run_on_worker(job: WorkerJob, name: str) -> StageRun:
     worker = _worker_name()
     root = Path(job.root)
-    if not (root / ".dvc").is_dir():
-        return StageRun(
-            None,
-            f"ERROR: {worker} has no DVC repository at {root}; every worker needs the "
-            "repository there (a shared filesystem, or a clone with --cluster-mode clone)\n",
-            worker,
-        )
+    problem = _repository_problem(root, job.commit)
+    if problem is not None:
+        return StageRun(None, f"ERROR: {worker}: {problem}\n", worker)
     env = {
         **os.environ,
         "PATH": os.pathsep.join([str(Path(sys.executable).parent), os.environ.get("PATH", "")]),
@@ -320,9 +392,9 @@ def _run_on_worker(job: WorkerJob, name: str) -> StageRun:
     target = f"{DVC_FILE.as_posix()}:{name}"
     log = ""
     if job.commit is not None:
-        problem, log = _prepare_clone(job, root, name, env, stop)
-        if problem is not None:
-            return StageRun(problem, log, worker)
+        failed, log = _prepare_clone(job, root, name, env, stop)
+        if failed is not None:
+            return StageRun(failed, log, worker)
     argv = repro_argv(target, pull=job.pull)
     status, output = _watched([*dvc_argv(), *argv], root, env, stop)
     log += stage_log(argv, output, "")
@@ -336,21 +408,12 @@ def _run_on_worker(job: WorkerJob, name: str) -> StageRun:
 def _prepare_clone(
     job: WorkerJob, root: Path, name: str, env: dict[str, str], stop: Callable[[], bool]
 ) -> tuple[int | None, str]:
-    """Check the clone's commit, write the run's generated files, restore the cell's inputs.
+    """Write the run's generated files into the clone and restore the cell's inputs.
 
     One task per clone at a time (a file lock), so two tasks never restore the same
     ``reorder`` outputs at once. Returns ``(exit status or None, log)``; status ``None``
     means all is ready.
     """
-    result = subprocess.run(
-        ["git", "rev-parse", "HEAD"], cwd=root, capture_output=True, text=True, check=False
-    )
-    head = result.stdout.strip()
-    if head != job.commit:
-        return 1, (
-            f"ERROR: the clone at {root} is at commit {head[:12] or '?'}, the run at "
-            f"{(job.commit or '')[:12]}; check out the same commit on every worker\n"
-        )
     import fcntl
 
     lock_path = root / ".dvc" / "tmp" / "retrograde-cluster.lock"

@@ -35,7 +35,7 @@ from ..data import atomic_write_text
 from ..errors import FitError, HostRepoError, RetrogradeError
 from ..report import recover_report
 from ..validation import check_int
-from ._cluster import Cluster, ClusterOptions, open_cluster, run_on_cluster
+from ._cluster import Cluster, ClusterOptions, check_workers, open_cluster, run_on_cluster
 from ._corpus_paths import check_source_files
 from ._lock import pipeline_lock
 from ._lockfile import normalize_lock_order
@@ -315,6 +315,7 @@ def run_pipeline(
         on: tuple[Cluster, ClusterOptions] | None = None
         if cluster is not None:
             on = (stack.enter_context(open_cluster(cluster)), cluster)
+            check_workers(on[0], cluster, host)
         events = _run_locked(host, config, jobs, pull, on)
     return RunResult(host, config, events)
 
