@@ -266,3 +266,14 @@ def test_a_worker_without_the_repository_is_refused_before_anything_is_written(t
     assert status == 2 and len(err.strip().splitlines()) == 1, err
     assert f"no DVC repository at {missing} there" in err
     assert snapshot(host) == before
+
+
+def test_a_stop_request_ends_the_running_stage_process_group(tmp_path):
+    # What Ctrl-C does to a running task: its DVC process group gets SIGTERM. The child
+    # stands in for a long fit (it would wait a minute); the stop is asked at once.
+    from retrograde.host._cluster import _watched
+
+    argv = [sys.executable, "-c", "import time; print('fitting', flush=True); time.sleep(60)"]
+    status, output = _watched(argv, tmp_path, {}, lambda: True)
+    assert status == -15  # killed by SIGTERM (POSIX: negative signal number in returncode)
+    assert "stopped: the run was cancelled" in output
