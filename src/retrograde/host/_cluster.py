@@ -39,6 +39,7 @@ import signal
 import subprocess
 import sys
 import tempfile
+import threading
 import uuid
 from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import Executor
@@ -177,7 +178,10 @@ def open_cluster(options: ClusterOptions) -> Iterator[Cluster]:
                     dashboard_address=None,
                     # no dashboard, and its web server on a free port, not 8787
                     scheduler_kwargs={"dashboard": False, "dashboard_address": "127.0.0.1:0"},
-                    silence_logs=logging.ERROR,
+                    # Ctrl-C is the coordinator's to handle (the tasks get told to stop);
+                    # the scheduler's complaints about a client that left are noise then.
+                    silence_logs=logging.CRITICAL + 1,
+                    preload=[__name__],  # dask_setup below: workers ignore SIGINT
                 )
             )
             client = stack.enter_context(distributed.Client(cluster))
@@ -225,7 +229,14 @@ def check_workers(cluster: Cluster, options: ClusterOptions, host: HostRepo) -> 
             )
         commit = run_git(host.git_root, ["rev-parse", "HEAD"]).stdout.strip()
     root = options.repo or str(host.root)
-    answers: dict[str, str | None] = cluster.client.run(_probe, root, commit, _versions())
+    try:
+        answers: dict[str, str | None] = cluster.client.run(_probe, root, commit, _versions())
+    except Exception as exc:  # a worker that cannot even answer (its retrograde is missing)
+        reason = " ".join(str(exc).split())[:200] or type(exc).__name__
+        raise HostRepoError(
+            f"option --cluster: a worker of {cluster.address} could not be asked whether it "
+            f"can run the cells ({type(exc).__name__}: {reason}); install retrograde there"
+        ) from exc
     problems = sorted((address, text) for address, text in answers.items() if text)
     if problems:
         address, text = problems[0]
@@ -352,6 +363,16 @@ def run_on_cluster(
 
 
 # ----------------------------------------------------------------------- on the worker
+def dask_setup(worker: object) -> None:
+    """Dask's preload hook, run in each ``local:N`` worker process as it starts.
+
+    A terminal's Ctrl-C reaches every process of its group, workers included: they ignore
+    it, and the coordinator stops their tasks instead (:func:`open_cluster`).
+    """
+    if threading.current_thread() is threading.main_thread():
+        signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+
 def _worker_name() -> str:
     try:
         from distributed import get_worker
