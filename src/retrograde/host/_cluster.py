@@ -32,6 +32,7 @@ imports it until a cluster is asked for.
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import logging
 import os
 import re
@@ -349,7 +350,7 @@ def run_on_cluster(
             path.as_posix(): (host.root / path).read_text(encoding="utf-8")
             for path in (PARAMS_FILE, DVC_FILE)
         }
-        job = WorkerJob(**{**job.__dict__, "commit": commit, "files": files, "upstream": upstream})
+        job = dataclasses.replace(job, commit=commit, files=files, upstream=upstream)
     capacity: Callable[[], int] = lambda: max(1, cluster.capacity())  # noqa: E731
     run_stages_in_parallel(
         host.root,

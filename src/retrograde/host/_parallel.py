@@ -44,6 +44,8 @@ __all__ = [
     "stale_stages",
 ]
 
+#: seconds between two looks at a capacity that can change (a cluster's worker threads)
+_REPOLL_SECONDS = 10.0
 _UNSAFE_FILE_CHARS = re.compile(r"[^A-Za-z0-9@._=+-]")
 _STAGE_ERROR = re.compile(r"^retrograde \w+: error: (.*)$", re.M)
 
@@ -175,7 +177,9 @@ def run_stages_in_parallel(
                 pending[pool.submit(task, name)] = name
             if not pending:
                 break
-            done, _ = wait(pending, return_when=FIRST_COMPLETED)
+            # A capacity that can grow (workers joining a cluster) is asked again now and then.
+            timeout = _REPOLL_SECONDS if callable(jobs) else None
+            done, _ = wait(pending, timeout=timeout, return_when=FIRST_COMPLETED)
             for future in done:
                 name = pending.pop(future)
                 results[name] = _outcome(future)
