@@ -21,7 +21,9 @@ __all__ = ["configure", "print_summary", "run"]
 
 def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--dir", default=".", help="the host repository (default: here)")
-    parser.add_argument("--jobs", type=int, default=None, help="fit stages run in parallel")
+    parser.add_argument(
+        "--jobs", type=int, default=None, help="fit stages run in parallel here (default 1)"
+    )
     parser.add_argument(
         "--cluster",
         metavar="ADDRESS",
