@@ -10,7 +10,7 @@ from pathlib import Path
 import pytest
 import yaml
 
-from _host_fixtures import DVC, new_host, new_pipeline_host, sh
+from _host_fixtures import DVC, lock_without_measured, new_host, new_pipeline_host, sh
 from retrograde.cli import main
 from retrograde.config import LOG_DIR
 from retrograde.errors import ConfigError, FitError
@@ -117,7 +117,7 @@ def test_run_with_two_jobs_writes_byte_identical_metrics_to_one_job(tmp_path):
     }
     assert metrics[1] == metrics[2]
     locks = {
-        jobs: _without_measured((host / "pipelines/retrograde/dvc.lock").read_text())
+        jobs: lock_without_measured((host / "pipelines/retrograde/dvc.lock").read_text())
         for jobs, host in hosts.items()
     }
     assert locks[1] == locks[2]  # same hashes and, after order_lock_entries, same layout
@@ -136,28 +136,10 @@ def test_run_with_two_jobs_writes_byte_identical_metrics_to_one_job(tmp_path):
         else:
             assert {f: (cells / f).read_bytes() for f in files} == first
     assert b'"reverse"' in metrics[1]  # the table really holds the smoke grid's cells
-    # The two-job run went through the parallel path: one log per fit stage (the n-gram
-    # ignores the seed: one stage per order).
+    # The two-job run went through the parallel path: one log per fit stage (each seed of
+    # the n-gram trains on its own half-sample: a stage per order and seed).
     logs = sorted(p.name for p in (hosts[2] / LOG_DIR).glob("fit@*.log"))
-    assert logs == [f"fit@corpus-ngram-{o}-0.log" for o in ("forward", "reverse")]
-
-
-def _without_measured(lock: str) -> str:
-    """``dvc.lock`` without the hashes of what holds measured times (a cell's budget.json,
-    the table's cells.csv and the budget section of report.md): the cell folders (as outs,
-    and as the table's deps), cells.csv and report.md."""
-    lines = lock.splitlines()
-    kept, skip = [], False
-    for line in lines:
-        stripped = line.strip()
-        if stripped.startswith("- path:"):
-            path = stripped.split(":", 1)[1].strip()
-            skip = path.startswith("cells") or path in ("cells.csv", "report.md")
-        elif not stripped.startswith(("md5:", "size:", "nfiles:", "hash:")):
-            skip = False
-        if not (skip and stripped.startswith(("md5:", "size:", "nfiles:"))):
-            kept.append(line)
-    return "\n".join(kept)
+    assert logs == [f"fit@corpus-ngram-{o}-{s}.log" for o in ("forward", "reverse") for s in (0, 1)]
 
 
 @pytest.mark.slow

@@ -82,3 +82,18 @@ def test_dvc_lines_name_our_stages_apart_from_the_hosts():
     host = parse_repro_line("Running stage 'prepare':")
     assert (ours.stage, ours.ours) == ("table", True)
     assert (host.stage, host.ours) == ("prepare", False)
+
+
+def test_a_cluster_cell_line_names_its_worker_and_how_many_that_worker_finished():
+    progress, stream, clock = _progress(3)
+    for stage in ("fit@a", "fit@b", "fit@c"):
+        progress.started(stage)
+    clock.now = 4
+    progress.finished("fit@a", "ran", worker="worker 0")
+    progress.finished("fit@b", "restored", worker="worker 0")
+    progress.finished("fit@c", "failed", worker="worker 1")  # a failure is not a cell done there
+    lines = stream.getvalue().splitlines()
+    assert " fit@a in 4.0 s on worker 0 (1 there)  (" in lines[0]
+    assert " fit@b in 4.0 s on worker 0 (2 there)  (" in lines[1]
+    assert " fit@c in 4.0 s on worker 1  (" in lines[2]
+    assert progress.by_worker == {"worker 0": 2}

@@ -1,7 +1,8 @@
-"""``retrograde run [--dir HOST] [--jobs N] [--pull] [--dry] [OVERRIDES ...]``.
+"""``retrograde run [--dir HOST] [--jobs N | --cluster ADDRESS|local:N] [--pull] [--dry] [OVERRIDES ...]``.
 
 Composes ``conf/retrograde/`` with Hydra overrides, reproduces the pipeline
-(:func:`retrograde.host.run_pipeline`) and prints the gap table.
+(:func:`retrograde.host.run_pipeline`) and prints the gap table. ``--cluster`` sends the
+stale fit stages to a Dask scheduler (the optional ``cluster`` extra; ``docs/ci.md``).
 """
 
 from __future__ import annotations
@@ -12,7 +13,8 @@ import sys
 
 from .. import report
 from ..config import grid_size
-from ..host import RunResult, compose_for, run_pipeline
+from ..errors import ConfigError
+from ..host import ClusterOptions, RunResult, compose_for, run_pipeline
 from ..validation import check_int
 
 __all__ = ["configure", "print_summary", "run"]
@@ -20,7 +22,28 @@ __all__ = ["configure", "print_summary", "run"]
 
 def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--dir", default=".", help="the host repository (default: here)")
-    parser.add_argument("--jobs", type=int, default=1, help="fit stages run in parallel")
+    parser.add_argument(
+        "--jobs", type=int, default=None, help="fit stages run in parallel here (default 1)"
+    )
+    parser.add_argument(
+        "--cluster",
+        metavar="ADDRESS",
+        help="run the fit stages on a Dask scheduler (tcp://host:8786), or local:N for N "
+        "worker processes here; needs the 'cluster' extra",
+    )
+    parser.add_argument(
+        "--cluster-mode",
+        choices=["shared", "clone"],
+        default="shared",
+        help="shared: workers see this repository on a shared filesystem (default); "
+        "clone: each worker holds a clone at this commit and results go through the "
+        "DVC remote's run-cache",
+    )
+    parser.add_argument(
+        "--cluster-repo",
+        metavar="PATH",
+        help="the repository's path on the workers (default: its path here)",
+    )
     parser.add_argument(
         "--pull", action="store_true", help="fetch cached results from the DVC remote"
     )
@@ -31,7 +54,17 @@ def configure(parser: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    jobs = check_int("option 'run'", "jobs", args.jobs, low=1)
+    jobs = check_int("option 'run'", "jobs", 1 if args.jobs is None else args.jobs, low=1)
+    cluster = None
+    if args.cluster is not None:
+        if args.jobs is not None:
+            raise ConfigError(
+                "options --jobs and --cluster do not go together: with --cluster the "
+                "workers' threads decide how many fit stages run at once"
+            )
+        cluster = ClusterOptions(args.cluster, args.cluster_mode, args.cluster_repo)
+    elif args.cluster_repo is not None or args.cluster_mode != "shared":
+        raise ConfigError("options --cluster-mode and --cluster-repo need --cluster ADDRESS")
     if args.dry:
         _, config = compose_for(args.dir, args.overrides)
         cells = config.fits or {}
@@ -39,7 +72,7 @@ def run(args: argparse.Namespace) -> int:
         for key in cells:
             print(f"  fit@{key}")
         return 0
-    result = run_pipeline(args.dir, args.overrides, jobs=jobs, pull=args.pull)
+    result = run_pipeline(args.dir, args.overrides, jobs=jobs, pull=args.pull, cluster=cluster)
     print_summary(result)
     return 0
 

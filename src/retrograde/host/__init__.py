@@ -7,6 +7,7 @@ does, as functions the command line only calls:
 - :func:`find_host`, :class:`HostRepo`, :func:`run_git`, :func:`run_dvc` — the repository;
 - :func:`install`, :func:`planned_files`, :func:`resolve_sources` — ``retrograde init``;
 - :func:`run_pipeline` — ``retrograde run``: compose, write, ``dvc repro``, tidy the lock;
+  :class:`ClusterOptions` — its ``--cluster`` (fit stages as Dask tasks);
 - :func:`check_host`, :func:`check_file` — ``retrograde check``;
 - :func:`plan_shard`, :func:`reproduce_shard` — ``retrograde plan``;
 - :func:`read_table_at` — the gap table at a git revision (``compare``, ``table``);
@@ -19,6 +20,7 @@ Everything written in a host lies under ``conf/retrograde/`` and ``pipelines/ret
 from __future__ import annotations
 
 from ._check import cell_status, check_host, format_host_check, round_trip_orders
+from ._cluster import CLUSTER_MODES, ClusterOptions, parse_cluster
 from ._corpus_paths import check_source_files, host_stage_outputs, resolve_sources
 from ._demo import MARKER, commit_demo_results, next_steps, prepare_demo
 from ._driver import (
@@ -34,12 +36,14 @@ from ._file_check import check_file, format_file_check, parse_order_spec, read_t
 from ._lock import pipeline_lock, release_dead_dvc_locks
 from ._lockfile import normalize_lock_order, order_lock_entries, ordered_keys, stage_order
 from ._parallel import (
+    StageRun,
     batch_pattern,
     batches,
     log_path_for,
     repro_argv,
     run_stage_batches,
     run_stages_in_parallel,
+    stage_log,
     stale_stages,
 )
 from ._plan import Shard, parse_shard, plan_shard, reproduce_shard, shard_of
@@ -70,6 +74,7 @@ from ._scaffold import (
 from ._stagefile import UNITS_BEGIN, UNITS_END, render_dvc_yaml
 
 __all__ = [
+    "CLUSTER_MODES",
     "DVCIGNORE",
     "DVCIGNORE_RULES",
     "GITIGNORE",
@@ -78,10 +83,12 @@ __all__ = [
     "SOURCE_CONFIG",
     "UNITS_BEGIN",
     "UNITS_END",
+    "ClusterOptions",
     "HostRepo",
     "InstallResult",
     "RunResult",
     "Shard",
+    "StageRun",
     "batch_pattern",
     "batches",
     "cell_status",
@@ -106,6 +113,7 @@ __all__ = [
     "order_lock_entries",
     "ordered_keys",
     "stage_order",
+    "parse_cluster",
     "parse_order_spec",
     "parse_repro_line",
     "parse_shard",
@@ -130,6 +138,7 @@ __all__ = [
     "run_tool",
     "shard_of",
     "source_config",
+    "stage_log",
     "stage_environment",
     "stale_stages",
     "write_pipeline_files",

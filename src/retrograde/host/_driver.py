@@ -29,12 +29,14 @@ from ..config import (
     fit_stage_name,
     params_digest,
     params_text,
+    reorder_stage_name,
 )
 from ..data import atomic_write_text
 from ..errors import FitError, HostRepoError, RetrogradeError
 from ..report import recover_report
 from ..stages.server import stage_server
 from ..validation import check_int
+from ._cluster import Cluster, ClusterOptions, check_workers, open_cluster, run_on_cluster
 from ._corpus_paths import check_source_files
 from ._lock import pipeline_lock
 from ._lockfile import normalize_lock_order
@@ -280,16 +282,20 @@ def _run_jobs(
     *,
     pull: bool,
     progress: Progress,
+    cluster: tuple[Cluster, ClusterOptions] | None = None,
 ) -> None:
-    """``dvc repro`` the pipeline; with ``jobs > 1`` the stale fit stages run in parallel.
+    """``dvc repro`` the pipeline; with ``jobs > 1`` the stale fit stages run in parallel,
+    with a ``cluster`` they run as its tasks.
 
-    With ``jobs > 1``: one ``dvc status`` (host stages upstream included) first; when
-    nothing is stale the run ends there. Then ``repro ...:reorder`` (units, reorder, the
-    host's stages upstream) when one of those is stale, the stale fits in batches of one
-    DVC process each, ``jobs`` at a time (:func:`~retrograde.host.run_stage_batches`), and
-    ``repro --single-item ...:table``.
+    With ``jobs > 1`` or a cluster: one ``dvc status`` (host stages upstream included)
+    first; when nothing is stale the run ends there. Then ``repro ...:reorder`` (units,
+    reorder, the host's stages upstream) when one of those is stale, then the stale fits:
+    here in batches of one DVC process each, ``jobs`` at a time
+    (:func:`~retrograde.host.run_stage_batches`), followed by ``repro --single-item
+    ...:table``; or as the cluster's tasks, followed by a whole ``repro`` (which also
+    restores a clone's results from the remote).
     """
-    if jobs == 1:
+    if jobs == 1 and cluster is None:
         _repro(host, target, pull=pull, progress=progress)
         return
     stale = None if pull else stale_stages(host.root, None, with_deps=True)
@@ -306,8 +312,17 @@ def _run_jobs(
         names = stale_stages(host.root, fit_names)  # fits made stale by what just ran
     else:
         names = [name for name in fit_names if name in stale_names]
-    run_stage_batches(host.root, names, jobs, pull=pull, progress=progress)
-    _repro(host, f"{target}:table", pull=pull, progress=progress, single=True)
+    if cluster is None:
+        run_stage_batches(host.root, names, jobs, pull=pull, progress=progress)
+        _repro(host, f"{target}:table", pull=pull, progress=progress, single=True)
+        return
+    handle, options = cluster
+    reorders = {
+        fit_stage_name(*cell): host.target(reorder_stage_name(cell[0], cell[2])) for cell in cells
+    }
+    run_on_cluster(host, names, handle, options, upstream=reorders, pull=pull, progress=progress)
+    # Clones sent their results to the remote: the closing repro restores them.
+    _repro(host, target, pull=pull or options.mode == "clone", progress=progress)
 
 
 def initialize(
@@ -343,10 +358,31 @@ def run_pipeline(
     *,
     jobs: int = 1,
     pull: bool = False,
+    cluster: ClusterOptions | None = None,
 ) -> RunResult:
-    """Compose, write the generated files, reproduce the pipeline, order ``dvc.lock``."""
+    """Compose, write the generated files, reproduce the pipeline, order ``dvc.lock``.
+
+    With ``cluster`` the stale fit stages run as tasks of a Dask cluster
+    (:mod:`retrograde.host._cluster`), which is reached before anything is written.
+    """
     jobs = check_int("option 'run'", "jobs", jobs, low=1)
     host, config = compose_for(host_dir, overrides)
+    with contextlib.ExitStack() as stack:
+        on: tuple[Cluster, ClusterOptions] | None = None
+        if cluster is not None:
+            on = (stack.enter_context(open_cluster(cluster)), cluster)
+            check_workers(on[0], cluster, host)
+        events = _run_locked(host, config, jobs, pull, on)
+    return RunResult(host, config, events)
+
+
+def _run_locked(
+    host: HostRepo,
+    config: RetrogradeConfig,
+    jobs: int,
+    pull: bool,
+    cluster: tuple[Cluster, ClusterOptions] | None,
+) -> dict[str, list[str]]:
     with pipeline_lock(host.root, "retrograde run"):  # before the first write
         recover_report(host.pipeline_dir)
         write_pipeline_files(host, config)
@@ -362,6 +398,6 @@ def run_pipeline(
             stage_server(warm_modules(config)),
             Progress(total) as progress,
         ):
-            _run_jobs(host, target, cells, jobs, pull=pull, progress=progress)
+            _run_jobs(host, target, cells, jobs, pull=pull, progress=progress, cluster=cluster)
         normalize_lock_order(host.root, config)  # stage-file order, whatever jobs was
-    return RunResult(host, config, progress.counts())
+    return progress.counts()

@@ -19,14 +19,16 @@ in completion order; :mod:`retrograde.host._lockfile` puts them back in stage-fi
 
 from __future__ import annotations
 
+import functools
 import json
 import re
-from collections.abc import Sequence
-from concurrent.futures import FIRST_COMPLETED, Future, ThreadPoolExecutor, wait
+from collections.abc import Callable, Sequence
+from concurrent.futures import FIRST_COMPLETED, Executor, Future, ThreadPoolExecutor, wait
+from dataclasses import dataclass
 from pathlib import Path
-from subprocess import CompletedProcess
 
 from ..config import DVC_FILE, LOG_DIR
+from ..data import atomic_write_text
 from ..errors import FitError
 from ..validation import check_int
 from ._lockfile import order_lock_entries
@@ -34,15 +36,19 @@ from ._progress import Progress
 from ._repo import HostRepo, dvc_argv, last_error_line, run_dvc, run_tool
 
 __all__ = [
+    "StageRun",
     "batch_pattern",
     "batches",
     "log_path_for",
     "repro_argv",
     "run_stage_batches",
     "run_stages_in_parallel",
+    "stage_log",
     "stale_stages",
 ]
 
+#: seconds between two looks at a capacity that can change (a cluster's worker threads)
+_REPOLL_SECONDS = 10.0
 _UNSAFE_FILE_CHARS = re.compile(r"[^A-Za-z0-9@._=+-]")
 _STAGE_ERROR = re.compile(r"^retrograde \w+: error: (.*)$", re.M)
 
@@ -91,13 +97,29 @@ def stale_stages(
     return [name for name in stage_names if name.rpartition(":")[2] in names]
 
 
+@dataclass(frozen=True)
+class StageRun:
+    """How one stage's ``dvc repro -s`` process ended, and where it ran.
+
+    ``returncode`` is ``None`` when the stage could not be run at all (a cluster lost its
+    worker twice, or a worker could not reach the repository); ``output`` is what the
+    stage's log holds; ``worker`` names the cluster worker (``None`` on this machine).
+    """
+
+    returncode: int | None
+    output: str
+    worker: str | None = None
+
+
 def run_stages_in_parallel(
     host: Path,
     stage_names: list[str],
-    jobs: int,
+    jobs: int | Callable[[], int],
     *,
     pull: bool = False,
     progress: Progress | None = None,
+    executor: Executor | None = None,
+    run_one: Callable[[str], StageRun] | None = None,
 ) -> None:
     """Reproduce each stage with its own ``dvc repro -s`` process, at most ``jobs`` at once.
 
@@ -109,12 +131,19 @@ def run_stages_in_parallel(
         Stages of ``pipelines/retrograde/dvc.yaml`` (``fit@...``) or qualified targets
         (``path/dvc.yaml:name``). They must not depend on each other, and their inputs must
         be up to date. Duplicates are run once.
-    jobs : int
-        Most DVC processes running at the same time (>= 1).
+    jobs : int or callable
+        Most DVC processes running at the same time (>= 1), or a function returning that
+        number, asked again whenever a stage ends (a cluster's worker threads).
     pull : bool
         Pass ``--pull`` so DVC fetches missing inputs and run-cache entries from the remote.
     progress : Progress, optional
         Told when each stage starts and ends (the run's counters and lines).
+    executor : concurrent.futures.Executor, optional
+        Where the stages run (default: threads of this process, each starting one DVC
+        process here). A Dask cluster's executor sends them to its workers.
+    run_one : callable, optional
+        ``run_one(stage_name) -> StageRun``, what each task does (default: ``dvc repro -s``
+        in ``host``). It must be picklable for an executor of other processes.
 
     Raises
     ------
@@ -125,53 +154,88 @@ def run_stages_in_parallel(
     ConfigError
         When ``jobs`` is not a positive integer.
     """
-    jobs = check_int("option 'run'", "jobs", jobs, low=1)
+    capacity = jobs if callable(jobs) else _fixed(check_int("option 'run'", "jobs", jobs, low=1))
     host = Path(host)
     repo = HostRepo(root=host, git_root=host)
     names = list(dict.fromkeys(stage_names))  # drop duplicates, keep the order
     if not names:
         return
-    results: dict[str, CompletedProcess[str]] = {}
+    task = run_one if run_one is not None else functools.partial(_repro_one, repo, pull=pull)
+    results: dict[str, StageRun] = {}
     progress = progress if progress is not None else Progress(len(names))
-    with ThreadPoolExecutor(max_workers=jobs) as pool:
-        pending: dict[Future[CompletedProcess[str]], str] = {}
+    owned = executor is None
+    pool = executor if executor is not None else ThreadPoolExecutor(max_workers=capacity())
+    pending: dict[Future[StageRun], str] = {}
+    try:
         queue = iter(names)
         failed = False
         while True:
             # Keep `jobs` processes busy until the queue is empty or something failed.
-            while not failed and len(pending) < jobs:
+            limit = max(1, capacity())
+            while not failed and len(pending) < limit:
                 name = next(queue, None)
                 if name is None:
                     break
                 progress.started(name)
-                pending[pool.submit(_repro_one, repo, name, pull)] = name
+                pending[pool.submit(task, name)] = name
             if not pending:
                 break
-            done, _ = wait(pending, return_when=FIRST_COMPLETED)
+            # A capacity that can grow (workers joining a cluster) is asked again now and then.
+            timeout = _REPOLL_SECONDS if callable(jobs) else None
+            done, _ = wait(pending, timeout=timeout, return_when=FIRST_COMPLETED)
             for future in done:
                 name = pending.pop(future)
-                results[name] = future.result()
+                results[name] = _outcome(future)
+                atomic_write_text(log_path_for(host, name), results[name].output)
                 failed = failed or results[name].returncode != 0
-                progress.finished(name, _event(results[name]))
+                progress.finished(name, _event(results[name]), worker=results[name].worker)
+    except BaseException:
+        # Ctrl-C (or a broken executor): queued stages never start; a cluster also stops
+        # the running ones (its executor's owner does that when it closes).
+        for future in pending:
+            future.cancel()
+        raise
+    finally:
+        if owned:
+            pool.shutdown(wait=True)
     order_lock_entries(repo.dvc_file.with_name("dvc.lock"), [n for n in names if ":" not in n])
     failures = [name for name in names if name in results and results[name].returncode != 0]
     if failures:
         first = failures[0]
         result = results[first]
-        reason = _failure_reason(f"{result.stdout}\n{result.stderr}")
+        reason = _failure_reason(result.output)
         not_started = len(names) - len(results)
+        how = (
+            "could not be run"
+            if result.returncode is None
+            else f"failed with exit status {result.returncode}"
+        )
+        where = f" on {result.worker}" if result.worker is not None else ""
         raise FitError(
-            f"stage {first!r} failed with exit status {result.returncode} "
+            f"stage {first!r} {how}{where} "
             f"({len(failures)} of {len(results)} finished stages failed, "
             f"{not_started} not started): {reason}; see {log_path_for(host, first)}"
         )
 
 
-def _event(result: CompletedProcess[str]) -> str:
+def _fixed(jobs: int) -> Callable[[], int]:
+    return lambda: jobs
+
+
+def _outcome(future: Future[StageRun]) -> StageRun:
+    """The task's result; an executor that could not run it (a cluster that lost the task's
+    worker twice) becomes a failed stage with the reason as its output."""
+    try:
+        return future.result()
+    except Exception as exc:
+        return StageRun(None, f"ERROR: {type(exc).__name__}: {exc}\n")
+
+
+def _event(result: StageRun) -> str:
     """How one ``dvc repro -s`` ended: ``failed``, ``restored`` (from the run-cache), ``ran``."""
     if result.returncode != 0:
         return "failed"
-    return "restored" if " is cached" in (result.stdout or "") else "ran"
+    return "restored" if " is cached" in result.output else "ran"
 
 
 def _failure_reason(output: str) -> str:
@@ -189,15 +253,20 @@ def _failure_reason(output: str) -> str:
     return ours[-1].strip() if ours else last_error_line(output)
 
 
-def _repro_one(repo: HostRepo, name: str, pull: bool) -> CompletedProcess[str]:
-    """One ``dvc repro -s`` process; stdout and stderr go to the stage's log file."""
-    return run_tool(
-        [*dvc_argv(), *repro_argv(repo.target(name), pull=pull)],
-        cwd=repo.root,
-        check=False,
-        log_path=log_path_for(repo.root, name),
-        display=["dvc", *repro_argv(repo.target(name), pull=pull)],
-    )
+def _repro_one(repo: HostRepo, name: str, *, pull: bool) -> StageRun:
+    """One ``dvc repro -s`` process here; its output becomes the stage's log."""
+    argv = repro_argv(repo.target(name), pull=pull)
+    result = run_tool([*dvc_argv(), *argv], cwd=repo.root, check=False)
+    return StageRun(result.returncode, stage_log(argv, result.stdout, result.stderr))
+
+
+def stage_log(argv: Sequence[str], stdout: str | None, stderr: str | None) -> str:
+    """A stage log's text: the ``dvc`` command, then its output.
+
+    >>> stage_log(["repro", "x"], "Running stage 'x'\\n", "")
+    "$ dvc repro x\\nRunning stage 'x'\\n"
+    """
+    return f"$ {' '.join(['dvc', *argv])}\n{stdout or ''}{stderr or ''}"
 
 
 # ------------------------------------------------------------------------------------

@@ -72,6 +72,8 @@ class Progress:
         self.start = clock()
         self.running: dict[str, float] = {}
         self.state: dict[str, str] = {}
+        #: cells each cluster worker finished (ran or restored), by worker name
+        self.by_worker: dict[str, int] = {}
         self._lock = threading.Lock()
         self._last_line = self.start
         self._stop = threading.Event()
@@ -91,11 +93,20 @@ class Progress:
                 self._print(f"  host stage {stage}: running")
             self._status()
 
-    def finished(self, stage: str, event: str, *, host: bool = False) -> None:
-        """``event`` is ``ran``, ``restored``, ``unchanged`` or ``failed``."""
+    def finished(
+        self, stage: str, event: str, *, host: bool = False, worker: str | None = None
+    ) -> None:
+        """``event`` is ``ran``, ``restored``, ``unchanged`` or ``failed``; ``worker``: the
+        cluster worker it ran on (its line then says so, with that worker's count)."""
         with self._lock:
             if host:
                 self.host_stages.add(stage)
+            where = ""
+            if worker is not None and event != "failed":
+                self.by_worker[worker] = self.by_worker.get(worker, 0) + 1
+                where = f" on {worker} ({self.by_worker[worker]} there)"
+            elif worker is not None:
+                where = f" on {worker}"
             began = self.running.pop(stage, None)
             previous = self.state.get(stage)
             if previous is None or _PRECEDENCE[event] > _PRECEDENCE[previous]:
@@ -108,7 +119,7 @@ class Progress:
                 self._print(f"  host stage {stage}: {event}{took}")
             else:
                 done = f"[{self._done():>{len(str(self.total))}}/{self.total}]"
-                self._print(f"  {done} {event:<8} {stage}{took}  ({self._counters()})")
+                self._print(f"  {done} {event:<8} {stage}{took}{where}  ({self._counters()})")
             self._status()
 
     def counts(self) -> dict[str, list[str]]:
@@ -175,6 +186,8 @@ class Progress:
         if not self.live:
             return
         line = f"  {self._done()}/{self.total} done; {self._counters()}"
+        if self.by_worker:
+            line += " | by worker: " + ", ".join(f"{w} {n}" for w, n in self.by_worker.items())
         if self.running:
             line += f" | {self._running_text()}"
         self.stream.write("\r\033[K" + line[:200])
