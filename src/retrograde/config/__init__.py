@@ -26,7 +26,7 @@ from typing import Any
 
 from ..errors import ConfigError, HostRepoError
 from ._checks import MIN_BOOT, check_source_values, check_stats, check_study
-from ._grid import expand_sweeps, fit_cells
+from ._grid import HOLDS, check_sweep_budgets, expand_sweeps, fit_cells
 from ._hydra import compose_raw, first_line
 from ._layout import (
     CONF_DIR,
@@ -108,6 +108,8 @@ __all__ = [
     "compose",
     "compose_raw",
     "covered",
+    "HOLDS",
+    "check_sweep_budgets",
     "expand_sweeps",
     "fit_cells",
     "fit_stage_name",
@@ -167,6 +169,7 @@ def compose(
     check_study(config.study)
     check_stats(config.stats)
     resolve_plugins(config.study, root)
+    check_sweep_budgets(config.study)
     config.fits = fit_cells(config.study)
     return config
 

@@ -125,6 +125,9 @@ class SweepConfig:
     model: str = ""  # the base model (a key of study.models)
     parameter: str = ""  # a key of that model's params
     values: list[Any] = field(default_factory=list)
+    #: what every value trains with equally: ``steps`` (optimizer steps, the default of a
+    #: context sweep), ``tokens`` (the model's token budget), or null (nothing is held)
+    hold: str | None = None
     #: the models the sweep expanded into, name -> value
     models: dict[str, Any] | None = _composed()
 

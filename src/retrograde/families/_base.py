@@ -41,6 +41,11 @@ class Family(ABC):
     #: parameters) changes what ``fit`` or ``logprobs`` return. The composed params record
     #: it for every model, so a raise reruns exactly that family's cells.
     numerics_version: ClassVar[int] = 1
+    #: the parameter a context-length sweep varies (None: the family names none)
+    context_parameter: ClassVar[str | None] = None
+    #: what a sweep can hold equal across its values (``steps``, ``tokens``) -> the
+    #: parameter of this family that fixes it; empty when it has no such budget
+    budget_parameters: ClassVar[dict[str, str]] = {}
 
     def __init__(self, **params: Any) -> None:
         self._params = dict(params)
