@@ -258,8 +258,9 @@ def test_parity_weights_refuse_a_list_that_is_not_a_permutation_or_a_cap_below_1
 
 # ------------------------------------------------------------ the shipped source config
 def _shipped_config() -> dict:
-    import yaml
     from importlib import resources
+
+    import yaml
 
     text = (resources.files("retrograde") / "conf/source/linear_gf2.yaml").read_text()
     return yaml.safe_load(text)
