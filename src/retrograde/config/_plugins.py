@@ -229,6 +229,12 @@ def _resolve_source(name: str, entry: SourceConfig, root: Path) -> None:
     if entry.tokenizer is not None:
         _resolve_tokenizer(f"{where}.tokenizer", entry.tokenizer)
     entry.deps = _source_deps(where, entry, root)
+    if entry.split.test_ids is not None:
+        # The file of test ids decides the split: a change to it reruns the units stage.
+        listed = _inside_root(f"{where}.split.test_ids", Path(entry.split.test_ids), root)
+        entry.split.test_ids = listed
+        if not covered(listed, entry.deps):
+            entry.deps.append(listed)
     entry.params = resolved_params(factory, entry.params)
     entry.calibration = None  # unused by file sources
 

@@ -28,7 +28,16 @@ from ._files import (
     write_npz,
 )
 from ._sequences import FORMAT, INT32_LIMIT, MAX_VOCAB_SIZE, Ragged, SequenceSet, index_dtype
-from ._splits import DEFAULT_FRACTIONS, DEFAULT_SALT, SPLITS, assign_splits, check_fractions
+from ._splits import (
+    DEFAULT_FRACTIONS,
+    DEFAULT_SALT,
+    SPLITS,
+    assign_splits,
+    check_fractions,
+    read_unit_ids,
+    split_with_given,
+    subsample,
+)
 from ._units import (
     DEFAULT_UNIT_MODE,
     REMAINDERS,
@@ -62,6 +71,9 @@ __all__ = [
     "index_dtype",
     "open_for_writing",
     "prepare_units",
+    "read_unit_ids",
+    "split_with_given",
+    "subsample",
     "tokenizers",
     "working_directory",
     "write_npz",
