@@ -90,7 +90,7 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument(
         "--vocab",
         action="store_true",
-        help="host mode: list every vocabulary entry (the text report shows the first 40)",
+        help="list every vocabulary entry (the text report shows the first 40)",
     )
 
 
@@ -127,5 +127,6 @@ def run(args: argparse.Namespace) -> int:
         order_specs=args.order,
         errors=args.errors,
     )
-    print(format_file_check(summary, as_json=args.json))
+    limit = None if args.vocab else VOCABULARY_SHOWN
+    print(format_file_check(summary, as_json=args.json, vocabulary_limit=limit))
     return 0 if all(v == "ok" for v in summary["orders"].values()) else 1

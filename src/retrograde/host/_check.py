@@ -43,6 +43,7 @@ __all__ = [
     "cell_status",
     "check_host",
     "format_host_check",
+    "format_vocabulary",
     "round_trip_orders",
     "vocabulary_listing",
 ]
@@ -63,7 +64,8 @@ def vocabulary_listing(tokenizer: Any, vocab_size: int) -> dict[str, Any]:
     }
 
 
-def _format_vocabulary(source: str, vocabulary: dict[str, Any], limit: int | None) -> list[str]:
+def format_vocabulary(source: str, vocabulary: dict[str, Any], limit: int | None) -> list[str]:
+    """Lines listing ``id token`` pairs of a :func:`vocabulary_listing` (``limit``: at most)."""
     size, tokens = vocabulary["size"], vocabulary["tokens"]
     if tokens is None:
         return [f"vocabulary of {source!r}: ids 0..{size - 1} (token ids, no text tokenizer)"]
@@ -233,7 +235,7 @@ def format_host_check(
             f"{info['units']} units ({info['tokens']} tokens): ok"
         )
         if "vocabulary" in info:
-            lines += _format_vocabulary(source, info["vocabulary"], vocabulary_limit)
+            lines += format_vocabulary(source, info["vocabulary"], vocabulary_limit)
     cells = report["cells"]
     for source, stages in cells.get("stale_inputs", {}).items():
         lines.append(

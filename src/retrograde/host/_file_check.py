@@ -22,6 +22,7 @@ from ..data import Document, PreparedUnits, check_fractions, check_units, prepar
 from ..errors import BijectionError, ConfigError, DataError, HostRepoError
 from ..sources import find_lone_carriage_return
 from ..validation import check_int
+from ._check import VOCABULARY_SHOWN, format_vocabulary, vocabulary_listing
 from ._corpus_paths import missing_file_hint
 from ._repo import find_host
 
@@ -181,12 +182,24 @@ def check_file(
     summary = prepared.summary()
     summary["file"] = str(path)
     summary["orders"] = _verdicts(prepared, requested)
+    summary["vocabulary"] = vocabulary_listing(prepared.tokenizer, prepared.vocab_size)
     return summary
 
 
-def format_file_check(summary: dict[str, Any], *, as_json: bool = False) -> str:
-    """The summary as a few aligned lines, or as JSON."""
-    return json.dumps(summary, indent=2, sort_keys=True) if as_json else _format(summary)
+def format_file_check(
+    summary: dict[str, Any],
+    *,
+    as_json: bool = False,
+    vocabulary_limit: int | None = VOCABULARY_SHOWN,
+) -> str:
+    """The summary as a few aligned lines (the vocabulary's first ``vocabulary_limit``
+    entries; None: all), or as JSON (all of it)."""
+    if as_json:
+        return json.dumps(summary, indent=2, sort_keys=True)
+    lines = [_format(summary)]
+    if "vocabulary" in summary:
+        lines += format_vocabulary(summary["file"], summary["vocabulary"], vocabulary_limit)
+    return "\n".join(lines)
 
 
 def _format(summary: dict[str, Any]) -> str:
