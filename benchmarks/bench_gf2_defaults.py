@@ -8,7 +8,7 @@ split, identical units in one split), fits ``ngram`` and ``mlp`` in both orders 
 seeds, and prints bits per token, the floor, and the gap with its 95% interval
 (:func:`retrograde.stats.summarize_model`, the table's own computation).
 
-Run: ``python benchmarks/bench_gf2_defaults.py [--quick]``; results in
+Run: ``python benchmarks/bench_gf2_defaults.py [--quick] [--only NAME ...]``; results in
 ``benchmarks/results/gf2_defaults.json``.
 """
 
@@ -126,19 +126,20 @@ def measure(name: str, params: dict, n_units: int, seeds: list[int]) -> dict:
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__)
-    parser.add_argument("--quick", action="store_true", help="one seed")
+    _common.add_common_arguments(parser, "gf2_defaults")
     parser.add_argument("--only", nargs="*", default=None, help="candidate names")
     args = parser.parse_args()
-    seeds = [0] if args.quick else [0, 1, 2]
+    if args.quick:  # the smoke test: one small candidate, one seed
+        candidates = {"quick": ({**CANDIDATES["new_default"][0], "n_bits": 4}, 200)}
+        seeds = [0]
+    else:
+        candidates = {k: v for k, v in CANDIDATES.items() if args.only is None or k in args.only}
+        seeds = [0, 1, 2]
     results = {
         name: measure(name, params, n_units, seeds)
-        for name, (params, n_units) in CANDIDATES.items()
-        if args.only is None or name in args.only
+        for name, (params, n_units) in candidates.items()
     }
-    _common.write_results(
-        _common.RESULTS_DIR / "gf2_defaults.json",
-        {"machine": _common.machine(), "results": results},
-    )
+    _common.write_results(args.out, {"machine": _common.machine(), "results": results})
 
 
 if __name__ == "__main__":

@@ -474,3 +474,10 @@ def test_a_source_no_model_fits_is_refused(host):
         host, ["source=[corpus,markov]", "+study.models.ngram.sources=[corpus]"]
     )
     assert "study.sources.markov is fitted by no model" in message
+
+
+def test_a_text_separator_order_with_a_token_id_source_is_refused_at_compose(host):
+    words = "+study.orders.words={name: segment_reverse, params: {separators: ' '}}"
+    assert compose(host, [words]).study.orders["words"].params == {"separators": " "}
+    message = _one_line_error(host, [words, "source=[corpus,markov]"])
+    assert message.startswith("study.orders.words on source 'markov': its separators are text")
