@@ -239,8 +239,10 @@ def _cut(
     mode: str,
     window: int,
     remainder: str,
+    with_ids: bool = False,
 ) -> _Cut:
-    """Natural-order units (see :class:`_Cut`).
+    """Natural-order units (see :class:`_Cut`); unit ids only ``with_ids`` (they cost a
+    string per unit).
 
     A unit's content is its piece sequence (text units: a str for ``chars``, bytes for
     ``bytes``, a list of pieces otherwise) or an int64 array (token units).
@@ -266,13 +268,16 @@ def _cut(
             bounds = _window_bounds(len(sequence), window, remainder)
             dropped += len(sequence) - (bounds[-1][1] if bounds else 0)
             pieces = [sequence[a:b] for a, b in bounds]
-        ids = document.line_ids(len(pieces)) if mode == "line" else [document.unit_id] * len(pieces)
         kept = [k for k, unit in enumerate(pieces) if len(unit)]
         contents.extend(pieces[k] for k in kept)
         doc_ids.extend([document.doc_id] * len(kept))
         split = -1 if document.split is None else SPLITS.index(document.split)
         given.extend([split] * len(kept))
-        unit_ids.extend(ids[k] for k in kept)
+        if with_ids and mode == "line":
+            ids = document.line_ids(len(pieces))
+            unit_ids.extend(ids[k] for k in kept)
+        elif with_ids:
+            unit_ids.extend([document.unit_id] * len(kept))
     return _Cut(contents, doc_ids, given, unit_ids, dropped, first_where)
 
 
@@ -299,7 +304,7 @@ def _keep(cut: _Cut, kept: np.ndarray | None) -> _Cut:
         [cut.contents[i] for i in pick],
         [cut.doc_ids[i] for i in pick],
         [cut.given[i] for i in pick],
-        [cut.unit_ids[i] for i in pick],
+        [cut.unit_ids[i] for i in pick] if cut.unit_ids else [],
         cut.dropped,
         cut.where,
     )
@@ -377,7 +382,7 @@ def prepare_units(
     """
     mode, window, remainder = check_units(mode, window, remainder)
     check_fractions(fractions)
-    cut = _cut(documents, tokenizer, mode, window or 0, remainder)
+    cut = _cut(documents, tokenizer, mode, window or 0, remainder, with_ids=bool(test_ids))
     if not cut.contents:
         raise DataError(
             f"{cut.where or 'the source'}: no units (every "
