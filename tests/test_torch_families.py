@@ -570,7 +570,8 @@ def test_the_progress_bar_counts_tokens_and_shows_only_when_asked_on_a_terminal(
 
 # ------------------------------------------------------------- context sweeps, equal steps
 def _context_sweep_budgets(**budget: int) -> dict[int, dict]:
-    """budget.json of a transformer fitted at contexts 4 and 16 with the given budget."""
+    """budget.json of a transformer fitted at contexts 4 and 16 with the given budget (and
+    its learning curve's last record under ``curve``)."""
     from retrograde.config import ModelConfig
     from retrograde.stages.fit import cell_budget, fit_cell
 
@@ -585,6 +586,7 @@ def _context_sweep_budgets(**budget: int) -> dict[int, dict]:
         entry = ModelConfig(family="transformer", params={**params, "context": context, **budget})
         model, _, curve = fit_cell(entry, splits, seed=0)
         budgets[context] = cell_budget(model, splits["train"], curve, cpu_s=0.0, wall_s=0.0)
+        budgets[context]["curve"] = curve[-1]
     return budgets
 
 
@@ -592,6 +594,7 @@ def _context_sweep_budgets(**budget: int) -> dict[int, dict]:
 def test_a_step_budget_gives_every_context_the_same_optimizer_steps_in_budget_json():
     budgets = _context_sweep_budgets(step_budget=7)
     assert budgets[4]["steps"] == budgets[16]["steps"] == 7
+    assert budgets[4]["curve"]["steps"] == budgets[16]["curve"]["steps"] == 7  # the curve too
     # More positions per window: the longer context saw more tokens in the same steps.
     assert budgets[16]["train_tokens"] > budgets[4]["train_tokens"]
 

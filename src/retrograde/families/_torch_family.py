@@ -191,6 +191,7 @@ class TorchFamily(Family):
                 "epoch": epoch,
                 "train_nats_per_position": train_nats / max(train_positions, 1),
                 "tokens_seen": run.tokens_seen,
+                "steps": run.step,
                 "lr": run.optimizer.param_groups[0]["lr"],
             }
             if valid is not None:
