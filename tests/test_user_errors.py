@@ -127,3 +127,23 @@ def test_check_with_a_missing_ids_file_is_one_line(host, capsys):
         capsys, host, "check", "study.sources.corpus.split.test_ids=data/nope.txt"
     )
     assert "data/nope.txt: file of test unit ids not found" in line
+
+
+def test_check_says_which_units_a_fixed_test_split_and_a_cap_keep(host, capsys):
+    lines = (host / "data" / "corpus.txt").read_text().splitlines()
+    numbers = [n for n, line in enumerate(lines, 1) if line.strip()][:2]
+    (host / "data" / "test_ids.txt").write_text("".join(f"data/corpus.txt:{n}\n" for n in numbers))
+    status = main(
+        [
+            "check",
+            "--dir",
+            str(host),
+            "study.sources.corpus.split.test_ids=data/test_ids.txt",
+            "study.sources.corpus.subsample.max_units=20",
+            "study.sources.corpus.subsample.seed=0",
+        ]
+    )
+    out, err = capsys.readouterr()
+    assert status == 0, err
+    assert "test split: the " in out and "data/test_ids.txt lists" in out
+    assert "subsample: 20 of " in out

@@ -114,6 +114,10 @@ def round_trip_orders(root: Path, config: RetrogradeConfig) -> dict[str, dict[st
             "tokens": int(sum(len(splits[s].tokens) for s in SPLITS)),
             "orders": list(built),
             "vocabulary": vocabulary_listing(made.tokenizer, int(made.info["vocab_size"])),
+            "test_units": len(splits["test"]),
+            "test_ids": spec.split.test_ids,
+            "max_units": spec.subsample.max_units,
+            "units_before_cap": made.info.get("summary", {}).get("units_before_cap"),
         }
     return checked
 
@@ -234,6 +238,14 @@ def format_host_check(
             f"round trip: source {source!r}: {len(info['orders'])} order(s) on "
             f"{info['units']} units ({info['tokens']} tokens): ok"
         )
+        if info.get("test_ids"):
+            lines.append(
+                f"  test split: the {info['test_units']} units {info['test_ids']} lists "
+                "(the others split train/valid by the hash)"
+            )
+        cap, before = info.get("max_units"), info.get("units_before_cap")
+        if cap is not None and before is not None and before > cap:
+            lines.append(f"  subsample: {cap} of {before} units kept (subsample.max_units)")
         if "vocabulary" in info:
             lines += format_vocabulary(source, info["vocabulary"], vocabulary_limit)
     cells = report["cells"]
