@@ -156,3 +156,11 @@ def test_torch_calibration_benchmark_runs_quick_and_records_both_orders(tmp_path
     summary = results["summary"]
     for order in ("forward", "reverse"):
         assert summary[f"{order}_excess_min"] <= summary[f"{order}_excess_max"]
+
+
+def test_gf2_defaults_benchmark_reports_floor_and_gap_for_both_families(tmp_path):
+    result = _run_quick("bench_gf2_defaults.py", tmp_path / "gf2.json")["results"]["quick"]
+    for family in ("ngram", "mlp"):
+        leaf = result["models"][family]["reverse"]
+        assert leaf["floor_bits_per_token"] == 0.5  # n ln 2 nats over 2 n tokens = 1/2 bit
+        assert leaf["gap_pct_low"] <= leaf["gap_pct"] <= leaf["gap_pct_high"]

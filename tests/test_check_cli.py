@@ -157,3 +157,16 @@ def test_bad_order_parameter_is_refused_before_reading_the_file(capsys, tmp_path
 def test_separator_missing_from_the_vocabulary_is_refused(capsys, corpus):
     err = one_line_error(capsys, corpus, "--order", 'segment_reverse:separators=["#"]')
     assert "separator '#' is not in the chars vocabulary" in err
+
+
+def test_check_file_lists_the_vocabulary_escaped_first_40_or_all(capsys, corpus):
+    status, out, _ = run_check(capsys, corpus, "--tokenizer", "words")
+    assert status == 0 and f"vocabulary of '{corpus}' (words, " in out
+    assert " 0 <unknown>" in out and "' '" in out  # a space shows as a quoted literal
+    status, out, _ = run_check(capsys, corpus, "--tokenizer", "bytes")
+    assert "first 40; `check --vocab` or `--json` lists all" in out
+    status, out, _ = run_check(capsys, corpus, "--tokenizer", "bytes", "--vocab")
+    assert "first 40" not in out and " 256 '\\xff'" in out  # byte 255 escaped
+    status, out, _ = run_check(capsys, corpus, "--json")
+    vocabulary = json.loads(out)["vocabulary"]
+    assert vocabulary["tokenizer"] == "chars" and len(vocabulary["tokens"]) == vocabulary["size"]

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import importlib.util
 import itertools
 import os
 import shutil
@@ -164,6 +165,59 @@ def test_sweep_expands_into_named_models_with_only_the_swept_value_changed(host)
         "ngram_order2": 2,
         "ngram_order4": 4,
     }
+
+
+def _torch_sweep(host, *extra: str):
+    model = (
+        "+study.models.tf={family: transformer, params: {width: 8, heads: 2, layers: 1, "
+        "context: 4, progress: false}}"
+    )
+    sweep = "+study.sweeps.ctx={model: tf, parameter: context, values: [4, 16]}"
+    return compose(host, [model, sweep, *extra])
+
+
+@pytest.mark.skipif(importlib.util.find_spec("torch") is None, reason="torch not installed")
+def test_a_context_sweep_holds_optimizer_steps_and_needs_the_step_budget(host):
+    with pytest.raises(ConfigError) as info:
+        _torch_sweep(host)
+    message = str(info.value)
+    assert "\n" not in message
+    assert message.startswith("study.sweeps.ctx holds steps equal across its context values")
+    assert "study.models.tf.params.step_budget is null" in message
+    config = _torch_sweep(host, "+study.models.tf.params.step_budget=50")
+    assert config.study.sweeps["ctx"].hold == "steps"  # said in params.yaml
+    from retrograde.stages import table as table_stage
+
+    sweep = table_stage._sweeps(config.study)["ctx"]
+    assert sweep["held"] == "optimizer steps (step_budget=50)"  # the figure title says it
+    assert any(
+        "every value trained with the same optimizer steps" in line
+        for line in table_stage._sweep_notes(config.study)
+    )
+    assert {
+        config.study.models[m].params["step_budget"] for m in ("tf_context4", "tf_context16")
+    } == {50}
+    # hold: tokens keeps the token budget instead (and must have one)
+    with pytest.raises(ConfigError, match="params.token_budget is null"):
+        _torch_sweep(host, "+study.sweeps.ctx.hold=tokens")
+    config = _torch_sweep(
+        host, "+study.sweeps.ctx.hold=tokens", "+study.models.tf.params.token_budget=900"
+    )
+    assert config.study.sweeps["ctx"].hold == "tokens"
+
+
+@pytest.mark.parametrize(
+    ("hold", "expected"),
+    [
+        ("steps", "family 'ngram' of model 'ngram' has no steps budget; allowed: null"),
+        ("epochs", "hold='epochs' is invalid; allowed: steps, tokens or null"),
+    ],
+)
+def test_a_hold_the_family_cannot_keep_is_one_line(host, hold, expected):
+    sweep = f"+study.sweeps.ctx={{model: ngram, parameter: order, values: [2, 3], hold: {hold}}}"
+    with pytest.raises(ConfigError) as info:
+        compose(host, [sweep])
+    assert expected in str(info.value) and "\n" not in str(info.value)
 
 
 def test_sweep_value_names_stay_safe_for_dvc_stage_names():
@@ -497,3 +551,10 @@ def test_a_target_model_keeps_train_sample_beside_its_params():
         "train_sample": "none",
         "code": None,
     }
+
+
+def test_a_text_separator_order_with_a_token_id_source_is_refused_at_compose(host):
+    words = "+study.orders.words={name: segment_reverse, params: {separators: ' '}}"
+    assert compose(host, [words]).study.orders["words"].params == {"separators": " "}
+    message = _one_line_error(host, [words, "source=[corpus,markov]"])
+    assert message.startswith("study.orders.words on source 'markov': its separators are text")

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import ast
 import contextlib
 import io
 import json
@@ -172,3 +173,60 @@ def test_a_changed_host_stage_upstream_of_a_source_puts_its_cells_to_run(tmp_pat
     assert cells["stale_inputs"] == {"corpus": ["prepare"]}
     text = format_host_check(json.loads(out))
     assert "stage(s) prepare must remake first" in text
+
+
+def test_check_prints_each_source_vocabulary_and_round_trips_a_text_separator(tmp_path, capsys):
+    host = new_pipeline_host(tmp_path / "host")
+    words = "+study.orders.words={name: segment_reverse, params: {separators: ' '}}"
+    status, out, err = _check(capsys, "--dir", str(host), "--json", SMOKE, words)
+    assert (status, err) == (0, "")
+    corpus = json.loads(out)["round_trip"]["corpus"]
+    assert corpus["orders"] == ["forward", "reverse", "words"]
+    vocabulary = corpus["vocabulary"]
+    tokens = vocabulary["tokens"]
+    assert vocabulary["tokenizer"] == "chars" and len(tokens) == vocabulary["size"]
+    assert tokens[0] == "<unknown>" and "' '" in tokens
+    # Each entry is an escaped Python literal (reference: ast.literal_eval reads it back);
+    # chars ids follow code-point order (docs/sources.md, tokenizers).
+    characters = [ast.literal_eval(t) for t in tokens[1:]]
+    assert characters == sorted(characters) and all(len(c) == 1 for c in characters)
+    status, out, _ = _check(capsys, "--dir", str(host), SMOKE)
+    assert status == 0 and "vocabulary of 'corpus' (chars, " in out and " 0 <unknown>" in out
+    status, full, _ = _check(capsys, "--dir", str(host), SMOKE, "--vocab")
+    assert status == 0 and "first " not in full and len(full) >= len(out)
+
+
+def test_check_refuses_a_text_separator_outside_a_source_vocabulary_in_one_line(tmp_path, capsys):
+    host = new_pipeline_host(tmp_path / "host")
+    words = "+study.orders.words={name: segment_reverse, params: {separators: '☃'}}"
+    status, _, err = _check(capsys, "--dir", str(host), SMOKE, words)
+    assert status == 2 and len(err.strip().splitlines()) == 1
+    assert "study.orders.words on source 'corpus': separator '☃' is not in the chars" in err
+
+
+def test_the_text_report_truncates_a_large_vocabulary_and_names_the_flag():
+    tokens = ["<unknown>", *[repr(f"w{i}") for i in range(1, 500)]]
+    report = {
+        "grid": {
+            "sources": ["s"],
+            "models": ["m"],
+            "orders": ["forward"],
+            "seeds": [0],
+            "cells": 1,
+        },
+        "round_trip": {
+            "s": {
+                "units": 3,
+                "tokens": 9,
+                "orders": ["forward"],
+                "vocabulary": {"size": 500, "tokenizer": "words", "tokens": tokens},
+            }
+        },
+        "cells": {"to_run": [], "up_to_date": []},
+    }
+    text = format_host_check(report)
+    assert "first 40; `check --vocab` or `--json` lists all" in text
+    assert " 39 'w39'" in text and "'w40'" not in text
+    assert "'w499'" in format_host_check(report, vocabulary_limit=None)
+    report["round_trip"]["s"]["vocabulary"] = {"size": 2, "tokenizer": None, "tokens": None}
+    assert "vocabulary of 's': ids 0..1 (token ids, no text tokenizer)" in format_host_check(report)

@@ -8,7 +8,8 @@ from hypothesis.extra.numpy import arrays
 from sympy.combinatorics import Permutation as SympyPermutation
 
 from retrograde import SequenceSet, orders
-from retrograde.errors import BijectionError, ConfigError
+from retrograde.data import tokenizers
+from retrograde.errors import BijectionError, ConfigError, DataError
 
 
 def build(name):
@@ -213,7 +214,8 @@ def test_segment_reverse_with_several_separator_ids_keeps_each_separator_between
         ("permutation", {"seed": -1}, "seed"),
         ("segment_reverse", {"separators": []}, "separators"),
         ("within_segment_reverse", {"separators": [-3]}, "separators"),
-        ("within_segment_reverse", {"separators": " "}, "separators"),
+        ("within_segment_reverse", {"separators": ""}, "separators"),
+        ("segment_reverse", {"separators": [b" "]}, "separators"),
     ],
 )
 def test_bad_parameters_name_the_order_key_value_and_what_is_allowed(name, params, key):
@@ -319,3 +321,56 @@ def test_set_level_orders_are_fast_on_a_million_tokens():
     )
     for name in ALL_ORDERS:
         orders.verify_bijection(build(name), units, order_name=name)
+
+
+# ------------------------------------------------------------- separators given as text
+def test_a_text_separator_is_looked_up_in_the_fitted_vocabulary_and_reverses_words():
+    text = "the cat sat on the mat"
+    tokenizer = tokenizers.make("chars").fit([list(text)])
+    order = orders.make("segment_reverse", separators=" ")
+    assert order.needs_tokenizer and order.get_params() == {"separators": [" "]}
+    bound = order.with_tokenizer(tokenizer, where="study.orders.words on source 'corpus'")
+    assert bound.separators == (tokenizer.token_id(" "),)
+    out = tokenizer.decode(bound.apply(tokenizer.encode(text)))
+    # Reference: Python's str.split / str.join (common practice, no source).
+    assert out == " ".join(reversed(text.split(" ")))
+    within = orders.make("within_segment_reverse", separators=[" "]).with_tokenizer(tokenizer)
+    assert tokenizer.decode(within.apply(tokenizer.encode(text))) == " ".join(
+        word[::-1] for word in text.split(" ")
+    )
+
+
+def test_text_and_id_separators_mix_and_a_words_tokenizer_finds_whitespace_pieces():
+    tokenizer = tokenizers.make("words").fit([tokenizers.make("words").pieces("a, b c")])
+    order = orders.make("segment_reverse", separators=[",", " "]).with_tokenizer(tokenizer)
+    assert set(order.separators) == {tokenizer.token_id(","), tokenizer.token_id(" ")}
+    assert orders.make("segment_reverse", separators=[7, "x"]).separators == (7,)
+
+
+@pytest.mark.parametrize(
+    ("separators", "tokenizer_name", "expected"),
+    [
+        ("#", "chars", "separator '#' is not in the chars vocabulary fitted on the train split"),
+        ("ab", "chars", "separator 'ab' is 2 tokens under the chars tokenizer, not one"),
+        ("é", "bytes", "separator 'é' is 2 tokens under the bytes tokenizer, not one"),
+        (" ", None, "separators [' '] are text, but the source has no text tokenizer"),
+    ],
+)
+def test_a_text_separator_the_vocabulary_cannot_give_is_one_line_naming_order_and_source(
+    separators, tokenizer_name, expected
+):
+    tokenizer = None
+    if tokenizer_name is not None:
+        tokenizer = tokenizers.make(tokenizer_name)
+        tokenizer.fit([tokenizer.pieces("a b")])
+    order = orders.make("segment_reverse", separators=separators)
+    with pytest.raises(DataError) as info:
+        order.with_tokenizer(tokenizer, where="study.orders.words on source 'corpus'")
+    message = str(info.value)
+    assert message.startswith("study.orders.words on source 'corpus': ") and expected in message
+    assert "\n" not in message
+
+
+def test_an_order_with_text_separators_refuses_to_run_before_the_lookup():
+    with pytest.raises(ConfigError, match="with_tokenizer"):
+        orders.make("segment_reverse", separators=" ").apply(np.array([1, 2, 3]))

@@ -209,3 +209,11 @@ def test_figures_are_byte_identical_for_the_same_inputs(tmp_path, run):
     assert sorted(p.name for p in first.iterdir()) == sorted(p.name for p in second.iterdir())
     for path in first.iterdir():
         assert path.read_bytes() == (second / path.name).read_bytes(), path.name
+
+
+def test_sweep_figure_title_says_what_every_value_held_equal(run, tmp_path):
+    sweep = {**run["sweeps"]["context"], "held": "optimizer steps (step_budget=500)"}
+    figure = plots.sweep_figure("context", sweep, run["table"])
+    title = figure.axes[0].get_title()
+    assert title.endswith("equal for every value: optimizer steps (step_budget=500)")
+    figure.savefig(tmp_path / "sweep.png")

@@ -254,3 +254,55 @@ def test_parity_weights_refuse_a_list_that_is_not_a_permutation_or_a_cap_below_1
         source.parity_weights(np.array([0, 1, 2, 3, 4, 4]))
     with pytest.raises(ValueError, match="cap must be at least 1, got 0"):
         source.parity_weights(cap=0)
+
+
+# ------------------------------------------------------------ the shipped source config
+def _shipped_config() -> dict:
+    from importlib import resources
+
+    import yaml
+
+    text = (resources.files("retrograde") / "conf/source/linear_gf2.yaml").read_text()
+    return yaml.safe_load(text)
+
+
+def test_the_shipped_config_is_sparse_forwards_and_dense_backwards():
+    config = _shipped_config()
+    source = make(config["name"], **config["params"])
+    n = source.n_bits
+    assert source.matrix_.sum(axis=1).max() <= 2  # each y bit: parity of <= 2 x bits
+    # Reference: sympy's inv_mod gives A^-1 over GF(2); for a banded A with one
+    # superdiagonal it is a permuted full upper triangle, n (n + 1) / 2 ones.
+    inverse = np.array(sympy.Matrix(source.matrix_.astype(int).tolist()).inv_mod(2), dtype=np.int64)
+    assert int(inverse.sum()) == n * (n + 1) // 2 and int(inverse.sum(axis=1).max()) == n
+
+
+@pytest.mark.slow
+def test_the_shipped_config_shows_an_mlp_reverse_gap_and_a_forward_fit_at_the_floor():
+    # What docs/sources.md reports (benchmarks/bench_gf2_defaults.py), one seed.
+    from retrograde import families, orders
+    from retrograde.sources import source_units
+    from retrograde.stats import unit_nll
+
+    config = _shipped_config()
+    source = make(config["name"], **config["params"])
+    made = source_units(
+        source, fractions=(0.8, 0.1, 0.1), salt="retrograde", **config["calibration"]
+    )
+    params = {
+        "window": 2 * source.n_bits,
+        "hidden": 64,
+        "epochs": 20,
+        "lr": 0.01,
+        "batch_size": 128,
+        "progress": False,
+    }
+    nats = {}
+    for name in ("forward", "reverse"):
+        order = orders.make(name)
+        split = {k: order.apply_set(v) for k, v in made.splits.items()}
+        fitted = families.make("mlp", **params).fit(split["train"], split["valid"], seed=0)
+        nats[name] = float(unit_nll(fitted.logprobs(split["test"])).sum())
+    floor = float(made.floors.sum())  # n ln 2 per unit, exact
+    assert nats["forward"] < 1.02 * floor
+    assert nats["reverse"] > 1.08 * nats["forward"]

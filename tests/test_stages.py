@@ -16,7 +16,7 @@ import yaml
 
 from retrograde import families, sources
 from retrograde.config import ModelConfig, RetrogradeConfig, compose, from_dict, load_params
-from retrograde.data import Ragged, SequenceSet
+from retrograde.data import Ragged, SequenceSet, tokenizers
 from retrograde.errors import FitError, HostRepoError
 from retrograde.families._base import Family
 from retrograde.host import UNITS_BEGIN, UNITS_END, render_dvc_yaml
@@ -191,6 +191,38 @@ def test_reorder_stage_refuses_an_order_that_is_not_a_bijection(pipeline, tmp_pa
     assert status == 2 and len(err.strip().splitlines()) == 1
     assert "order 'broken' is not a bijection" in err
     assert not (wdir / "data/corpus/orders/broken").exists()  # nothing half-written
+
+
+def _reorder_copy(pipeline: Path, wdir: Path, separators) -> int:
+    shutil.copytree(pipeline / "data/corpus/units", wdir / "data/corpus/units")
+    params = _params(pipeline)
+    params["study"]["orders"]["words"] = {
+        "name": "segment_reverse",
+        "params": {"separators": separators},
+    }
+    _write_params(wdir, params)
+    return reorder_stage.main(["--params", str(wdir), "--source", "corpus", "--order", "words"])
+
+
+def test_reorder_stage_looks_a_text_separator_up_in_the_source_vocabulary(pipeline, tmp_path):
+    wdir = tmp_path / "wdir"
+    assert _reorder_copy(pipeline, wdir, [" "]) == 0
+    tokenizer = tokenizers.load(wdir / "data/corpus/units/tokenizer.json")
+    natural = SequenceSet.load(wdir / "data/corpus/units/test")
+    reordered = SequenceSet.load(wdir / "data/corpus/orders/words/test")
+    for i in range(len(natural)):
+        line = tokenizer.decode(natural[i])
+        # Reference: Python's str.split / str.join (common practice, no source).
+        assert tokenizer.decode(reordered[i]) == " ".join(reversed(line.split(" ")))
+
+
+def test_reorder_stage_refuses_a_text_separator_outside_the_vocabulary(pipeline, tmp_path, capsys):
+    wdir = tmp_path / "wdir"
+    assert _reorder_copy(pipeline, wdir, ["#"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1
+    assert "study.orders.words on source 'corpus': separator '#' is not in the chars" in err
+    assert not (wdir / "data/corpus/orders/words").exists()
 
 
 # ----------------------------------------------------------------------------------- fit

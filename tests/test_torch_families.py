@@ -481,7 +481,7 @@ def test_context_and_capacity_sweeps_expand_into_valid_torch_models_that_fit():
     from retrograde.config import ModelConfig, StudyConfig, SweepConfig, expand_sweeps
     from retrograde.config._plugins import resolve_plugins
 
-    small = {"epochs": 1, "batch_size": 8, "progress": False}
+    small = {"epochs": 1, "batch_size": 8, "progress": False, "step_budget": 2}
     study = StudyConfig(
         models={
             "tf": ModelConfig(family="transformer", params={"width": 8, "heads": 2, **small}),
@@ -566,3 +566,51 @@ def test_the_progress_bar_counts_tokens_and_shows_only_when_asked_on_a_terminal(
     assert bar.kwargs["unit"] == "tok"  # tqdm then reports tok/s
     assert bar.kwargs["disable"] is disable  # None: tqdm hides itself off a terminal
     assert bar.counted == len(train.tokens) + len(train)
+
+
+# ------------------------------------------------------------- context sweeps, equal steps
+def _context_sweep_budgets(**budget: int) -> dict[int, dict]:
+    """budget.json of a transformer fitted at contexts 4 and 16 with the given budget (and
+    its learning curve's last record under ``curve``)."""
+    from retrograde.config import ModelConfig
+    from retrograde.stages.fit import cell_budget, fit_cell
+
+    splits = {
+        "train": _units(40, 4, 30, 0),
+        "valid": _units(6, 4, 30, 1),
+        "test": _units(6, 4, 30, 2),
+    }
+    budgets = {}
+    for context in (4, 16):
+        params = {"width": 8, "heads": 2, "layers": 1, "batch_size": 4, "progress": False}
+        entry = ModelConfig(family="transformer", params={**params, "context": context, **budget})
+        model, _, curve = fit_cell(entry, splits, seed=0)
+        budgets[context] = cell_budget(model, splits["train"], curve, cpu_s=0.0, wall_s=0.0)
+        budgets[context]["curve"] = curve[-1]
+    return budgets
+
+
+@needs_torch
+def test_a_step_budget_gives_every_context_the_same_optimizer_steps_in_budget_json():
+    budgets = _context_sweep_budgets(step_budget=7)
+    assert budgets[4]["steps"] == budgets[16]["steps"] == 7
+    assert budgets[4]["curve"]["steps"] == budgets[16]["curve"]["steps"] == 7  # the curve too
+    # More positions per window: the longer context saw more tokens in the same steps.
+    assert budgets[16]["train_tokens"] > budgets[4]["train_tokens"]
+
+
+@needs_torch
+def test_a_token_budget_gives_a_longer_context_fewer_steps_the_confound_steps_remove():
+    budgets = _context_sweep_budgets(token_budget=400)
+    assert budgets[4]["train_tokens"] == budgets[16]["train_tokens"] == 400
+    # Windows per step are fixed (batch_size), so positions per step grow with the context
+    # (arithmetic of the window scheme in docs/torch.md; common practice, no source).
+    assert budgets[4]["steps"] > budgets[16]["steps"]
+
+
+@needs_torch
+def test_step_budget_and_token_budget_together_are_refused():
+    with pytest.raises(
+        ConfigError, match="step_budget=3 is invalid; allowed: null when token_budget"
+    ):
+        _small("transformer", step_budget=3, token_budget=10)._validate_params()

@@ -112,3 +112,38 @@ def test_a_missing_file_nothing_declares_is_still_a_plain_path_error(host, capsy
     monkeypatch.chdir(host)
     assert main(["check", "data/nothing.txt"]) == 2
     assert "no such file; check the path" in capsys.readouterr().err
+
+
+def test_check_with_a_test_id_no_unit_has_is_one_line_naming_file_and_line(host, capsys):
+    (host / "data" / "test_ids.txt").write_text("data/corpus.txt:1\ndata/corpus.txt:99999\n")
+    line = one_line_error(
+        capsys, host, "check", "study.sources.corpus.split.test_ids=data/test_ids.txt"
+    )
+    assert "data/test_ids.txt:2: unit id 'data/corpus.txt:99999' matches no document" in line
+
+
+def test_check_with_a_missing_ids_file_is_one_line(host, capsys):
+    line = one_line_error(
+        capsys, host, "check", "study.sources.corpus.split.test_ids=data/nope.txt"
+    )
+    assert "data/nope.txt: file of test unit ids not found" in line
+
+
+def test_check_says_which_units_a_fixed_test_split_and_a_cap_keep(host, capsys):
+    lines = (host / "data" / "corpus.txt").read_text().splitlines()
+    numbers = [n for n, line in enumerate(lines, 1) if line.strip()][:2]
+    (host / "data" / "test_ids.txt").write_text("".join(f"data/corpus.txt:{n}\n" for n in numbers))
+    status = main(
+        [
+            "check",
+            "--dir",
+            str(host),
+            "study.sources.corpus.split.test_ids=data/test_ids.txt",
+            "study.sources.corpus.subsample.max_units=20",
+            "study.sources.corpus.subsample.seed=0",
+        ]
+    )
+    out, err = capsys.readouterr()
+    assert status == 0, err
+    assert "test split: the " in out and "data/test_ids.txt lists" in out
+    assert "subsample: 20 of " in out

@@ -16,7 +16,13 @@ from pathlib import Path
 
 from ..data import DEFAULT_FRACTIONS, DEFAULT_SALT, DEFAULT_UNIT_MODE, UNIT_MODES
 from ..errors import BijectionError, ConfigError
-from ..host import check_file, check_host, format_file_check, format_host_check
+from ..host import (
+    VOCABULARY_SHOWN,
+    check_file,
+    check_host,
+    format_file_check,
+    format_host_check,
+)
 
 __all__ = ["configure", "run"]
 
@@ -81,6 +87,11 @@ def configure(parser: argparse.ArgumentParser) -> None:
         help="invalid UTF-8: refuse (strict) or read as U+FFFD (replace)",
     )
     parser.add_argument("--json", action="store_true", help="print the summary as JSON")
+    parser.add_argument(
+        "--vocab",
+        action="store_true",
+        help="list every vocabulary entry (the text report shows the first 40)",
+    )
 
 
 def run(args: argparse.Namespace) -> int:
@@ -95,7 +106,11 @@ def run(args: argparse.Namespace) -> int:
             print(f"retrograde check: round trip failed: {exc}", file=sys.stderr)
             return 1
         print(
-            json.dumps(report, indent=2, sort_keys=True) if args.json else format_host_check(report)
+            json.dumps(report, indent=2, sort_keys=True)
+            if args.json
+            else format_host_check(
+                report, vocabulary_limit=None if args.vocab else VOCABULARY_SHOWN
+            )
         )
         return 0
     if args.overrides:
@@ -112,5 +127,6 @@ def run(args: argparse.Namespace) -> int:
         order_specs=args.order,
         errors=args.errors,
     )
-    print(format_file_check(summary, as_json=args.json))
+    limit = None if args.vocab else VOCABULARY_SHOWN
+    print(format_file_check(summary, as_json=args.json, vocabulary_limit=limit))
     return 0 if all(v == "ok" for v in summary["orders"].values()) else 1

@@ -26,7 +26,15 @@ from typing import Any
 
 from ..errors import ConfigError, HostRepoError
 from ._checks import MIN_BOOT, check_source_values, check_stats, check_study
-from ._grid import expand_sweeps, fit_cells, fitted_seed, grid_size, ignores_seed
+from ._grid import (
+    HOLDS,
+    check_sweep_budgets,
+    expand_sweeps,
+    fit_cells,
+    fitted_seed,
+    grid_size,
+    ignores_seed,
+)
 from ._hydra import compose_raw, first_line
 from ._layout import (
     CONF_DIR,
@@ -62,6 +70,7 @@ from ._schema import (
     SplitConfig,
     StatsConfig,
     StudyConfig,
+    SubsampleConfig,
     SweepConfig,
     TokenizerConfig,
     UnitsConfig,
@@ -92,6 +101,7 @@ __all__ = [
     "RetrogradeConfig",
     "SourceConfig",
     "SplitConfig",
+    "SubsampleConfig",
     "StatsConfig",
     "StudyConfig",
     "SweepConfig",
@@ -108,6 +118,8 @@ __all__ = [
     "compose",
     "compose_raw",
     "covered",
+    "HOLDS",
+    "check_sweep_budgets",
     "expand_sweeps",
     "fit_cells",
     "fit_stage_name",
@@ -170,6 +182,7 @@ def compose(
     check_study(config.study)
     check_stats(config.stats)
     resolve_plugins(config.study, root)
+    check_sweep_budgets(config.study)
     config.fits = fit_cells(config.study)
     return config
 

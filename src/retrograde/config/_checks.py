@@ -78,6 +78,20 @@ def check_source_values(name: str, source: SourceConfig, *, calibration: bool) -
     """``study.sources.NAME``'s split, and its unit cutting or its generation."""
     where = f"study.sources.{name}"
     check_fractions(source.split.fractions, f"{where}.split")
+    if source.subsample.max_units is not None:
+        check_int(f"{where}.subsample", "max_units", source.subsample.max_units, 3)
+    check_int(f"{where}.subsample", "seed", source.subsample.seed, 0)
+    test_ids = source.split.test_ids
+    if test_ids is not None and (not isinstance(test_ids, str) or not test_ids.strip()):
+        raise ConfigError(
+            f"{where}.split: parameter test_ids={test_ids!r} is invalid; allowed: null or a "
+            "path (relative to the repository root) of a file of unit ids"
+        )
+    if calibration and test_ids is not None:
+        raise ConfigError(
+            f"{where}.split.test_ids: a calibration source generates its units, so no file "
+            "can name them; remove test_ids (its units are split by their hash)"
+        )
     if calibration:
         assert source.calibration is not None
         check_int(f"{where}.calibration", "n_units", source.calibration.n_units, 3)

@@ -11,7 +11,18 @@ from ..validation import did_you_mean
 from ._layout import WDIR_TO_ROOT, units_dir
 from ._schema import NAME_PATTERN, FitCell, ModelConfig, StudyConfig
 
-__all__ = ["expand_sweeps", "fit_cells", "fitted_seed", "grid_size", "ignores_seed"]
+__all__ = [
+    "HOLDS",
+    "check_sweep_budgets",
+    "expand_sweeps",
+    "fit_cells",
+    "fitted_seed",
+    "grid_size",
+    "ignores_seed",
+]
+
+#: what a sweep may hold equal across its values
+HOLDS = ("steps", "tokens")
 
 
 def _value_label(value: Any) -> str:
@@ -135,3 +146,46 @@ def fit_cells(study: StudyConfig) -> dict[str, FitCell]:
                     key = f"{source}-{model}-{order}-{seed}"
                     fits[key] = FitCell(source, model, order, int(seed), code)
     return fits
+
+
+def check_sweep_budgets(study: StudyConfig) -> None:
+    """Make every sweep hold its compute equal, and record which (``sweep.hold``).
+
+    A longer context puts more positions in every optimizer step, so under a token budget
+    (or a fixed number of epochs) context 256 trains 16x fewer steps than context 16: the
+    sweep would confound context with optimization. A sweep of a family's context
+    parameter therefore holds ``steps`` by default (the base model must set its step
+    budget); ``hold: tokens`` keeps the token budget instead and says so. Runs after the
+    plug-ins are resolved (every model entry holds its full parameters).
+    """
+    from .. import families
+
+    for sweep_name, sweep in study.sweeps.items():
+        where = f"study.sweeps.{sweep_name}"
+        model = study.models[sweep.model]
+        family = families.registry.get(model.family)
+        budgets: dict[str, str] = dict(getattr(family, "budget_parameters", {}) or {})
+        is_context = sweep.parameter == getattr(family, "context_parameter", None)
+        if sweep.hold is None and is_context and budgets:
+            sweep.hold = "steps"
+        if sweep.hold is None:
+            continue
+        if sweep.hold not in HOLDS:
+            raise ConfigError(
+                f"{where}.hold={sweep.hold!r} is invalid; allowed: {', '.join(HOLDS)} or null"
+            )
+        if sweep.hold not in budgets:
+            raise ConfigError(
+                f"{where}.hold={sweep.hold!r}: family {model.family!r} of model "
+                f"{sweep.model!r} has no {sweep.hold} budget; allowed: null"
+                + (f" or {', '.join(budgets)}" if budgets else "")
+            )
+        parameter = budgets[sweep.hold]
+        if model.params.get(parameter) is None:
+            other = "tokens" if sweep.hold == "steps" else "steps"
+            raise ConfigError(
+                f"{where} holds {sweep.hold} equal across its {sweep.parameter} values, but "
+                f"study.models.{sweep.model}.params.{parameter} is null; set it (a "
+                f"longer context with equal {other} or epochs trains fewer steps), or set "
+                f"{where}.hold: {other} with {budgets.get(other, other)}"
+            )

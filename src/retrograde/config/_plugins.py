@@ -121,6 +121,28 @@ def resolve_plugins(study: StudyConfig, root: Path) -> None:
         _resolve_model(f"study.models.{name}", model, root)
     for name, source in study.sources.items():
         _resolve_source(name, source, root)
+    _check_text_parameters(study)
+
+
+def _check_text_parameters(study: StudyConfig) -> None:
+    """An order naming tokens by text needs a text tokenizer on every source it reorders.
+
+    Every order reorders every source; a source of token ids (no tokenizer: calibration
+    sources, ``tokens``) has no text to look up, so say so now rather than in its stage.
+    """
+    from .. import orders
+
+    for order_name, order in study.orders.items():
+        if not orders.make(order.name, **order.params).needs_tokenizer:
+            continue
+        for source_name, source in study.sources.items():
+            if source.tokenizer is None:
+                raise ConfigError(
+                    f"study.orders.{order_name} on source {source_name!r}: its separators "
+                    f"are text ({order.params.get('separators')!r}), but the source has no "
+                    "text tokenizer (its units are token ids); give the separators as ids, or "
+                    "study the order on text sources only"
+                )
 
 
 def _resolve_order(where: str, entry: OrderConfig) -> None:
@@ -232,6 +254,12 @@ def _resolve_source(name: str, entry: SourceConfig, root: Path) -> None:
     if entry.tokenizer is not None:
         _resolve_tokenizer(f"{where}.tokenizer", entry.tokenizer)
     entry.deps = _source_deps(where, entry, root)
+    if entry.split.test_ids is not None:
+        # The file of test ids decides the split: a change to it reruns the units stage.
+        listed = _inside_root(f"{where}.split.test_ids", Path(entry.split.test_ids), root)
+        entry.split.test_ids = listed
+        if not covered(listed, entry.deps):
+            entry.deps.append(listed)
     entry.params = resolved_params(factory, entry.params)
     entry.calibration = None  # unused by file sources
 

@@ -32,6 +32,7 @@ __all__ = [
     "SplitConfig",
     "StatsConfig",
     "StudyConfig",
+    "SubsampleConfig",
     "SweepConfig",
     "TokenizerConfig",
     "UnitsConfig",
@@ -73,6 +74,16 @@ class UnitsConfig:
 class SplitConfig:
     fractions: list[float] = field(default_factory=lambda: list(DEFAULT_FRACTIONS))
     salt: str = DEFAULT_SALT
+    #: a file (relative to the host root) of unit ids, one a line: exactly their units are
+    #: the test split; the others go to train / valid by the hash (file sources only)
+    test_ids: str | None = None
+
+
+@dataclass
+class SubsampleConfig:
+    #: keep at most this many units (a seeded uniform sample); null keeps all
+    max_units: int | None = None
+    seed: int = 0
 
 
 @dataclass
@@ -91,6 +102,7 @@ class SourceConfig:
     tokenizer: TokenizerConfig | None = field(default_factory=TokenizerConfig)
     units: UnitsConfig | None = field(default_factory=UnitsConfig)
     split: SplitConfig = field(default_factory=SplitConfig)
+    subsample: SubsampleConfig = field(default_factory=SubsampleConfig)
     calibration: CalibrationConfig | None = field(default_factory=CalibrationConfig)
     package_version: str | None = _composed()
 
@@ -128,6 +140,9 @@ class SweepConfig:
     model: str = ""  # the base model (a key of study.models)
     parameter: str = ""  # a key of that model's params
     values: list[Any] = field(default_factory=list)
+    #: what every value trains with equally: ``steps`` (optimizer steps, the default of a
+    #: context sweep), ``tokens`` (the model's token budget), or null (nothing is held)
+    hold: str | None = None
     #: the models the sweep expanded into, name -> value
     models: dict[str, Any] | None = _composed()
 

@@ -30,7 +30,16 @@ from ._files import (
     write_npz,
 )
 from ._sequences import FORMAT, INT32_LIMIT, MAX_VOCAB_SIZE, Ragged, SequenceSet, index_dtype
-from ._splits import DEFAULT_FRACTIONS, DEFAULT_SALT, SPLITS, assign_splits, check_fractions
+from ._splits import (
+    DEFAULT_FRACTIONS,
+    DEFAULT_SALT,
+    SPLITS,
+    assign_splits,
+    check_fractions,
+    read_unit_ids,
+    split_with_given,
+    subsample,
+)
 from ._train_sample import (
     DEFAULT_TRAIN_SAMPLE,
     TRAIN_SAMPLE_SCHEMES,
@@ -75,9 +84,12 @@ __all__ = [
     "index_dtype",
     "open_for_writing",
     "prepare_units",
+    "read_unit_ids",
     "resample_train",
     "resolve_train_sample",
     "sample_index",
+    "split_with_given",
+    "subsample",
     "tokenizers",
     "working_directory",
     "write_npz",

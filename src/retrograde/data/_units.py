@@ -29,7 +29,7 @@ from __future__ import annotations
 
 import itertools
 from collections import Counter
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -39,7 +39,14 @@ from ..errors import ConfigError, DataError
 from ..validation import check_choice, check_int, invalid
 from ._document import Document
 from ._sequences import MAX_VOCAB_SIZE, SequenceSet
-from ._splits import DEFAULT_FRACTIONS, DEFAULT_SALT, SPLITS, assign_splits, check_fractions
+from ._splits import (
+    DEFAULT_FRACTIONS,
+    DEFAULT_SALT,
+    SPLITS,
+    check_fractions,
+    split_with_given,
+    subsample,
+)
 from .tokenizers import ByteTokenizer, CharTokenizer, Tokenizer
 
 __all__ = [
@@ -96,6 +103,10 @@ class PreparedUnits:
     #: tokens in dropped partial windows (``remainder="drop"``)
     dropped_tokens: int = 0
     mode: str = "line"
+    #: units cut before a ``max_units`` cap kept a sample of them
+    units_before_cap: int | None = None
+    #: whether the data fixed some splits (a test-ids file or a split field)
+    fixed_splits: bool = False
 
     @property
     def vocab_size(self) -> int:
@@ -127,6 +138,8 @@ class PreparedUnits:
             "duplicates": self.duplicates,
             "duplicated_contents": self.duplicated_contents,
             "dropped_tokens": self.dropped_tokens,
+            "units_before_cap": self.units_before_cap,
+            "fixed_splits": self.fixed_splits,
             "splits": per_split,
         }
 
@@ -208,20 +221,36 @@ def _text_pieces(document: Document, tokenizer: Tokenizer, mode: str) -> list[An
     return [_piece_sequence(tokenizer, t) for t in texts]
 
 
+@dataclass
+class _Cut:
+    """Natural-order units as cut: contents, doc ids, fixed splits (-1: none), unit ids."""
+
+    contents: list[Any]
+    doc_ids: list[int]
+    given: list[int]
+    unit_ids: list[str]
+    dropped: int
+    where: str
+
+
 def _cut(
     documents: Iterable[Document],
     tokenizer: Tokenizer | None,
     mode: str,
     window: int,
     remainder: str,
-) -> tuple[list[Any], list[int], int, str]:
-    """Natural-order units: (unit contents, doc ids, dropped tokens, first document's where).
+    with_ids: bool = False,
+) -> _Cut:
+    """Natural-order units (see :class:`_Cut`); unit ids only ``with_ids`` (they cost a
+    string per unit).
 
     A unit's content is its piece sequence (text units: a str for ``chars``, bytes for
     ``bytes``, a list of pieces otherwise) or an int64 array (token units).
     """
     contents: list[Any] = []
     doc_ids: list[int] = []
+    given: list[int] = []
+    unit_ids: list[str] = []
     dropped, first_where, first_kind = 0, "", None
     for document in documents:
         first_where = first_where or document.where
@@ -239,10 +268,46 @@ def _cut(
             bounds = _window_bounds(len(sequence), window, remainder)
             dropped += len(sequence) - (bounds[-1][1] if bounds else 0)
             pieces = [sequence[a:b] for a, b in bounds]
-        non_empty = [unit for unit in pieces if len(unit)]
-        contents.extend(non_empty)
-        doc_ids.extend([document.doc_id] * len(non_empty))
-    return contents, doc_ids, dropped, first_where
+        kept = [k for k, unit in enumerate(pieces) if len(unit)]
+        contents.extend(pieces[k] for k in kept)
+        doc_ids.extend([document.doc_id] * len(kept))
+        split = -1 if document.split is None else SPLITS.index(document.split)
+        given.extend([split] * len(kept))
+        if with_ids and mode == "line":
+            ids = document.line_ids(len(pieces))
+            unit_ids.extend(ids[k] for k in kept)
+        elif with_ids:
+            unit_ids.extend([document.unit_id] * len(kept))
+    return _Cut(contents, doc_ids, given, unit_ids, dropped, first_where)
+
+
+def _mark_test_ids(cut: _Cut, test_ids: Mapping[str, str]) -> None:
+    """Fix the listed units to the test split; an id no unit has is refused (one line)."""
+    known = set(cut.unit_ids)
+    for unit_id, where in test_ids.items():
+        if unit_id not in known:
+            example = cut.unit_ids[0] if cut.unit_ids else "none"
+            raise DataError(
+                f"{where}: unit id {unit_id!r} matches no document of the source (ids look "
+                f"like {example!r}); fix the id or remove the line"
+            )
+    for index, unit_id in enumerate(cut.unit_ids):
+        if unit_id in test_ids:
+            cut.given[index] = SPLITS.index("test")
+
+
+def _keep(cut: _Cut, kept: np.ndarray | None) -> _Cut:
+    if kept is None:
+        return cut
+    pick = kept.tolist()
+    return _Cut(
+        [cut.contents[i] for i in pick],
+        [cut.doc_ids[i] for i in pick],
+        [cut.given[i] for i in pick],
+        [cut.unit_ids[i] for i in pick] if cut.unit_ids else [],
+        cut.dropped,
+        cut.where,
+    )
 
 
 def _encode(
@@ -274,6 +339,9 @@ def prepare_units(
     salt: str = DEFAULT_SALT,
     remainder: str = "drop",
     vocab_size: int | None = None,
+    test_ids: Mapping[str, str] | None = None,
+    max_units: int | None = None,
+    subsample_seed: int = 0,
 ) -> PreparedUnits:
     """Cut, split, fit the vocabulary on train, and encode (see the module docstring).
 
@@ -295,6 +363,14 @@ def prepare_units(
     vocab_size : int or None
         Token documents only: the vocabulary size they declare; the result's is the larger
         of it and the largest id + 1. Ignored for text (the tokenizer's vocabulary counts).
+    test_ids : mapping unit id -> where it was listed, optional
+        Fix the test split: units whose document's :attr:`~Document.unit_id` is listed are
+        the test split (an unknown id is refused naming where it was listed); the others go
+        to train or valid (:func:`~retrograde.data.split_with_given`). Documents that carry
+        their own ``split`` keep it.
+    max_units, subsample_seed : int
+        Keep at most ``max_units`` units, drawn with :func:`~retrograde.data.subsample`
+        after cutting and before the vocabulary is fitted (a quick study).
 
     Examples
     --------
@@ -306,17 +382,23 @@ def prepare_units(
     """
     mode, window, remainder = check_units(mode, window, remainder)
     check_fractions(fractions)
-    contents, doc_ids, dropped, where = _cut(documents, tokenizer, mode, window or 0, remainder)
-    if not contents:
+    cut = _cut(documents, tokenizer, mode, window or 0, remainder, with_ids=bool(test_ids))
+    if not cut.contents:
         raise DataError(
-            f"{where or 'the source'}: no units (every {mode if mode != 'window' else 'document'} "
-            "is empty); check the input file and the unit mode"
+            f"{cut.where or 'the source'}: no units (every "
+            f"{mode if mode != 'window' else 'document'} is empty); check the input file and "
+            "the unit mode"
         )
+    if test_ids:
+        _mark_test_ids(cut, test_ids)
+    n_cut = len(cut.contents)
+    cut = _keep(cut, subsample(n_cut, max_units, subsample_seed))
+    contents, doc_ids, dropped = cut.contents, cut.doc_ids, cut.dropped
     keys = [
         np.asarray(c, dtype="<i8").tobytes() if tokenizer is None else _content_key(c)
         for c in contents
     ]
-    split_of_unit = assign_splits(keys, fractions, salt)
+    split_of_unit = split_with_given(keys, np.asarray(cut.given), fractions, salt)
     counts = Counter(keys)
     tokens, vocab_size, n_bytes = _encode(contents, split_of_unit, keys, tokenizer, vocab_size)
     lengths = np.fromiter((len(c) for c in contents), np.int64, len(contents))
@@ -334,4 +416,6 @@ def prepare_units(
         duplicated_contents=sum(1 for n in counts.values() if n > 1),
         dropped_tokens=dropped,
         mode=mode,
+        units_before_cap=n_cut,
+        fixed_splits=bool((np.asarray(cut.given) >= 0).any()),
     )

@@ -45,7 +45,7 @@ from ..registry import Registry
 from ..validation import check_int
 from ._files import atomic_write_json
 
-__all__ = ["UNKNOWN_ID", "Tokenizer", "load", "make", "names", "registry"]
+__all__ = ["UNKNOWN_ID", "Tokenizer", "load", "make", "names", "registry", "token_texts"]
 
 UNKNOWN_ID = 0
 TOKENIZER_FORMAT = "retrograde.tokenizer/1"
@@ -60,6 +60,29 @@ def make(name: str, **params: Any) -> Tokenizer:
 
 def names() -> list[str]:
     return registry.names()
+
+
+#: how :func:`token_texts` shows the unknown token (id 0)
+UNKNOWN_LABEL = "<unknown>"
+
+
+def token_texts(tokenizer: Tokenizer) -> list[str]:
+    """What every id of a fitted tokenizer stands for, escaped for printing: entry ``i`` is id ``i``.
+
+    Id 0 is ``<unknown>``; other entries are Python string literals, so a space, a line
+    feed or a control character stays visible (``' '``, ``'\\n'``); byte ids read as
+    byte literals (``'\\xff'``).
+
+    >>> token_texts(make("chars").fit([list("a b")]))
+    ['<unknown>', "' '", "'a'", "'b'"]
+    """
+    texts = [UNKNOWN_LABEL]
+    for token in range(1, tokenizer.vocab_size):
+        if isinstance(tokenizer, ByteTokenizer):
+            texts.append(repr(bytes([token - 1]))[1:])  # b'\xff' -> '\xff'
+        else:
+            texts.append(repr(tokenizer.decode([token])))
+    return texts
 
 
 def load(path: str | os.PathLike[str]) -> Tokenizer:

@@ -52,6 +52,11 @@ class Family(ABC):
     #: once, before its first fit, instead of every fit stage paying for them
     #: (:mod:`retrograde.stages.server`).
     warm_imports: ClassVar[tuple[str, ...]] = ()
+    #: the parameter a context-length sweep varies (None: the family names none)
+    context_parameter: ClassVar[str | None] = None
+    #: what a sweep can hold equal across its values (``steps``, ``tokens``) -> the
+    #: parameter of this family that fixes it; empty when it has no such budget
+    budget_parameters: ClassVar[dict[str, str]] = {}
 
     def __init__(self, **params: Any) -> None:
         self._params = dict(params)

@@ -79,6 +79,7 @@ TRAINING_DEFAULTS: dict[str, Any] = {
     "grad_clip": 1.0,  # largest global gradient norm
     "patience": 3,  # epochs without validation gain before stopping; 0 never stops
     "token_budget": None,  # train on exactly this many target positions
+    "step_budget": None,  # train exactly this many optimizer steps (context sweeps)
     "threads": 1,
     "bf16": False,
     "progress": True,  # tqdm bar on a terminal, with tokens/s

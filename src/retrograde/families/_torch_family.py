@@ -14,7 +14,7 @@ import time
 from collections.abc import Iterator, Sequence
 from pathlib import Path
 from types import ModuleType
-from typing import Any
+from typing import Any, ClassVar
 
 import numpy as np
 
@@ -48,6 +48,14 @@ _LOGIT_BUDGET = 2**24
 class TorchFamily(Family):
     """A Family whose network is a causal PyTorch module (see :mod:`._torch_common`)."""
 
+    #: the parameter a context-length sweep varies
+    context_parameter: ClassVar[str | None] = "context"
+    #: what a sweep can hold equal across its values -> the parameter that fixes it
+    budget_parameters: ClassVar[dict[str, str]] = {
+        "steps": "step_budget",
+        "tokens": "token_budget",
+    }
+
     # training parameters (set by Family.__init__ from the subclass's keyword arguments)
     context: int
     stride: int | None
@@ -60,6 +68,7 @@ class TorchFamily(Family):
     grad_clip: float
     patience: int
     token_budget: int | None
+    step_budget: int | None
     threads: int
     bf16: bool
     progress: bool
@@ -86,6 +95,15 @@ class TorchFamily(Family):
         check_int(owner, "patience", p["patience"], 0)
         if p["token_budget"] is not None:
             check_int(owner, "token_budget", p["token_budget"], 1)
+        if p["step_budget"] is not None:
+            check_int(owner, "step_budget", p["step_budget"], 1)
+            if p["token_budget"] is not None:
+                raise invalid(
+                    owner,
+                    "step_budget",
+                    p["step_budget"],
+                    "null when token_budget is set (one budget)",
+                )
         check_int(owner, "threads", p["threads"], 1)
         for key in ("bf16", "progress"):
             if not isinstance(p[key], bool):
@@ -136,6 +154,8 @@ class TorchFamily(Family):
     def _plan(self, n_windows: int, n_positions: int) -> tuple[int, int]:
         """(planned optimizer steps, most epochs) for the schedule and the epoch loop."""
         steps_per_epoch = math.ceil(n_windows / int(self.batch_size))
+        if self.step_budget is not None:
+            return int(self.step_budget), math.ceil(int(self.step_budget) / steps_per_epoch)
         if self.token_budget is None:
             return int(self.epochs) * steps_per_epoch, int(self.epochs)
         # Forward and reverse splits have the same window lengths, hence the same plan.
@@ -176,6 +196,7 @@ class TorchFamily(Family):
                 "epoch": epoch,
                 "train_nats_per_position": train_nats / max(train_positions, 1),
                 "tokens_seen": run.tokens_seen,
+                "steps": run.step,
                 "lr": run.optimizer.param_groups[0]["lr"],
             }
             if valid is not None:
@@ -185,8 +206,11 @@ class TorchFamily(Family):
             self.learning_curve_.append(record)
             if self.token_budget is not None and run.tokens_seen >= self.token_budget:
                 break
+            if self.step_budget is not None and run.step >= self.step_budget:
+                break
             # Early stopping would end runs after unequal compute, so a budget disables it.
-            if self.token_budget is None and 0 < int(self.patience) <= run.stale_epochs:
+            budgeted = self.token_budget is not None or self.step_budget is not None
+            if not budgeted and 0 < int(self.patience) <= run.stale_epochs:
                 break
         bar.close()
         if run.best_state is not None:
@@ -211,6 +235,8 @@ class TorchFamily(Family):
         epoch_nats, epoch_positions = 0.0, 0
         budget = self.token_budget
         for first in range(0, len(order), int(self.batch_size)):
+            if self.step_budget is not None and run.step >= self.step_budget:
+                break
             chosen = order[first : first + int(self.batch_size)]
             inputs, targets, _, owned = batches(stream, windows, chosen)
             if budget is not None and run.tokens_seen + int(owned.sum()) > budget:

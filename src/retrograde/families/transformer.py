@@ -34,7 +34,7 @@ class Transformer(TorchFamily):
     context : int
         Positions one window holds (sweep it for context-length studies).
     stride, batch_size, epochs, lr, weight_decay, warmup, min_lr_ratio, grad_clip,
-    patience, token_budget, threads, bf16, progress, device
+    patience, token_budget, step_budget, threads, bf16, progress, device
         Training and scoring; documented in ``docs/torch.md``.
     """
 
@@ -72,6 +72,7 @@ class Transformer(TorchFamily):
         grad_clip: float = 1.0,
         patience: int = 3,
         token_budget: int | None = None,
+        step_budget: int | None = None,
         threads: int = 1,
         bf16: bool = False,
         progress: bool = True,
@@ -94,6 +95,7 @@ class Transformer(TorchFamily):
             grad_clip=grad_clip,
             patience=patience,
             token_budget=token_budget,
+            step_budget=step_budget,
             threads=threads,
             bf16=bf16,
             progress=progress,

@@ -19,7 +19,14 @@ Everything written in a host lies under ``conf/retrograde/`` and ``pipelines/ret
 
 from __future__ import annotations
 
-from ._check import cell_status, check_host, format_host_check, round_trip_orders
+from ._check import (
+    VOCABULARY_SHOWN,
+    cell_status,
+    check_host,
+    format_host_check,
+    round_trip_orders,
+    vocabulary_listing,
+)
 from ._cluster import CLUSTER_MODES, ClusterOptions, parse_cluster
 from ._corpus_paths import check_source_files, host_stage_outputs, resolve_sources
 from ._demo import MARKER, commit_demo_results, next_steps, prepare_demo
@@ -94,6 +101,7 @@ __all__ = [
     "cell_status",
     "check_source_files",
     "check_file",
+    "VOCABULARY_SHOWN",
     "check_host",
     "commit_demo_results",
     "compose_for",
@@ -102,6 +110,7 @@ __all__ = [
     "find_host",
     "format_file_check",
     "format_host_check",
+    "vocabulary_listing",
     "git_toplevel",
     "host_stage_outputs",
     "initialize",

@@ -32,14 +32,56 @@ from ..config import (
     reorder_stage_name,
     units_stage_name,
 )
-from ..data import SPLITS
+from ..data import SPLITS, tokenizers
 from ..errors import DataError, PluginError
 from ._corpus_paths import missing_file_hint
 from ._driver import compose_for, write_pipeline_files
 from ._lock import pipeline_lock
 from ._repo import HostRepo, run_dvc
 
-__all__ = ["cell_status", "check_host", "format_host_check", "round_trip_orders"]
+__all__ = [
+    "VOCABULARY_SHOWN",
+    "cell_status",
+    "check_host",
+    "format_host_check",
+    "format_vocabulary",
+    "round_trip_orders",
+    "vocabulary_listing",
+]
+
+#: vocabulary entries the text report shows per source (``--vocab`` and ``--json``: all)
+VOCABULARY_SHOWN = 40
+
+
+def vocabulary_listing(tokenizer: Any, vocab_size: int) -> dict[str, Any]:
+    """``{"size", "tokenizer", "tokens"}``: ``tokens[i]`` is what id ``i`` stands for.
+
+    ``tokens`` is None for a source without a text tokenizer (its units are ids already).
+    """
+    return {
+        "size": int(vocab_size),
+        "tokenizer": None if tokenizer is None else tokenizer.name,
+        "tokens": None if tokenizer is None else tokenizers.token_texts(tokenizer),
+    }
+
+
+def format_vocabulary(source: str, vocabulary: dict[str, Any], limit: int | None) -> list[str]:
+    """Lines listing ``id token`` pairs of a :func:`vocabulary_listing` (``limit``: at most)."""
+    size, tokens = vocabulary["size"], vocabulary["tokens"]
+    if tokens is None:
+        return [f"vocabulary of {source!r}: ids 0..{size - 1} (token ids, no text tokenizer)"]
+    shown = tokens if limit is None else tokens[:limit]
+    head = f"vocabulary of {source!r} ({vocabulary['tokenizer']}, {size} ids, id token):"
+    if len(shown) < len(tokens):
+        head += f" first {len(shown)}; `check --vocab` or `--json` lists all"
+    lines, line = [head], "   "
+    for token_id, text in enumerate(shown):
+        entry = f" {token_id} {text}"
+        if len(line) + len(entry) > 88:
+            lines.append(line)
+            line = "   "
+        line += entry
+    return [*lines, line]
 
 
 def round_trip_orders(root: Path, config: RetrogradeConfig) -> dict[str, dict[str, Any]]:
@@ -58,8 +100,11 @@ def round_trip_orders(root: Path, config: RetrogradeConfig) -> dict[str, dict[st
     built = {name: orders.make(spec.name, **spec.params) for name, spec in study.orders.items()}
     checked: dict[str, dict[str, Any]] = {}
     for source_name, spec in study.sources.items():
-        splits = configured_units(source_name, spec, root).splits
+        made = configured_units(source_name, spec, root)
+        splits = made.splits
         for order_name, order in built.items():
+            where = f"study.orders.{order_name} on source {source_name!r}"
+            order = order.with_tokenizer(made.tokenizer, where=where)
             for split in SPLITS:
                 try:
                     orders.verify_bijection(order, splits[split], order_name=order_name)
@@ -69,6 +114,11 @@ def round_trip_orders(root: Path, config: RetrogradeConfig) -> dict[str, dict[st
             "units": int(sum(len(splits[s]) for s in SPLITS)),
             "tokens": int(sum(len(splits[s].tokens) for s in SPLITS)),
             "orders": list(built),
+            "vocabulary": vocabulary_listing(made.tokenizer, int(made.info["vocab_size"])),
+            "test_units": len(splits["test"]),
+            "test_ids": spec.split.test_ids,
+            "max_units": spec.subsample.max_units,
+            "units_before_cap": made.info.get("summary", {}).get("units_before_cap"),
         }
     return checked
 
@@ -165,7 +215,9 @@ def check_host(host_dir: str, overrides: Sequence[str] = ()) -> dict[str, Any]:
     }
 
 
-def format_host_check(report: dict[str, Any]) -> str:
+def format_host_check(
+    report: dict[str, Any], *, vocabulary_limit: int | None = VOCABULARY_SHOWN
+) -> str:
     """The check report as a few readable lines.
 
     Examples
@@ -193,6 +245,16 @@ def format_host_check(report: dict[str, Any]) -> str:
             f"round trip: source {source!r}: {len(info['orders'])} order(s) on "
             f"{info['units']} units ({info['tokens']} tokens): ok"
         )
+        if info.get("test_ids"):
+            lines.append(
+                f"  test split: the {info['test_units']} units {info['test_ids']} lists "
+                "(the others split train/valid by the hash)"
+            )
+        cap, before = info.get("max_units"), info.get("units_before_cap")
+        if cap is not None and before is not None and before > cap:
+            lines.append(f"  subsample: {cap} of {before} units kept (subsample.max_units)")
+        if "vocabulary" in info:
+            lines += format_vocabulary(source, info["vocabulary"], vocabulary_limit)
     cells = report["cells"]
     for source, stages in cells.get("stale_inputs", {}).items():
         lines.append(

@@ -22,6 +22,7 @@ from ..data import Document, PreparedUnits, check_fractions, check_units, prepar
 from ..errors import BijectionError, ConfigError, DataError, HostRepoError
 from ..sources import find_lone_carriage_return
 from ..validation import check_int
+from ._check import VOCABULARY_SHOWN, format_vocabulary, vocabulary_listing
 from ._corpus_paths import missing_file_hint
 from ._repo import find_host
 
@@ -94,26 +95,6 @@ def parse_order_spec(spec: str) -> tuple[str, dict[str, Any]]:
     return name.strip(), params
 
 
-def _resolve_separators(spec: str, params: dict[str, Any], tokenizer: Any) -> dict[str, Any]:
-    """Replace string separators by their token ids in the fitted vocabulary."""
-    separators = params.get("separators")
-    if tokenizer is None or separators is None:
-        return params
-    items = separators if isinstance(separators, list) else [separators]
-    ids = []
-    for item in items:
-        if isinstance(item, str):
-            token = tokenizer.token_id(item)
-            if token == tokenizer.unknown_id:
-                raise ConfigError(
-                    f"--order {spec!r}: separator {item!r} is not in the {tokenizer.name} "
-                    "vocabulary fitted on the train split; give a piece that occurs there"
-                )
-            item = token
-        ids.append(item)
-    return {**params, "separators": ids}
-
-
 def _requested_orders(specs: list[str]) -> list[tuple[str, str, dict[str, Any]]]:
     """(label, name, params) per order; every name and parameter is checked before any work."""
     if not specs:
@@ -128,20 +109,10 @@ def _requested_orders(specs: list[str]) -> list[tuple[str, str, dict[str, Any]]]
     requested = []
     for spec in specs:
         name, params = parse_order_spec(spec)
-        # String separators are looked up once the vocabulary is fitted; until then a
-        # stand-in id lets every other name and value be checked now.
-        checked = {
-            k: ([0] if k == "separators" and _has_strings(v) else v) for k, v in params.items()
-        }
-        orders.make(name, **checked)  # unknown names and bad values fail here, before reading
+        # Separators given as text are looked up once the vocabulary is fitted.
+        orders.make(name, **params)  # unknown names and bad values fail here, before reading
         requested.append((spec, name, params))
     return requested
-
-
-def _has_strings(value: Any) -> bool:
-    return isinstance(value, str) or (
-        isinstance(value, list) and any(isinstance(v, str) for v in value)
-    )
 
 
 def _verdicts(
@@ -151,7 +122,7 @@ def _verdicts(
     tokenizer = prepared.tokenizer
     describe = None if tokenizer is None else tokenizer.decode
     for label, name, params in requested:
-        order = orders.make(name, **_resolve_separators(label, params, tokenizer))
+        order = orders.make(name, **params).with_tokenizer(tokenizer, where=f"--order {label!r}")
         try:
             for split, units in prepared.splits.items():
                 try:
@@ -211,12 +182,24 @@ def check_file(
     summary = prepared.summary()
     summary["file"] = str(path)
     summary["orders"] = _verdicts(prepared, requested)
+    summary["vocabulary"] = vocabulary_listing(prepared.tokenizer, prepared.vocab_size)
     return summary
 
 
-def format_file_check(summary: dict[str, Any], *, as_json: bool = False) -> str:
-    """The summary as a few aligned lines, or as JSON."""
-    return json.dumps(summary, indent=2, sort_keys=True) if as_json else _format(summary)
+def format_file_check(
+    summary: dict[str, Any],
+    *,
+    as_json: bool = False,
+    vocabulary_limit: int | None = VOCABULARY_SHOWN,
+) -> str:
+    """The summary as a few aligned lines (the vocabulary's first ``vocabulary_limit``
+    entries; None: all), or as JSON (all of it)."""
+    if as_json:
+        return json.dumps(summary, indent=2, sort_keys=True)
+    lines = [_format(summary)]
+    if "vocabulary" in summary:
+        lines += format_vocabulary(summary["file"], summary["vocabulary"], vocabulary_limit)
+    return "\n".join(lines)
 
 
 def _format(summary: dict[str, Any]) -> str:

@@ -57,6 +57,20 @@ class Order:
         """The keyword parameters this order was built with (JSON-able)."""
         return dict(self._params)
 
+    @property
+    def needs_tokenizer(self) -> bool:
+        """True when a parameter names tokens by text (see :meth:`with_tokenizer`)."""
+        return False
+
+    def with_tokenizer(self, tokenizer: Any, *, where: str = "") -> Order:
+        """This order for one source: parameters given as text looked up in its vocabulary.
+
+        ``tokenizer`` is the source's fitted tokenizer, or None for a source whose units are
+        token ids; ``where`` starts any error message (the order and source). Orders
+        without text parameters return themselves.
+        """
+        return self
+
     def __repr__(self) -> str:
         args = ", ".join(f"{key}={value!r}" for key, value in sorted(self._params.items()))
         return f"{self.name or type(self).__name__}({args})"

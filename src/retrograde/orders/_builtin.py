@@ -39,6 +39,7 @@ from typing import Any, ClassVar
 import numpy as np
 
 from ..data import SequenceSet
+from ..errors import ConfigError, DataError
 from ..validation import check_int, invalid
 from ._base import Order, unit_positions
 
@@ -173,21 +174,35 @@ class Permutation(Order):
         return start + flat_table[table_offsets[length_index] + local]
 
 
-def _check_separators(owner: str, separators: Any) -> tuple[int, ...]:
-    allowed = "a non-empty list of token ids (integers >= 0)"
+def _check_separators(owner: str, separators: Any) -> tuple[int | str, ...]:
+    """Separator ids (integers >= 0) and texts (non-empty strings), deduplicated, ids first."""
+    allowed = (
+        "a non-empty list of token ids (integers >= 0) or texts (one token each, e.g. ' '), "
+        "or one of them"
+    )
     if isinstance(separators, numbers.Integral) and not isinstance(separators, bool):
         separators = [separators]
-    # Any sequence (a list, a tuple, an OmegaConf ListConfig, an array), but not a string.
+    if isinstance(separators, str):
+        separators = [separators]
+    # Any sequence (a list, a tuple, an OmegaConf ListConfig, an array), but not bytes.
     if isinstance(separators, np.ndarray):
         separators = separators.tolist()
-    if isinstance(separators, (str, bytes)) or not isinstance(separators, Sequence):
+    if isinstance(separators, bytes) or not isinstance(separators, Sequence):
         raise invalid(owner, "separators", separators, allowed)
     if len(separators) == 0:
         raise invalid(owner, "separators", separators, allowed)
+    ids: set[int] = set()
+    texts: list[str] = []
     for value in separators:
-        if not isinstance(value, numbers.Integral) or isinstance(value, bool) or value < 0:
+        if isinstance(value, str) and value:
+            texts += [] if value in texts else [value]
+        elif (
+            isinstance(value, numbers.Integral) and not isinstance(value, bool) and int(value) >= 0
+        ):
+            ids.add(int(value))
+        else:
             raise invalid(owner, "separators", separators, allowed)
-    return tuple(sorted({int(value) for value in separators}))
+    return (*sorted(ids), *texts)
 
 
 class _SegmentOrder(Order):
@@ -198,19 +213,77 @@ class _SegmentOrder(Order):
     finds the same runs in the output; both segment orders are involutions. Leading,
     trailing and repeated separators are runs of their own (empty segments between them
     hold no tokens and vanish).
+
+    A separator given as text (``" "``) names a token of a text tokenizer; its id depends on
+    the vocabulary fitted on the training units, so :meth:`with_tokenizer` looks it up
+    before the order is applied (the ``reorder`` stage and ``retrograde check`` do).
     """
 
     example_params: ClassVar[dict[str, Any]] = {"separators": [0]}
 
     def __init__(self, *, separators: Any) -> None:
-        self.separators = _check_separators(f"order {self.name!r}", separators)
-        super().__init__(separators=list(self.separators))
+        given = _check_separators(f"order {self.name!r}", separators)
+        #: separator token ids (complete once every text separator is looked up)
+        self.separators = tuple(sorted(v for v in given if isinstance(v, int)))
+        #: separators given as text, still to be looked up in a tokenizer's vocabulary
+        self.separator_texts = tuple(v for v in given if isinstance(v, str))
+        super().__init__(separators=list(given))
+
+    @property
+    def needs_tokenizer(self) -> bool:
+        return bool(self.separator_texts)
+
+    def with_tokenizer(self, tokenizer: Any, *, where: str = "") -> Order:
+        """This order with its text separators replaced by their ids in ``tokenizer``.
+
+        ``tokenizer`` is the source's fitted tokenizer (None for a source of token ids).
+        Each text must be exactly one token that the vocabulary knows; otherwise a one-line
+        :class:`~retrograde.errors.DataError` starts with ``where`` (the order and source).
+
+        >>> from retrograde.data import tokenizers
+        >>> tok = tokenizers.make("chars").fit([list("a b")])
+        >>> SegmentReverse(separators=" ").with_tokenizer(tok).separators
+        (1,)
+        """
+        if not self.separator_texts:
+            return self
+        prefix = f"{where}: " if where else f"order {self.name!r}: "
+        if tokenizer is None:
+            raise DataError(
+                f"{prefix}separators {list(self.separator_texts)!r} are text, but the source "
+                "has no text tokenizer (its units are token ids); give the separators as ids"
+            )
+        ids = set(self.separators)
+        for text in self.separator_texts:
+            pieces = tokenizer.pieces(text)
+            token = tokenizer.token_id(pieces[0]) if len(pieces) == 1 else None
+            if token is None:
+                raise DataError(
+                    f"{prefix}separator {text!r} is {len(pieces)} tokens under the "
+                    f"{tokenizer.name} tokenizer, not one; give a single token"
+                )
+            if token == tokenizer.unknown_id:
+                raise DataError(
+                    f"{prefix}separator {text!r} is not in the {tokenizer.name} vocabulary "
+                    "fitted on the train split; give a token that occurs there "
+                    "(`retrograde check` prints the vocabulary)"
+                )
+            ids.add(token)
+        return type(self)(separators=sorted(ids))
+
+    def _resolved(self) -> tuple[int, ...]:
+        if self.separator_texts:
+            raise ConfigError(
+                f"order {self.name!r}: separators {list(self.separator_texts)!r} are text; "
+                "look them up with with_tokenizer(the source's tokenizer) before applying"
+            )
+        return self.separators
 
     def _runs(self, units: SequenceSet) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """(run id of every token, run starts, run ends); runs never cross units."""
         tokens = units.tokens
         n_tokens = len(tokens)
-        is_separator = np.isin(tokens, self.separators)
+        is_separator = np.isin(tokens, self._resolved())
         breaks = np.zeros(n_tokens, dtype=bool)
         breaks[units.offsets[:-1][units.lengths > 0]] = True
         breaks |= is_separator

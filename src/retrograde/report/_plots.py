@@ -447,7 +447,11 @@ def sweep_figure(
         ax.xaxis.set_major_locator(MaxNLocator(integer=True))
     ax.set_xlabel(f"{parameter} (swept value)")
     ax.set_ylabel(f"gap to {reference or 'reference order'} (%)")
-    ax.set_title(f"sweep {name} on {sweep['source']}")
+    held = sweep.get("held")
+    ax.set_title(
+        f"sweep {name} on {sweep['source']}" + (f"\nequal for every value: {held}" if held else ""),
+        fontsize="medium",
+    )
     if orders:
         ax.legend(title="order", fontsize="small")
     _caption(figure, _interval_caption(table, level))

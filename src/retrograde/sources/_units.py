@@ -13,13 +13,20 @@ source's class:
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 
-from ..data import DEFAULT_UNIT_MODE, SPLITS, SequenceSet, assign_splits, prepare_units
+from ..data import (
+    DEFAULT_UNIT_MODE,
+    SPLITS,
+    SequenceSet,
+    assign_splits,
+    prepare_units,
+    subsample,
+)
 from ..data.tokenizers import Tokenizer
 from ..errors import DataError
 from ._base import CalibrationSource, FileSource, Source
@@ -52,14 +59,25 @@ def source_units(
     remainder: str = "drop",
     n_units: int = 1000,
     seed: int = 0,
+    test_ids: Mapping[str, str] | None = None,
+    max_units: int | None = None,
+    subsample_seed: int = 0,
 ) -> SourceUnits:
     """The train / valid / test units of ``source``.
 
     ``tokenizer``, ``mode``, ``window`` and ``remainder`` cut a file source's documents;
-    ``n_units`` and ``seed`` are a calibration source's generation.
+    ``n_units`` and ``seed`` are a calibration source's generation. ``test_ids`` (unit id
+    -> where it was listed) fixes a file source's test split; ``max_units`` and
+    ``subsample_seed`` keep a seeded sample of the units (see
+    :func:`retrograde.data.prepare_units`).
     """
     if isinstance(source, CalibrationSource):
-        return _calibration_units(source, n_units, seed, fractions, salt)
+        if test_ids:
+            raise DataError(
+                f"source {source.name!r} generates its units: a file of test ids needs a file "
+                "source; remove split.test_ids (calibration units are split by their hash)"
+            )
+        return _calibration_units(source, n_units, seed, fractions, salt, max_units, subsample_seed)
     if not isinstance(source, FileSource):
         raise DataError(
             f"source {source!r} is neither a FileSource nor a CalibrationSource; subclass one "
@@ -75,6 +93,9 @@ def source_units(
         salt=salt,
         remainder=remainder,
         vocab_size=declared() if callable(declared) else None,
+        test_ids=test_ids,
+        max_units=max_units,
+        subsample_seed=subsample_seed,
     )
     info = {
         "vocab_size": prepared.vocab_size,
@@ -85,9 +106,18 @@ def source_units(
 
 
 def _calibration_units(
-    source: CalibrationSource, n_units: int, seed: int, fractions: Sequence[float], salt: str
+    source: CalibrationSource,
+    n_units: int,
+    seed: int,
+    fractions: Sequence[float],
+    salt: str,
+    max_units: int | None = None,
+    subsample_seed: int = 0,
 ) -> SourceUnits:
     units = source.generate(n_units, seed)
+    kept = subsample(len(units), max_units, subsample_seed)
+    if kept is not None:
+        units = units.subset(kept)
     # One key per unit (a loop over units, not tokens): its little-endian int32 bytes.
     keys = [units[i].astype("<i4").tobytes() for i in range(len(units))]
     split_of_unit = np.asarray(assign_splits(keys, tuple(fractions), salt))

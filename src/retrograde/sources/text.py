@@ -75,7 +75,14 @@ class TextSource(EncodedFileSource):
                 if not text.strip():
                     continue  # blank lines and blank files make no document
                 where = str(path) if self.split == "file" else f"{path}:{line_number}"
-                yield Document(doc_id, where, text=text, n_bytes=n_bytes)
+                yield Document(
+                    doc_id,
+                    where,
+                    text=text,
+                    n_bytes=n_bytes,
+                    file=str(path),
+                    first_line=line_number,
+                )
                 doc_id += 1
         if doc_id == 0:
             raise DataError(

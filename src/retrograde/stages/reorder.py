@@ -23,10 +23,10 @@ import numpy as np
 
 from .. import orders
 from ..config import load_params, order_dir, units_dir
-from ..data import SPLITS, SequenceSet, atomic_dir
+from ..data import SPLITS, SequenceSet, atomic_dir, tokenizers
 from . import run_stage
 
-__all__ = ["main", "reorder_splits"]
+__all__ = ["for_source", "main", "reorder_splits"]
 
 
 def reorder_splits(
@@ -51,11 +51,21 @@ def reorder_splits(
     return reordered, positions_test
 
 
+def for_source(order: Any, units_folder: Path, order_name: str, source_name: str) -> Any:
+    """``order`` with separators given as text looked up in the source's fitted vocabulary."""
+    if not order.needs_tokenizer:
+        return order
+    path = units_folder / "tokenizer.json"
+    tokenizer = tokenizers.load(path) if path.exists() else None
+    where = f"study.orders.{order_name} on source {source_name!r}"
+    return order.with_tokenizer(tokenizer, where=where)
+
+
 def _body(args: argparse.Namespace) -> None:
     wdir = Path(args.params).resolve()
     spec = load_params(wdir).study.orders[args.order]
-    order = orders.make(spec.name, **spec.params)
     source_units = wdir / str(units_dir(args.source))
+    order = for_source(orders.make(spec.name, **spec.params), source_units, args.order, args.source)
     splits = {name: SequenceSet.load(source_units / name) for name in SPLITS}
     reordered, positions_test = reorder_splits(splits, order, order_name=args.order)
     with atomic_dir(wdir / str(order_dir(args.source, args.order))) as tmp:

@@ -350,7 +350,7 @@ def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
             "test_units_sha256": data_hashes,
             "params": config.to_dict(),
         },
-        "warnings": _seed_warnings(study) + flags,
+        "warnings": _seed_warnings(study) + flags + _sweep_notes(study),
         "level": stats_config.level,
         "cells": cells,
     }
@@ -384,8 +384,38 @@ def _sweeps(study: StudyConfig) -> dict[str, Any]:
                 "source": source,
                 "parameter": sweep.parameter,
                 "models": sweep.models or {},
+                "held": _held(study, sweep),
             }
     return out
+
+
+#: how the report names what a sweep held equal
+_HELD_WORDS = {"steps": "optimizer steps", "tokens": "training tokens"}
+
+
+def _held(study: StudyConfig, sweep: Any) -> str | None:
+    """What every value of ``sweep`` trained with equally, e.g. ``optimizer steps (step_budget=500)``."""
+    if sweep.hold is None:
+        return None
+    from .. import families
+
+    family = families.registry.get(study.models[sweep.model].family)
+    parameter = dict(getattr(family, "budget_parameters", {})).get(sweep.hold, sweep.hold)
+    value = study.models[sweep.model].params.get(parameter)
+    return f"{_HELD_WORDS.get(sweep.hold, sweep.hold)} ({parameter}={value})"
+
+
+def _sweep_notes(study: StudyConfig) -> list[str]:
+    """One report line per sweep of a budgeted family: what its values held equal."""
+    notes = []
+    for name, sweep in study.sweeps.items():
+        held = _held(study, sweep)
+        if held is not None:
+            notes.append(
+                f"sweep {name!r} ({sweep.parameter} of {sweep.model!r}): every value trained "
+                f"with the same {held}; the budget section shows what else differs"
+            )
+    return notes
 
 
 def _body(args: argparse.Namespace) -> None:

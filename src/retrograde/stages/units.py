@@ -29,7 +29,13 @@ from ..config import (
     load_params,
     units_dir,
 )
-from ..data import atomic_dir, atomic_write_json, tokenizers, working_directory
+from ..data import (
+    atomic_dir,
+    atomic_write_json,
+    read_unit_ids,
+    tokenizers,
+    working_directory,
+)
 from ..errors import DataError, PluginError, RetrogradeError
 from . import run_stage
 
@@ -48,6 +54,9 @@ def configured_units(name: str, spec: SourceConfig, root: Path) -> Any:
         if spec.tokenizer is not None:
             tokenizer = tokenizers.make(spec.tokenizer.name, **spec.tokenizer.params)
         units, calibration = spec.units, spec.calibration
+        test_ids = None
+        if spec.split.test_ids is not None:
+            test_ids = read_unit_ids(root / spec.split.test_ids, spec.split.test_ids)
         try:
             made = sources.source_units(
                 source,
@@ -59,6 +68,9 @@ def configured_units(name: str, spec: SourceConfig, root: Path) -> Any:
                 remainder="drop" if units is None else units.remainder,
                 n_units=1000 if calibration is None else calibration.n_units,
                 seed=0 if calibration is None else calibration.seed,
+                test_ids=test_ids,
+                max_units=spec.subsample.max_units,
+                subsample_seed=spec.subsample.seed,
             )
         except RetrogradeError:
             raise
