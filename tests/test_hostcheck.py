@@ -17,8 +17,8 @@ from retrograde.host import format_host_check
 pytestmark = pytest.mark.dvc
 
 SMOKE = "study=smoke"
-# the n-gram ignores the seed: one fit stage per order (for the first seed)
-FITS = [f"fit@corpus-ngram-{o}-0" for o in ("forward", "reverse")]
+# each seed of the n-gram trains on its own half-sample: a fit stage per order and seed
+FITS = [f"fit@corpus-ngram-{o}-{s}" for o in ("forward", "reverse") for s in (0, 1)]
 
 
 def _check(capsys, *argv: str) -> tuple[int, str, str]:
@@ -32,7 +32,7 @@ def test_before_any_run_every_cell_is_to_run_and_every_order_round_trips(tmp_pat
     status, out, err = _check(capsys, "--dir", str(host), "--json", SMOKE)
     assert (status, err) == (0, "")
     report = json.loads(out)
-    assert report["grid"]["cells"] == 4 and report["grid"]["fit_stages"] == 2
+    assert report["grid"]["cells"] == 4 and report["grid"]["fit_stages"] == 4
     assert report["cells"] == {"to_run": FITS, "up_to_date": [], "stale_inputs": {}}
     # init wrote the default config's files; the smoke study changes only the params
     assert report["written"] == ["pipelines/retrograde/params.yaml"]
@@ -67,16 +67,15 @@ def test_cells_check_calls_to_run_are_exactly_those_run_then_fits(tmp_path, caps
     first = io.StringIO()
     with contextlib.redirect_stderr(first), contextlib.redirect_stdout(io.StringIO()):
         assert main(["run", "--dir", str(host), SMOKE]) == 0, first.getvalue()
-    shutil.rmtree(host / "pipelines/retrograde/cells/corpus/ngram/reverse/seed0")
-    # a new model: an n-gram of another order (fitted once, whatever the seeds)
-    grid = [SMOKE, "study.seeds=[0,1,2]", "+study.models.big={family: ngram, params: {order: 4}}"]
+    shutil.rmtree(host / "pipelines/retrograde/cells/corpus/ngram/reverse/seed1")
+    grid = [SMOKE, "study.seeds=[0,1,2]"]
     status, out, _ = _check(capsys, "--dir", str(host), "--json", *grid)
     to_run = json.loads(out)["cells"]["to_run"]
     assert status == 0
     assert to_run == [
-        "fit@corpus-ngram-reverse-0",
-        "fit@corpus-big-forward-0",
-        "fit@corpus-big-reverse-0",
+        "fit@corpus-ngram-forward-2",
+        "fit@corpus-ngram-reverse-1",
+        "fit@corpus-ngram-reverse-2",
     ]
     # Outside reference: what DVC then reproduces (the deleted cell comes back from the
     # local run-cache instead of a new fit; either way DVC had to act on it).

@@ -384,24 +384,44 @@ def test_table_names_a_missing_cell_and_how_to_fit_it(pipeline, tmp_path, capsys
     assert "cell corpus/ngram/reverse/seed0 has no results" in err and "retrograde run" in err
 
 
-def test_a_model_that_ignores_the_seed_is_read_from_its_one_fit_for_every_seed(pipeline):
-    # The fixture fitted the n-gram with seeds 0 and 1 (stage by stage): the same bytes,
-    # so reading seed 0's cell for seed 1 (what the pipeline's single fit stage gives the
-    # table) changes no number of the table.
+def test_a_model_that_ignores_the_seed_is_read_from_its_one_fit_for_every_seed(tmp_path):
+    # train_sample none: the n-gram's fit is a function of the training units alone. Fitted
+    # stage by stage with seeds 0 and 1 it gives the same bytes, so reading seed 0's cell
+    # for seed 1 (what the pipeline's single fit stage gives the table) changes no number.
+    wdir = _host(tmp_path / "host", [*GRID, "++study.models.ngram.train_sample=none"])
+    assert units_stage.main(["--params", str(wdir), "--source", "corpus"]) == 0
     for order in ("forward", "reverse"):
-        cells = pipeline / f"cells/corpus/ngram/{order}"
+        argv = ["--params", str(wdir), "--source", "corpus", "--order", order]
+        assert reorder_stage.main(argv) == 0
+        for seed in ("0", "1"):
+            argv = ["--source", "corpus", "--model", "ngram", "--order", order, "--seed", seed]
+            assert fit_stage.main(["--params", str(wdir), *argv]) == 0
+        cells = wdir / f"cells/corpus/ngram/{order}"
         for name in ("test_logprobs.npy", "curve.json", "model/family.json"):
             assert (cells / "seed0" / name).read_bytes() == (cells / "seed1" / name).read_bytes()
-    assert load_params(pipeline).cells() == [
+    assert load_params(wdir).cells() == [
         ("corpus", "ngram", "forward", 0),
         ("corpus", "ngram", "reverse", 0),
     ]
-    metrics = json.loads((pipeline / "metrics.json").read_text())
+    shutil.rmtree(wdir / "cells/corpus/ngram/forward/seed1")  # the table must not need it
+    shutil.rmtree(wdir / "cells/corpus/ngram/reverse/seed1")
+    assert table_stage.main(["--params", str(wdir)]) == 0
+    metrics = json.loads((wdir / "metrics.json").read_text())
     assert metrics["corpus"]["ngram"]["reverse"]["seeds"] == 2  # both seeds are counted
-    rows = list(csv.DictReader(io.StringIO((pipeline / "cells.csv").read_text())))
+    rows = list(csv.DictReader(io.StringIO((wdir / "cells.csv").read_text())))
     assert [(r["order"], r["seed"]) for r in rows] == [
         (o, s) for o in ("forward", "reverse") for s in ("0", "1")
     ]
+
+
+def test_by_default_each_seed_of_an_ngram_is_a_fit_of_its_own_half_sample(pipeline):
+    # train_sample auto resolves to half for a family without randomness of its own
+    assert load_params(pipeline).cells() == [
+        ("corpus", "ngram", order, seed) for order in ("forward", "reverse") for seed in (0, 1)
+    ]
+    cells = pipeline / "cells/corpus/ngram/forward"
+    seed0 = np.load(cells / "seed0/test_logprobs.npy")
+    assert not np.array_equal(seed0, np.load(cells / "seed1/test_logprobs.npy"))
 
 
 # ------------------------------------------------------------------------- dvc.yaml

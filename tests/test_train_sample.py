@@ -5,9 +5,14 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from retrograde import SequenceSet, families, orders, sources
+from retrograde import SequenceSet, families, orders, sources, stats
 from retrograde.config import ModelConfig
-from retrograde.data import resample_train, resolve_train_sample, sample_index
+from retrograde.data import (
+    MIN_DOCUMENT_GROUPS,
+    resample_train,
+    resolve_train_sample,
+    sample_index,
+)
 from retrograde.errors import ConfigError
 from retrograde.stages.fit import fit_cell, training_units
 
@@ -108,3 +113,14 @@ def test_the_budget_counts_the_units_a_seed_trained_on():
     assert sample.tokens.tolist() == resample_train(train, 4).tokens.tolist()
     mlp = ModelConfig(family="mlp", params={})
     assert training_units(mlp, families.registry.get("mlp"), train, seed=4) is train
+
+
+def test_units_of_fewer_than_ten_documents_are_drawn_one_by_one():
+    # One file cut into lines is one document: drawn whole, every seed would train on all
+    # of it (the seeds of an n-gram would be identical again).
+    one_document = np.zeros(40, dtype=np.int64)
+    draws = {tuple(sample_index(40, seed, doc_ids=one_document)) for seed in range(5)}
+    assert len(draws) == 5 and all(len(d) == 20 for d in draws)
+    nine = np.repeat(np.arange(9), 4)
+    assert len(sample_index(36, 0, doc_ids=nine)) == 18  # units, not 4 or 5 documents
+    assert MIN_DOCUMENT_GROUPS == stats.MIN_DOCUMENTS_FOR_GROUPING  # one rule for both

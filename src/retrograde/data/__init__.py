@@ -42,6 +42,7 @@ from ._splits import (
 )
 from ._train_sample import (
     DEFAULT_TRAIN_SAMPLE,
+    MIN_DOCUMENT_GROUPS,
     TRAIN_SAMPLE_SCHEMES,
     TRAIN_SAMPLES,
     resample_train,
@@ -65,6 +66,7 @@ __all__ = [
     "FORMAT",
     "INT32_LIMIT",
     "MAX_VOCAB_SIZE",
+    "MIN_DOCUMENT_GROUPS",
     "REMAINDERS",
     "SPLITS",
     "TRAIN_SAMPLES",

@@ -18,8 +18,8 @@ A model's ``train_sample`` setting (``study.models.<name>.train_sample``) choose
 - ``auto`` (default): ``half`` for families without randomness of their own, else ``none``;
 - ``none``: every seed trains on all training units;
 - ``half``: seed ``s`` trains on half of the training units, drawn without replacement
-  (whole documents when the units carry document ids): a real sample of the source, half
-  the size;
+  (whole documents when the units carry the ids of at least ``MIN_DOCUMENT_GROUPS``
+  documents): a real sample of the source, half the size;
 - ``bootstrap``: seed ``s`` trains on ``n`` units drawn with replacement from the ``n``.
 """
 
@@ -34,6 +34,7 @@ from ._sequences import SequenceSet
 
 __all__ = [
     "DEFAULT_TRAIN_SAMPLE",
+    "MIN_DOCUMENT_GROUPS",
     "TRAIN_SAMPLES",
     "TRAIN_SAMPLE_SCHEMES",
     "resample_train",
@@ -53,6 +54,11 @@ TRAIN_SAMPLE_SCHEMES: dict[str, tuple[bool, float | None]] = {
 #: the scheme ``auto`` picks for a family without randomness of its own (chosen by
 #: simulation: ``docs/statistics.md``, "Seeds of a deterministic family")
 DEFAULT_TRAIN_SAMPLE = "half"
+#: fewest documents that are drawn whole; with fewer (one file cut into lines is one
+#: document) the units are drawn one by one, else every seed would train on the same units
+#: (one document) or on one of a handful of very different halves. The stats' interval
+#: groups test units by the same rule (``retrograde.stats.MIN_DOCUMENTS_FOR_GROUPING``).
+MIN_DOCUMENT_GROUPS = 10
 #: mixed into the seed so the sample's random stream differs from a family's own use of it
 _SALT = 0x7472_6169
 
@@ -87,8 +93,9 @@ def sample_index(
     ``half`` draws half of the groups without replacement, ``bootstrap`` as many groups as
     there are with replacement, ``subsample`` ``round(fraction * n_groups)`` without
     (``fraction`` in (0, 1]; it also overrides the other schemes' share). A group is a
-    document when ``doc_ids`` is given (all its units are drawn together, as often as the
-    document is), else a unit; at least one group is drawn. A unit drawn twice appears twice.
+    document when ``doc_ids`` name at least :data:`MIN_DOCUMENT_GROUPS` documents (all its
+    units are drawn together, as often as the document is), else a unit; at least one group
+    is drawn. A unit drawn twice appears twice.
 
     Examples
     --------
@@ -96,6 +103,8 @@ def sample_index(
     [0, 1, 2, 3, 4]
     >>> len(sample_index(6, 1)), len(sample_index(6, 1, scheme="bootstrap"))
     (3, 6)
+    >>> len(sample_index(6, 1, doc_ids=np.zeros(6)))  # one document: its units are drawn
+    3
     """
     owner = "train sample"
     n_units = check_int(owner, "n_units", n_units, 1)
@@ -104,11 +113,11 @@ def sample_index(
     replace, share = TRAIN_SAMPLE_SCHEMES[scheme]
     if fraction is not None or share is None:
         share = check_float(owner, "fraction", fraction, 0.0, 1.0, low_open=True)
-    if doc_ids is None:
-        group_of_unit = np.arange(n_units, dtype=np.int64)
-    else:
-        _, group_of_unit = np.unique(np.asarray(doc_ids), return_inverse=True)
-        group_of_unit = group_of_unit.ravel().astype(np.int64)
+    group_of_unit = np.arange(n_units, dtype=np.int64)
+    if doc_ids is not None:
+        _, documents = np.unique(np.asarray(doc_ids), return_inverse=True)
+        if int(documents.max(initial=-1)) + 1 >= MIN_DOCUMENT_GROUPS:
+            group_of_unit = documents.ravel().astype(np.int64)
     n_groups = int(group_of_unit.max()) + 1
     n_drawn = max(1, round(share * n_groups))
     rng = np.random.default_rng([seed, _SALT])

@@ -15,14 +15,16 @@ from typing import Any
 
 import numpy as np
 
+from ..data import MIN_DOCUMENT_GROUPS
 from ..errors import DataError
 from ._bootstrap import group_sums
 
 __all__ = ["MIN_DOCUMENTS_FOR_GROUPING", "ModelLosses", "checked_inputs", "model_losses"]
 
 #: with fewer test documents the interval resamples units one by one (resampling 1-9
-#: documents would give a degenerate or wildly unstable interval); the report warns
-MIN_DOCUMENTS_FOR_GROUPING = 10
+#: documents would give a degenerate or wildly unstable interval); the report warns. The
+#: same rule as a training half-sample's (:data:`retrograde.data.MIN_DOCUMENT_GROUPS`).
+MIN_DOCUMENTS_FOR_GROUPING = MIN_DOCUMENT_GROUPS
 _LN2 = math.log(2.0)
 
 
