@@ -17,6 +17,7 @@ layer needs is imported from here (``from retrograde.data import SequenceSet``);
 from __future__ import annotations
 
 from . import tokenizers
+from .tokenizers import FIELD_SEPARATOR
 from ._document import Document
 from ._files import (
     atomic_dir,
@@ -42,6 +43,7 @@ __all__ = [
     "DEFAULT_FRACTIONS",
     "DEFAULT_SALT",
     "DEFAULT_UNIT_MODE",
+    "FIELD_SEPARATOR",
     "FORMAT",
     "INT32_LIMIT",
     "MAX_VOCAB_SIZE",

@@ -22,6 +22,9 @@ class Document:
     tokens: np.ndarray | None = None
     #: UTF-8 bytes of the natural text (for bits per byte); None when unknown
     n_bytes: int | None = None
+    #: exact negative log-likelihood of the document in nats (a generator's own truth, end
+    #: marker included), when the source knows it; it becomes the unit's floor
+    nll: float | None = None
 
     def __post_init__(self) -> None:
         if (self.text is None) == (self.tokens is None):

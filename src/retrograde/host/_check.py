@@ -51,14 +51,17 @@ def round_trip_orders(root: Path, config: RetrogradeConfig) -> dict[str, dict[st
     BijectionError
         The first order that fails on a unit, naming the order, the unit and an excerpt.
     """
+    from ..stages.reorder import bind_order
     from ..stages.units import configured_units
 
     study = config.study
     built = {name: orders.make(spec.name, **spec.params) for name, spec in study.orders.items()}
     checked: dict[str, dict[str, Any]] = {}
     for source_name, spec in study.sources.items():
-        splits = configured_units(source_name, spec, root).splits
-        for order_name, order in built.items():
+        made = configured_units(source_name, spec, root)
+        splits = made.splits
+        for order_name, unbound in built.items():
+            order = bind_order(unbound, {"source": source_name, **made.info}, order_name)
             for split in SPLITS:
                 try:
                     orders.verify_bijection(order, splits[split], order_name=order_name)

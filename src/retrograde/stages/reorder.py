@@ -10,6 +10,7 @@ the table stage uses to map per-position losses back to the natural order.
 from __future__ import annotations
 
 import argparse
+import json
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
@@ -19,9 +20,25 @@ import numpy as np
 from .. import orders
 from ..config import load_params, order_dir, units_dir
 from ..data import SPLITS, SequenceSet, atomic_dir
+from ..errors import RetrogradeError
 from . import run_stage
 
-__all__ = ["main", "reorder_splits"]
+__all__ = ["bind_order", "main", "reorder_splits"]
+
+
+def bind_order(order: Any, info: Mapping[str, Any], order_name: str) -> Any:
+    """``order`` for the source whose units' ``info.json`` is ``info`` (see ``Order.for_source``).
+
+    An order that needs the source's facts (the ``fields`` order) gets them here; a
+    mismatch is one line naming the order's config key and the source.
+    """
+    for_source = getattr(order, "for_source", None)  # duck-typed custom orders have none
+    if for_source is None:
+        return order
+    try:
+        return for_source(info)
+    except RetrogradeError as exc:
+        raise exc.prefixed(f"study.orders.{order_name} on source {info.get('source')!r}") from exc
 
 
 def reorder_splits(
@@ -49,8 +66,9 @@ def reorder_splits(
 def _body(args: argparse.Namespace) -> None:
     wdir = Path(args.params).resolve()
     spec = load_params(wdir).study.orders[args.order]
-    order = orders.make(spec.name, **spec.params)
     source_units = wdir / str(units_dir(args.source))
+    info = json.loads((source_units / "info.json").read_text(encoding="utf-8"))
+    order = bind_order(orders.make(spec.name, **spec.params), info, args.order)
     splits = {name: SequenceSet.load(source_units / name) for name in SPLITS}
     reordered, positions_test = reorder_splits(splits, order, order_name=args.order)
     with atomic_dir(wdir / str(order_dir(args.source, args.order))) as tmp:

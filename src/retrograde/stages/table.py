@@ -31,6 +31,7 @@ from ..config import (
 from ..data import Ragged, SequenceSet
 from ..errors import DataError
 from . import run_stage
+from .units import SPAN_IDS_FILE
 
 __all__ = ["collect", "main"]
 
@@ -279,9 +280,17 @@ def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
             profiles[source][model] = stats.position_profile(
                 natural, reference_order=reference, n_buckets=stats_config.position_buckets
             )
-            if info.get("spans"):
-                named = {k: (int(v[0]), int(v[1])) for k, v in info["spans"].items()}
-                spans.setdefault(source, {})[model] = stats.span_breakdown(natural, named)
+            named = _spans_of(folder, info)
+            if named:
+                spans.setdefault(source, {})[model] = stats.span_breakdown(
+                    natural,
+                    named,
+                    reference_order=reference,
+                    doc_ids=test.doc_ids,
+                    level=stats_config.level,
+                    n_boot=stats_config.n_boot,
+                    seed=stats_config.seed,
+                )
     stats.adjust_holm(table, reference_order=reference)
     stats.simultaneous_intervals(table, replicates, reference_order=reference)
     flags = [
@@ -310,6 +319,15 @@ def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
         "level": stats_config.level,
         "cells": cells,
     }
+
+
+def _spans_of(folder: Path, info: dict[str, Any]) -> dict[str, Any]:
+    """The named spans of a source's test units: per-unit masks from ``span_ids.npy``
+    (records sources), else the fixed ranges of ``info.json`` (calibration sources)."""
+    labels = folder / "test" / SPAN_IDS_FILE
+    if info.get("span_names") and labels.is_file():
+        return stats.span_masks(np.load(labels, allow_pickle=False), list(info["span_names"]))
+    return {k: (int(v[0]), int(v[1])) for k, v in (info.get("spans") or {}).items()}
 
 
 def _seed_warnings(study: StudyConfig) -> list[str]:
