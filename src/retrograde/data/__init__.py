@@ -17,7 +17,6 @@ layer needs is imported from here (``from retrograde.data import SequenceSet``);
 from __future__ import annotations
 
 from . import tokenizers
-from .tokenizers import FIELD_SEPARATOR
 from ._document import Document
 from ._files import (
     atomic_dir,
@@ -38,6 +37,7 @@ from ._units import (
     check_units,
     prepare_units,
 )
+from .tokenizers import FIELD_SEPARATOR
 
 __all__ = [
     "DEFAULT_FRACTIONS",

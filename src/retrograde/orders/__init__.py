@@ -58,7 +58,8 @@ __all__ = [
 ]
 
 registry: Registry[Order] = Registry("order", "retrograde.orders", Order)
-for _order in (*BUILTIN_ORDERS, Fields):
+_ORDERS: tuple[type[Order], ...] = (*BUILTIN_ORDERS, Fields)
+for _order in _ORDERS:
     registry.register(_order.name)(_order)
 registry.register("identity")(Forward)
 

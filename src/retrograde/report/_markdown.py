@@ -206,7 +206,9 @@ def _markdown_spans(spans: Mapping[str, Mapping[str, Any]], level: float | None 
             for order, by_span in by_order.items():
                 for span, value in by_span.items():
                     difference = _signed(value.get("diff_bits_per_unit"))
-                    if value.get("diff_bits_per_unit_low") is not None:
+                    if "diff_bits_per_unit" not in value:
+                        difference = "reference"
+                    elif value.get("diff_bits_per_unit_low") is not None:
                         difference += (
                             f" [{_signed(value['diff_bits_per_unit_low'])}, "
                             f"{_signed(value['diff_bits_per_unit_high'])}]"

@@ -83,11 +83,11 @@ class RecordsSource(EncodedFileSource):
     def _validate_params(self) -> None:
         allowed = "a non-empty list of distinct, non-empty field names"
         fields = self.fields
-        if isinstance(fields, (str, bytes)) or not isinstance(fields, Sequence):
-            fields = list(fields) if hasattr(fields, "__iter__") else None  # a ListConfig
+        if isinstance(fields, (str, bytes)) or not hasattr(fields, "__iter__"):
+            raise invalid(self._owner, "fields", self.fields, allowed)
+        fields = list(fields)  # a list, tuple or OmegaConf ListConfig
         if (
             not fields
-            or isinstance(fields, (str, bytes))
             or not all(isinstance(f, str) and f for f in fields)
             or len(set(fields)) != len(fields)
         ):
@@ -144,8 +144,7 @@ class RecordsSource(EncodedFileSource):
     def _missing(self, record: dict[str, Any], key: str, where: str, what: str) -> DataError:
         keys = ", ".join(sorted(record)) or "none"
         return DataError(
-            f"{where}: field {key!r} is missing (keys: {keys}); add it or fix the source's "
-            f"{what}"
+            f"{where}: field {key!r} is missing (keys: {keys}); add it or fix the source's {what}"
         )
 
     def _field_text(self, record: dict[str, Any], key: str, where: str) -> str:

@@ -187,7 +187,7 @@ def span_breakdown(
     (per-unit spans such as the fields of a ``records`` source, see :func:`span_masks`).
     The end marker is never in a span. Perplexity is ``2 ** bits_per_token``.
 
-    With ``reference_order``, every span of every order also gets ``diff_bits_per_unit``:
+    With ``reference_order``, every span of every other order also gets ``diff_bits_per_unit``:
     the mean over test units of (the span's bits in this order minus in the reference
     order), with a percentile bootstrap interval (``diff_bits_per_unit_low``/``_high``) that
     resamples units (whole documents when ``doc_ids`` holds at least
@@ -265,6 +265,8 @@ def span_breakdown(
     lows, highs = np.quantile(replicates, [tail, 1.0 - tail], axis=0)
     means = flat.mean(axis=1)
     for row, (index, k) in enumerate(np.ndindex(len(orders), len(masks))):
+        if orders[index] == reference_order:
+            continue  # its difference to itself is 0 by definition
         leaf = result[orders[index]][list(masks)[k]]
         leaf["diff_bits_per_unit"] = rounded(means[row])
         leaf["diff_bits_per_unit_low"] = rounded(lows[row])
