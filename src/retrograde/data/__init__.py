@@ -7,7 +7,8 @@ layer needs is imported from here (``from retrograde.data import SequenceSet``);
 - :class:`SequenceSet` / :class:`Ragged` — units of token ids (``.npy`` folder format) and
   per-position values;
 - :class:`Document` — what a source yields before units are cut;
-- :mod:`retrograde.data.tokenizers` — ``bytes``, ``chars``, ``words`` (``make``, ``names``, ``load``);
+- :mod:`retrograde.data.tokenizers` — ``bytes``, ``chars``, ``words``, and the learned ``bpe``
+  and ``unigram`` (SentencePiece, optional extra ``tokenizers``) (``make``, ``names``, ``load``);
 - :func:`prepare_units` — cut, split by a salted content hash, fit the vocabulary on train;
 - the one rule for split fractions (:func:`check_fractions`) and for unit cutting
   (:func:`check_units`), with the package's only defaults;
@@ -16,7 +17,7 @@ layer needs is imported from here (``from retrograde.data import SequenceSet``);
 
 from __future__ import annotations
 
-from . import tokenizers
+from . import _learned, tokenizers  # _learned registers the bpe and unigram tokenizers
 from ._document import Document
 from ._files import (
     atomic_dir,

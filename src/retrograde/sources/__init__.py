@@ -30,7 +30,7 @@ from ._base import (
     Source,
     find_lone_carriage_return,
 )
-from ._units import SourceUnits, field_span_ids, source_units
+from ._units import CODE_POINTS, SourceUnits, character_units, field_span_ids, source_units
 from .automaton import AutomatonSource
 from .demo import DemoSource
 from .fasta import FastaSource
@@ -42,6 +42,7 @@ from .text import TextSource
 from .tokens import TokensSource
 
 __all__ = [
+    "CODE_POINTS",
     "SEPARATOR_SPAN",
     "AutomatonSource",
     "CalibrationSource",
@@ -57,6 +58,7 @@ __all__ = [
     "SourceUnits",
     "TextSource",
     "TokensSource",
+    "character_units",
     "field_span_ids",
     "find_lone_carriage_return",
     "make",

@@ -36,7 +36,7 @@ from ..data.tokenizers import Tokenizer
 from ..errors import DataError
 from ._base import CalibrationSource, FileSource, Source
 
-__all__ = ["SourceUnits", "field_span_ids", "source_units"]
+__all__ = ["CODE_POINTS", "SourceUnits", "character_units", "field_span_ids", "source_units"]
 
 
 @dataclass
@@ -110,11 +110,20 @@ def source_units(
     floors = None
     if floors_by_document:
         floors = _document_floors(source, splits["test"], floors_by_document, prepared.mode)
+    separator = None
+    if prepared.tokenizer is not None:
+        separator = prepared.tokenizer.token_id(FIELD_SEPARATOR)
+    if getattr(prepared.tokenizer, "reorder", "tokens") == "characters":
+        # Orders act on characters; the reorder stage tokenizes the reordered text.
+        assert prepared.tokenizer is not None
+        splits = {k: character_units(u, prepared.tokenizer) for k, u in splits.items()}
+        separator = ord(FIELD_SEPARATOR)
+        info["reorder"] = "characters"
+        info["fit"] = prepared.tokenizer.fit_mode  # type: ignore[attr-defined]
     span_ids = None
     span_names = getattr(source, "span_names", None)
-    if callable(span_names) and prepared.tokenizer is not None:
+    if callable(span_names) and separator is not None:
         names = list(span_names())
-        separator = prepared.tokenizer.token_id(FIELD_SEPARATOR)
         span_ids = {
             split: field_span_ids(units, separator, len(names) - 1, f"source {source.name!r}")
             for split, units in splits.items()
@@ -122,6 +131,28 @@ def source_units(
         info["span_names"] = names
         info["records"] = {"fields": names[:-1], "separator_id": separator}
     return SourceUnits(splits, floors, prepared.tokenizer, info, span_ids)
+
+
+#: code points lie below this; character units use it as their vocabulary size
+CODE_POINTS = 0x110000
+
+
+def character_units(units: SequenceSet, tokenizer: Tokenizer) -> SequenceSet:
+    """The units as Unicode code points (ids ``0 .. 0x10FFFF``), decoded from a lossless
+    tokenizer's ids; ``doc_ids`` and ``n_bytes`` kept.
+
+    >>> from retrograde.data import tokenizers
+    >>> tok = tokenizers.make("chars").fit([list("abc")])
+    >>> character_units(SequenceSet.from_list([tok.encode("cab")]), tok)[0].tolist()
+    [99, 97, 98]
+    """
+    rows = []
+    for unit in units:
+        text = tokenizer.decode(unit)
+        rows.append(np.frombuffer(text.encode("utf-32-le", "surrogatepass"), dtype="<u4"))
+    return SequenceSet.from_list(
+        rows, vocab_size=CODE_POINTS, doc_ids=units.doc_ids, n_bytes=units.n_bytes
+    )
 
 
 def _collect_floors(
