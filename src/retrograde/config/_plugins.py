@@ -285,6 +285,8 @@ def _resolve_tokenizer(where: str, entry: TokenizerConfig) -> None:
     except RetrogradeError as exc:
         raise _prefixed(where, exc) from exc
     entry.params = resolved_params(factory, entry.params)
+    library_version = getattr(factory, "library_version", None)
+    entry.library_version = library_version() if callable(library_version) else None
 
 
 def _inside_root(where: str, path: Path, root: Path, *, exists: bool = False) -> str:

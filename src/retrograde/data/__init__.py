@@ -17,7 +17,7 @@ layer needs is imported from here (``from retrograde.data import SequenceSet``);
 
 from __future__ import annotations
 
-from . import _learned, tokenizers  # _learned registers the bpe and unigram tokenizers
+from . import tokenizers
 from ._document import Document
 from ._files import (
     atomic_dir,

@@ -85,6 +85,12 @@ class LearnedTokenizer(Tokenizer):
                 "per order is fitted on that order's text, so orders act before tokenizing)"
             )
 
+    @classmethod
+    def library_version(cls) -> str:
+        """The training library and its version (composed into the params: a new version
+        retrains, since it may tokenize differently)."""
+        return f"sentencepiece {_sentencepiece(f'tokenizer {cls.name!r}').__version__}"
+
     def pieces(self, text: str) -> list[Any]:
         return list(text)  # characters: cutting and splitting happen before any vocabulary
 

@@ -354,3 +354,8 @@ class WordTokenizer(Tokenizer):
     @property
     def vocab_size(self) -> int:
         return len(self._fitted_vocab()) + 1
+
+
+# The learned tokenizers (``bpe``, ``unigram``) register themselves in this registry; they
+# live in their own module, which imports this one, so they are loaded last.
+from . import _learned  # noqa: E402, F401
