@@ -281,3 +281,26 @@ def test_a_missing_field_in_the_units_stage_is_one_line_exit_2_naming_file_and_l
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "receipts.jsonl:7: field 'qty' is missing" in err[0]
     assert not (wdir / "data/receipts/units").exists()  # nothing half-written
+
+
+def test_a_fields_order_naming_an_unknown_field_fails_at_compose_time(tmp_path):
+    root = tmp_path / "host"
+    _host(root, receipts(20, seed=6))
+    with pytest.raises(ConfigError, match=r"study\.orders\.bad on source 'receipts'.*fields="):
+        compose(
+            root,
+            [
+                "source=[receipts]",
+                "study=smoke",
+                "+study.orders.bad={name: fields, params: {fields: [total, item]}}",
+            ],
+        )
+    with pytest.raises(ConfigError, match=r"study\.orders\.bad on source 'markov'.*records"):
+        compose(
+            root,
+            [
+                "source=[receipts,markov]",
+                "study=smoke",
+                "+study.orders.bad={name: fields, params: {fields: [time, item, qty, total]}}",
+            ],
+        )
