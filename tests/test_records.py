@@ -304,3 +304,22 @@ def test_a_fields_order_naming_an_unknown_field_fails_at_compose_time(tmp_path):
                 "+study.orders.bad={name: fields, params: {fields: [time, item, qty, total]}}",
             ],
         )
+
+
+def test_the_span_figure_draws_one_series_per_order_with_intervals():
+    from retrograde.report._plots import span_figure
+
+    leaf = {"bits_per_unit": 2.0, "diff_bits_per_unit": 0.5}
+    bounds = {"diff_bits_per_unit_low": 0.2, "diff_bits_per_unit_high": 0.9}
+    spans = {
+        "receipts": {
+            "ngram": {
+                "forward": {"item": {"bits_per_unit": 1.0}, "total": {"bits_per_unit": 3.0}},
+                "total_first": {"item": {**leaf, **bounds}, "total": {**leaf, **bounds}},
+            }
+        }
+    }
+    figure = span_figure(spans, level=0.95)
+    (ax,) = [a for a in figure.axes if a.get_visible()]
+    assert [t.get_text() for t in ax.get_xticklabels()] == ["item", "total"]
+    assert ax.get_ylabel() == "bits per unit minus forward"
