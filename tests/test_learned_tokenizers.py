@@ -168,3 +168,35 @@ def test_per_order_tokenizers_compare_in_bits_per_byte_checked_by_hand(tmp_path)
         assert metrics[order]["characters"] == sum(len(t) for t in texts)
     report = (wdir / "report.md").read_text()
     assert "compare bits per byte" in report and "fitted on each order's own text" in report
+
+
+@pytest.mark.dvc
+@pytest.mark.slow
+def test_a_changed_tokenizer_setting_reruns_the_cells_of_its_source(tmp_path):
+    # DVC's own "Running stage" lines are the outside reference for what ran.
+    import contextlib
+    import io
+
+    from _host_fixtures import dvc_events, new_pipeline_host
+    from retrograde.cli import main
+
+    host = new_pipeline_host(tmp_path / "host")
+    base = [
+        "study=smoke",
+        "study.seeds=[0]",
+        "study.sources.corpus.tokenizer.name=bpe",
+        "+study.sources.corpus.tokenizer.params.vocab_size=400",
+    ]
+
+    def run(*extra: str) -> set[str]:
+        with contextlib.redirect_stdout(io.StringIO()), contextlib.redirect_stderr(io.StringIO()):
+            assert main(["run", "--dir", str(host), *base, *extra]) == 0
+        return {s for s in dvc_events(host)["ran"] if s.startswith(("fit@", "units"))}
+
+    cells = {"fit@corpus-ngram-forward-0", "fit@corpus-ngram-reverse-0"}
+    assert cells <= run()
+    assert run() == set()  # nothing changed: everything cached
+    assert cells <= run(
+        "+study.sources.corpus.tokenizer.params.fit=per_order",
+        "+study.sources.corpus.tokenizer.params.reorder=characters",
+    )
