@@ -65,7 +65,11 @@ def test_default_config_composes_into_the_documented_shape(host):
     assert list(params) == ["study", "stats", "fits"]
     corpus = study["sources"]["corpus"]
     assert corpus["deps"] == ["data/corpus.txt"] and corpus["calibration"] is None
-    assert corpus["tokenizer"] == {"name": "chars", "params": {"max_vocab": None, "min_count": 1}}
+    assert corpus["tokenizer"] == {
+        "name": "chars",
+        "params": {"max_vocab": None, "min_count": 1},
+        "library_version": None,  # a learned tokenizer's training library
+    }
     assert corpus["units"]["mode"] == "line"
     assert corpus["package_version"] == __version__
     # Every entry holds its full parameters (defaults included) and the versions of the

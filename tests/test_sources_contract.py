@@ -19,11 +19,13 @@ def _file_samples(folder):
     """Parameters that build each file source on small sample files in ``folder``."""
     (folder / "a.txt").write_text("one line\nsecond line\n\nnext paragraph\n")
     (folder / "a.jsonl").write_text('{"text": "x y"}\n{"text": "z"}\n')
+    (folder / "r.jsonl").write_text('{"a": "x", "b": 1}\n{"a": "z", "b": 2.5}\n')
     (folder / "a.fa").write_text(">r1\nACGT\nAC\n>r2\nGG\n")
     SequenceSet.from_list([[1, 2], [3]], vocab_size=4).save(folder / "set")
     return {
         "text": {"files": str(folder / "a.txt")},
         "jsonl": {"files": str(folder / "a.jsonl")},
+        "records": {"files": str(folder / "r.jsonl"), "fields": ["a", "b"]},
         "fasta": {"files": str(folder / "a.fa")},
         "tokens": {"files": str(folder / "set")},
         "demo": {"size_bytes": 5_000},

@@ -122,6 +122,7 @@ def resolve_plugins(study: StudyConfig, root: Path) -> None:
     for name, source in study.sources.items():
         _resolve_source(name, source, root)
     _check_text_parameters(study)
+    _check_orders_fit_sources(study, root)
 
 
 def _check_text_parameters(study: StudyConfig) -> None:
@@ -143,6 +144,35 @@ def _check_text_parameters(study: StudyConfig) -> None:
                     "text tokenizer (its units are token ids); give the separators as ids, or "
                     "study the order on text sources only"
                 )
+
+
+def _check_orders_fit_sources(study: StudyConfig, root: Path) -> None:
+    """An order that needs a source's facts (the ``fields`` order: field names) is checked
+    against every source now, not when its reorder stage runs."""
+    from .. import orders, sources
+
+    for order_name, entry in study.orders.items():
+        order = orders.make(entry.name, **entry.params)
+        method = getattr(type(order), "for_source", None)
+        if method is None or method is orders.Order.for_source:
+            continue  # needs nothing from the source
+        for source_name, source_entry in study.sources.items():
+            facts: dict[str, Any] = {"source": source_name}
+            factory = sources.registry.get(source_entry.name)
+            if callable(getattr(factory, "span_names", None)):
+                try:
+                    with working_directory(root):
+                        built = sources.make(source_entry.name, **source_entry.params)
+                except RetrogradeError:
+                    continue  # files not written yet: the reorder stage checks it
+                names = list(built.span_names())  # type: ignore[attr-defined]
+                facts["records"] = {"fields": names[:-1], "separator_id": 0}
+            try:
+                order.for_source(facts)
+            except RetrogradeError as exc:
+                raise _prefixed(
+                    f"study.orders.{order_name} on source {source_name!r}", exc
+                ) from exc
 
 
 def _resolve_order(where: str, entry: OrderConfig) -> None:
@@ -316,6 +346,8 @@ def _resolve_tokenizer(where: str, entry: TokenizerConfig) -> None:
     except RetrogradeError as exc:
         raise _prefixed(where, exc) from exc
     entry.params = resolved_params(factory, entry.params)
+    library_version = getattr(factory, "library_version", None)
+    entry.library_version = library_version() if callable(library_version) else None
 
 
 def _inside_root(where: str, path: Path, root: Path, *, exists: bool = False) -> str:

@@ -61,6 +61,8 @@ def _composed(default: Any = None) -> Any:
 class TokenizerConfig:
     name: str = "chars"
     params: dict[str, Any] = field(default_factory=dict)
+    #: a learned tokenizer's training library and its version (a new one reruns the units)
+    library_version: str | None = _composed()
 
 
 @dataclass

@@ -7,7 +7,8 @@ layer needs is imported from here (``from retrograde.data import SequenceSet``);
 - :class:`SequenceSet` / :class:`Ragged` — units of token ids (``.npy`` folder format) and
   per-position values;
 - :class:`Document` — what a source yields before units are cut;
-- :mod:`retrograde.data.tokenizers` — ``bytes``, ``chars``, ``words`` (``make``, ``names``, ``load``);
+- :mod:`retrograde.data.tokenizers` — ``bytes``, ``chars``, ``words``, and the learned ``bpe``
+  and ``unigram`` (SentencePiece, optional extra ``tokenizers``) (``make``, ``names``, ``load``);
 - :func:`prepare_units` — cut, split by a salted content hash, fit the vocabulary on train;
 - the one rule for split fractions (:func:`check_fractions`) and for unit cutting
   (:func:`check_units`), with the package's only defaults;
@@ -57,12 +58,14 @@ from ._units import (
     check_units,
     prepare_units,
 )
+from .tokenizers import FIELD_SEPARATOR
 
 __all__ = [
     "DEFAULT_FRACTIONS",
     "DEFAULT_SALT",
     "DEFAULT_TRAIN_SAMPLE",
     "DEFAULT_UNIT_MODE",
+    "FIELD_SEPARATOR",
     "FORMAT",
     "INT32_LIMIT",
     "MAX_VOCAB_SIZE",

@@ -34,6 +34,9 @@ class Document:
     #: are then named ``file:line`` by their own line
     file: str | None = None
     first_line: int | None = None
+    #: exact negative log-likelihood of the document in nats (a generator's own truth, end
+    #: marker included), when the source knows it; it becomes the unit's floor
+    nll: float | None = None
 
     @property
     def unit_id(self) -> str:

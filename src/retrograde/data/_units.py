@@ -149,9 +149,14 @@ def _utf8(text: str) -> bytes:
     return text.encode("utf-8", "surrogateescape")
 
 
+def _learned(tokenizer: Tokenizer | None) -> bool:
+    """A tokenizer whose pieces are only known once fitted (``bpe``, ``unigram``)."""
+    return bool(getattr(tokenizer, "learned", False))
+
+
 def _piece_sequence(tokenizer: Tokenizer, text: str) -> Sequence[Any]:
     """A sliceable sequence with one item per token, cheap for the built-in tokenizers."""
-    if isinstance(tokenizer, CharTokenizer):
+    if isinstance(tokenizer, CharTokenizer) or _learned(tokenizer):  # learned: characters
         return text  # a str is a sequence of one-character pieces
     if isinstance(tokenizer, ByteTokenizer):
         return _utf8(text)  # bytes are a sequence of byte values
@@ -316,17 +321,25 @@ def _encode(
     keys: list[bytes],
     tokenizer: Tokenizer | None,
     vocab_size: int | None,
-) -> tuple[np.ndarray, int, np.ndarray | None]:
-    """(tokens, vocab_size, n_bytes): the vocabulary is fitted on the training units only."""
+) -> tuple[np.ndarray, np.ndarray, int, np.ndarray | None]:
+    """(tokens, unit lengths, vocab_size, n_bytes): the vocabulary is fitted on the training
+    units only."""
     if tokenizer is None:
         tokens = np.concatenate(contents)
-        return tokens, max(int(tokens.max()) + 1, vocab_size or 0), None
+        lengths = np.fromiter((len(c) for c in contents), np.int64, len(contents))
+        return tokens, lengths, max(int(tokens.max()) + 1, vocab_size or 0), None
     tokenizer.fit(c for c, split in zip(contents, split_of_unit, strict=True) if split == 0)
+    n_bytes = np.fromiter((len(k) for k in keys), np.int64, len(keys))
+    if _learned(tokenizer):
+        # A learned tokenizer merges characters: each unit is encoded on its own.
+        encoded = tokenizer.encode_many(contents)  # type: ignore[attr-defined]
+        lengths = np.fromiter((len(e) for e in encoded), np.int64, len(encoded))
+        return np.concatenate(encoded), lengths, tokenizer.vocab_size, n_bytes
     # Pieces encode independently (one id each), so one call on the concatenation
     # replaces a call per unit: (n_tokens,) int32.
     tokens = tokenizer.encode_pieces(_concatenate(contents))
-    n_bytes = np.fromiter((len(k) for k in keys), np.int64, len(keys))
-    return tokens, tokenizer.vocab_size, n_bytes
+    lengths = np.fromiter((len(c) for c in contents), np.int64, len(contents))
+    return tokens, lengths, tokenizer.vocab_size, n_bytes
 
 
 def prepare_units(
@@ -382,6 +395,12 @@ def prepare_units(
     """
     mode, window, remainder = check_units(mode, window, remainder)
     check_fractions(fractions)
+    if mode == "window" and _learned(tokenizer):
+        raise ConfigError(
+            f"units: mode 'window' cuts windows of tokens, which a learned tokenizer "
+            f"({tokenizer.name if tokenizer else ''}) knows only after fitting; use mode "
+            "'line' or 'document'"
+        )
     cut = _cut(documents, tokenizer, mode, window or 0, remainder, with_ids=bool(test_ids))
     if not cut.contents:
         raise DataError(
@@ -400,8 +419,9 @@ def prepare_units(
     ]
     split_of_unit = split_with_given(keys, np.asarray(cut.given), fractions, salt)
     counts = Counter(keys)
-    tokens, vocab_size, n_bytes = _encode(contents, split_of_unit, keys, tokenizer, vocab_size)
-    lengths = np.fromiter((len(c) for c in contents), np.int64, len(contents))
+    tokens, lengths, vocab_size, n_bytes = _encode(
+        contents, split_of_unit, keys, tokenizer, vocab_size
+    )
     corpus = SequenceSet(
         tokens,
         np.concatenate([[0], np.cumsum(lengths)]),

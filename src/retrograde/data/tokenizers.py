@@ -45,9 +45,21 @@ from ..registry import Registry
 from ..validation import check_int
 from ._files import atomic_write_json
 
-__all__ = ["UNKNOWN_ID", "Tokenizer", "load", "make", "names", "registry", "token_texts"]
+__all__ = [
+    "FIELD_SEPARATOR",
+    "UNKNOWN_ID",
+    "Tokenizer",
+    "load",
+    "make",
+    "names",
+    "registry",
+    "token_texts",
+]
 
 UNKNOWN_ID = 0
+#: the character between the fields of a record (U+001F, the ASCII "unit separator"); every
+#: tokenizer makes it a token of its own, so each field boundary is one token
+FIELD_SEPARATOR = "\x1f"
 TOKENIZER_FORMAT = "retrograde.tokenizer/1"
 #: what ``decode`` writes for the unknown token
 UNKNOWN_TEXT = "\ufffd"
@@ -314,8 +326,9 @@ class CharTokenizer(Tokenizer):
         return len(self._fitted()) + 1
 
 
-#: letters, digits, whitespace, then any single other character: covers every character
-WORD_PATTERN = re.compile(r"[^\W\d_]+|\d+|\s+|_|[^\w\s]")
+#: letters, digits, whitespace, then any single other character: covers every character.
+#: The field separator U+001F counts as whitespace for ``\s``; it is kept a piece of its own.
+WORD_PATTERN = re.compile(r"[^\W\d_]+|\d+|[^\S\x1f]+|_|[^\w\s]|\x1f")
 
 
 @registry.register("words")
@@ -373,3 +386,8 @@ class WordTokenizer(Tokenizer):
     @property
     def vocab_size(self) -> int:
         return len(self._fitted_vocab()) + 1
+
+
+# The learned tokenizers (``bpe``, ``unigram``) register themselves in this registry; they
+# live in their own module, which imports this one, so they are loaded last.
+from . import _learned  # noqa: E402, F401

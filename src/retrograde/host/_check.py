@@ -94,6 +94,7 @@ def round_trip_orders(root: Path, config: RetrogradeConfig) -> dict[str, dict[st
     BijectionError
         The first order that fails on a unit, naming the order, the unit and an excerpt.
     """
+    from ..stages.reorder import bind_order
     from ..stages.units import configured_units
 
     study = config.study
@@ -102,8 +103,9 @@ def round_trip_orders(root: Path, config: RetrogradeConfig) -> dict[str, dict[st
     for source_name, spec in study.sources.items():
         made = configured_units(source_name, spec, root)
         splits = made.splits
-        for order_name, order in built.items():
+        for order_name, unbound in built.items():
             where = f"study.orders.{order_name} on source {source_name!r}"
+            order = bind_order(unbound, {"source": source_name, **made.info}, order_name)
             order = order.with_tokenizer(made.tokenizer, where=where)
             for split in SPLITS:
                 try:

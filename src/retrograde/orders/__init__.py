@@ -5,7 +5,8 @@ class of your own); ``names()`` lists the registered ones; :func:`verify_bijecti
 round-trip check every order passes on the real data before it is used. Built-ins:
 ``forward`` (alias ``identity``), ``reverse``, ``block_reverse(size)``, ``stride(step)``,
 ``rotate(shift)``, ``permutation(seed)``, ``segment_reverse(separators)`` and
-``within_segment_reverse(separators)`` (see :mod:`retrograde.orders._builtin`).
+``within_segment_reverse(separators)``, and ``fields(fields, reverse)`` for records sources
+(permute whole fields, reverse inside some; see ``docs/guide.md``).
 
 To add a built-in order, write its class in ``_builtin.py`` and list it in
 ``BUILTIN_ORDERS``; an order of your own subclasses :class:`Order` and is named by a dotted
@@ -36,9 +37,11 @@ from ._builtin import (
     WithinSegmentReverse,
 )
 from ._check import verify_bijection
+from ._fields import Fields
 
 __all__ = [
     "BlockReverse",
+    "Fields",
     "Forward",
     "Order",
     "Permutation",
@@ -55,7 +58,8 @@ __all__ = [
 ]
 
 registry: Registry[Order] = Registry("order", "retrograde.orders", Order)
-for _order in BUILTIN_ORDERS:
+_ORDERS: tuple[type[Order], ...] = (*BUILTIN_ORDERS, Fields)
+for _order in _ORDERS:
     registry.register(_order.name)(_order)
 registry.register("identity")(Forward)
 

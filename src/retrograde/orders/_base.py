@@ -8,6 +8,7 @@ output alone (``invert``). The core methods work on a whole :class:`SequenceSet`
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from typing import Any, ClassVar
 
 import numpy as np
@@ -74,6 +75,15 @@ class Order:
     def __repr__(self) -> str:
         args = ", ".join(f"{key}={value!r}" for key, value in sorted(self._params.items()))
         return f"{self.name or type(self).__name__}({args})"
+
+    def for_source(self, info: Mapping[str, Any]) -> Order:
+        """This order for one source, given its units' ``info.json`` (as a dict).
+
+        Most orders need nothing from the source and return ``self``; an order that needs
+        the source's facts (the ``fields`` order: field names and separator id) returns a
+        copy with them filled in. The reorder stage and ``retrograde check`` call it.
+        """
+        return self
 
     # ----------------------------------------------------------- set level (core)
     def positions_set(self, units: SequenceSet) -> np.ndarray:

@@ -242,29 +242,53 @@ def markdown_table(table: Table, level: float | None = None) -> str:
     return "\n".join(_markdown_source(s, models, level) for s, models in table.items())
 
 
-def _markdown_spans(spans: Mapping[str, Mapping[str, Any]]) -> str:
+def _signed(value: Any) -> str:
+    return "–" if value is None else format(value, "+.3f")
+
+
+def _markdown_spans(spans: Mapping[str, Mapping[str, Any]], level: float | None = None) -> str:
     lines = []
+    interval = f"{round(100 * (level or 0.95))}% interval"
     for source, models in spans.items():
         lines += [
             f"### Spans of `{source}`",
             "",
-            "| model | order | span | bits/token | perplexity | bits/unit |",
-            "|---|---|---|---|---|---|",
+            f"| model | order | span | bits/unit | Δ bits/unit vs reference ({interval}) "
+            "| bits/token | perplexity |",
+            "|---|---|---|---|---|---|---|",
         ]
         for model, by_order in models.items():
             for order, by_span in by_order.items():
                 for span, value in by_span.items():
+                    difference = _signed(value.get("diff_bits_per_unit"))
+                    if "diff_bits_per_unit" not in value:
+                        difference = "reference"
+                    elif value.get("diff_bits_per_unit_low") is not None:
+                        difference += (
+                            f" [{_signed(value['diff_bits_per_unit_low'])}, "
+                            f"{_signed(value['diff_bits_per_unit_high'])}]"
+                        )
                     cells = [
                         f"`{model}`",
                         f"`{order}`",
                         f"`{span}`",
+                        _number(value.get("bits_per_unit"), ".3f"),
+                        difference,
                         _number(value.get("bits_per_token"), ".4f"),
                         _number(value.get("perplexity"), ".3f"),
-                        _number(value.get("bits_per_unit"), ".2f"),
                     ]
                     lines.append("| " + " | ".join(cells) + " |")
         lines.append("")
     return "\n".join(lines)
+
+
+SPANS_TEXT = (
+    "Each span's loss in bits per test unit (natural-order positions, whatever order the "
+    "model read them in; seed-averaged), its difference to the same span in the reference "
+    "order, and a bootstrap interval of that difference over test units (test-set sampling "
+    "only, not training randomness). A span whose difference interval lies above 0 became "
+    "harder in that order."
+)
 
 
 #: ``cells.csv`` columns: one row per fit cell (source, model, order, seed)
@@ -366,7 +390,7 @@ def render_report(
         markdown_table(table, level),
     ]
     if spans:
-        parts += ["## Loss per span", "", _markdown_spans(spans)]
+        parts += ["## Loss per span", "", SPANS_TEXT, "", _markdown_spans(spans, level)]
     parts += [
         "## Data and budget",
         "",

@@ -458,6 +458,79 @@ def sweep_figure(
     return figure
 
 
+# ---------------------------------------------------------------------- spans
+
+
+def _span_panels(spans: Mapping[str, Any]) -> list[tuple[str, str, Any]]:
+    """(source, model, breakdown) of every breakdown with differences to the reference."""
+    return [
+        (source, model, breakdown)
+        for source, models in spans.items()
+        for model, breakdown in models.items()
+        if any("diff_bits_per_unit" in v for by in breakdown.values() for v in by.values())
+    ]
+
+
+def span_figure(spans: Mapping[str, Any], level: float | None = None) -> Figure:
+    """One panel per (source, model): each span's loss difference to the reference order,
+    in bits per unit, with its bootstrap interval; one series per order."""
+    panels = _span_panels(spans)
+    figure, axes = _grid(len(panels), height=3.8)
+    handles: dict[str, Any] = {}
+    for ax, (source, model, breakdown) in zip(axes, panels, strict=True):
+        tested = {
+            order: by_span
+            for order, by_span in breakdown.items()
+            if any("diff_bits_per_unit" in v for v in by_span.values())
+        }
+        reference = next((o for o in breakdown if o not in tested), "reference order")
+        names = list(dict.fromkeys(name for by_span in tested.values() for name in by_span))
+        offsets = _offsets(len(tested))
+        for index, (order, by_span) in enumerate(tested.items()):
+            rows = [(names.index(n), v) for n, v in by_span.items() if "diff_bits_per_unit" in v]
+            xs = [x + offsets[index] for x, _ in rows]
+            ys = [v["diff_bits_per_unit"] for _, v in rows]
+            style = _style(index)
+            container = ax.errorbar(
+                xs,
+                ys,
+                yerr=[
+                    [y - v["diff_bits_per_unit_low"] for y, (_, v) in zip(ys, rows, strict=True)],
+                    [v["diff_bits_per_unit_high"] - y for y, (_, v) in zip(ys, rows, strict=True)],
+                ],
+                capsize=3,
+                marker=style["marker"],
+                color=style["color"],
+                linestyle="none",
+            )
+            handles.setdefault(order, container)
+        for boundary in range(1, len(names)):
+            ax.axvline(boundary - 0.5, color="0.85", linewidth=0.8, zorder=0)
+        ax.axhline(0.0, color="grey", linewidth=0.8)
+        ax.set_xlim(-0.5, max(len(names), 1) - 0.5)
+        ax.set_xticks(range(len(names)), names)
+        ax.set_xlabel("span (natural-order positions)")
+        ax.set_ylabel(f"bits per unit minus {reference}")
+        ax.set_title(f"{source} / {model}")
+    if handles:
+        figure.legend(
+            list(handles.values()),
+            list(handles),
+            title="order",
+            loc="outside upper center",
+            ncols=min(len(handles), 6),
+            fontsize="small",
+        )
+    shown = "95%" if level is None else f"{level:.0%}"
+    _caption(
+        figure,
+        "mean over test units of the span's loss in this order minus in the reference order; "
+        f"bars: {shown} bootstrap intervals over test units (seed-averaged losses: training "
+        "randomness not included; not adjusted for the many spans)",
+    )
+    return figure
+
+
 # ---------------------------------------------------------------------- files
 
 
@@ -474,6 +547,7 @@ def write_plots(
     curves: Mapping[str, Any],
     sweeps: Mapping[str, Mapping[str, Any]],
     level: float | None = None,
+    spans: Mapping[str, Any] | None = None,
 ) -> list[str]:
     """Write the CSV and PNG files into ``folder``; return the PNG file names, in order."""
     written: list[str] = []
@@ -505,6 +579,8 @@ def write_plots(
         ):
             if _profile_panels(profiles, mode):
                 _save(profile_figure(profiles, mode), folder, name, written)
+    if spans and _span_panels(spans):
+        _save(span_figure(spans, level), folder, "spans.png", written)
     for name, sweep in sweeps.items():
         fields = ["parameter", "value", "model", "order", "gap_pct", "gap_pct_low", "gap_pct_high"]
         (folder / f"sweep_{name}.csv").write_text(csv_text(sweep_rows(sweep, table), fields))

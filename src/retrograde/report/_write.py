@@ -214,7 +214,13 @@ def write_all(
     shutil.rmtree(staging, ignore_errors=True)
     (staging / "plots").mkdir(parents=True)
     figures = _plots.write_plots(
-        staging / "plots", table=table, profiles=profiles, curves=curves, sweeps=sweeps, level=level
+        staging / "plots",
+        table=table,
+        profiles=profiles,
+        curves=curves,
+        sweeps=sweeps,
+        level=level,
+        spans=spans,
     )
     atomic_write_json(staging / "metrics.json", table)
     buffer = io.StringIO()

@@ -1,6 +1,6 @@
 """Sources: where units come from. ``make(name, **params)``, ``names()``, ``registry``.
 
-File sources (``text``, ``jsonl``, ``fasta``, ``tokens``, and the invented ``demo`` corpus)
+File sources (``text``, ``jsonl``, ``records``, ``fasta``, ``tokens``, and the invented ``demo`` corpus)
 stream :class:`~retrograde.data.Document` records; calibration sources (``markov``,
 ``linear_gf2``, ``automaton``) generate fixed-length units and give each unit's exact
 negative log-likelihood. :func:`source_units` makes the train / valid / test units of any
@@ -30,17 +30,20 @@ from ._base import (
     Source,
     find_lone_carriage_return,
 )
-from ._units import SourceUnits, source_units
+from ._units import CODE_POINTS, SourceUnits, character_units, field_span_ids, source_units
 from .automaton import AutomatonSource
 from .demo import DemoSource
 from .fasta import FastaSource
 from .jsonl import JsonlSource
 from .linear_gf2 import LinearGF2Source
 from .markov import MarkovSource
+from .records import SEPARATOR_SPAN, RecordsSource
 from .text import TextSource
 from .tokens import TokensSource
 
 __all__ = [
+    "CODE_POINTS",
+    "SEPARATOR_SPAN",
     "AutomatonSource",
     "CalibrationSource",
     "DemoSource",
@@ -50,10 +53,13 @@ __all__ = [
     "JsonlSource",
     "LinearGF2Source",
     "MarkovSource",
+    "RecordsSource",
     "Source",
     "SourceUnits",
     "TextSource",
     "TokensSource",
+    "character_units",
+    "field_span_ids",
     "find_lone_carriage_return",
     "make",
     "names",
@@ -64,6 +70,7 @@ __all__ = [
 _BUILTIN: tuple[type[Source], ...] = (
     TextSource,
     JsonlSource,
+    RecordsSource,
     FastaSource,
     TokensSource,
     DemoSource,

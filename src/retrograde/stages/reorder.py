@@ -5,6 +5,13 @@
 ``data/NAME/orders/ORDER/{train,valid,test}/`` plus ``positions_test.npy`` (int64
 (n_test_tokens,): reordered flat index j holds natural flat index ``positions[j]``), which
 the table stage uses to map per-position losses back to the natural order.
+
+When the source's learned tokenizer has ``reorder: characters``, the units are code points:
+the order permutes characters (round trip verified on them), then the reordered text is
+tokenized, by the tokenizer fitted on the natural training text (``fit: shared``) or by one
+fitted here on this order's training text (``fit: per_order``), written as
+``tokenizer.json`` beside the splits. Token counts then differ between orders, so no
+``positions_test.npy`` is written (the table compares bits per byte).
 """
 
 from __future__ import annotations
@@ -15,6 +22,7 @@ if __name__ == "__main__":  # a command of a run: the run's stage server may run
     delegate("reorder")
 
 import argparse
+import json
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
@@ -24,9 +32,25 @@ import numpy as np
 from .. import orders
 from ..config import load_params, order_dir, units_dir
 from ..data import SPLITS, SequenceSet, atomic_dir, tokenizers
+from ..errors import DataError, RetrogradeError
 from . import run_stage
 
-__all__ = ["for_source", "main", "reorder_splits"]
+__all__ = ["bind_order", "main", "reorder_splits", "tokenize_characters", "with_vocabulary"]
+
+
+def bind_order(order: Any, info: Mapping[str, Any], order_name: str) -> Any:
+    """``order`` for the source whose units' ``info.json`` is ``info`` (see ``Order.for_source``).
+
+    An order that needs the source's facts (the ``fields`` order) gets them here; a
+    mismatch is one line naming the order's config key and the source.
+    """
+    for_source = getattr(order, "for_source", None)  # duck-typed custom orders have none
+    if for_source is None:
+        return order
+    try:
+        return for_source(info)
+    except RetrogradeError as exc:
+        raise exc.prefixed(f"study.orders.{order_name} on source {info.get('source')!r}") from exc
 
 
 def reorder_splits(
@@ -51,9 +75,9 @@ def reorder_splits(
     return reordered, positions_test
 
 
-def for_source(order: Any, units_folder: Path, order_name: str, source_name: str) -> Any:
+def with_vocabulary(order: Any, units_folder: Path, order_name: str, source_name: str) -> Any:
     """``order`` with separators given as text looked up in the source's fitted vocabulary."""
-    if not order.needs_tokenizer:
+    if not getattr(order, "needs_tokenizer", False):  # duck-typed custom orders have none
         return order
     path = units_folder / "tokenizer.json"
     tokenizer = tokenizers.load(path) if path.exists() else None
@@ -65,13 +89,61 @@ def _body(args: argparse.Namespace) -> None:
     wdir = Path(args.params).resolve()
     spec = load_params(wdir).study.orders[args.order]
     source_units = wdir / str(units_dir(args.source))
-    order = for_source(orders.make(spec.name, **spec.params), source_units, args.order, args.source)
+    info = json.loads((source_units / "info.json").read_text(encoding="utf-8"))
+    order = bind_order(orders.make(spec.name, **spec.params), info, args.order)
+    order = with_vocabulary(order, source_units, args.order, args.source)
     splits = {name: SequenceSet.load(source_units / name) for name in SPLITS}
     reordered, positions_test = reorder_splits(splits, order, order_name=args.order)
+    tokenizer = None
+    if info.get("reorder") == "characters":
+        tokenizer = tokenizers.load(source_units / "tokenizer.json")
+        reordered, tokenizer = tokenize_characters(
+            reordered, tokenizer, per_order=info.get("fit") == "per_order", order_name=args.order
+        )
     with atomic_dir(wdir / str(order_dir(args.source, args.order))) as tmp:
         for name, units in reordered.items():
             units.save(tmp / name)
-        np.save(tmp / "positions_test.npy", positions_test)
+        if tokenizer is None:
+            np.save(tmp / "positions_test.npy", positions_test)
+        else:  # tokens no longer match natural positions one to one: no positions
+            tokenizer.save(tmp / "tokenizer.json")
+
+
+def tokenize_characters(
+    splits: Mapping[str, SequenceSet], tokenizer: Any, *, per_order: bool, order_name: str
+) -> tuple[dict[str, SequenceSet], Any]:
+    """Reordered character units (code points) tokenized by a learned tokenizer.
+
+    ``per_order``: the tokenizer is refitted (same settings) on this order's training text
+    only; otherwise the one fitted on the natural training text is used. Every unit must
+    decode back to its text (the tokenizer is lossless), else a one-line error names it.
+    """
+    texts = {
+        name: [unit.astype("<u4").tobytes().decode("utf-32-le", "surrogatepass") for unit in units]
+        for name, units in splits.items()
+    }
+    if per_order:
+        tokenizer = tokenizers.make(tokenizer.name, **tokenizer.get_params())
+        tokenizer.fit(texts["train"])
+    out = {}
+    for name, units in splits.items():
+        encoded = tokenizer.encode_many(texts[name])
+        for index, (text, ids) in enumerate(zip(texts[name], encoded, strict=True)):
+            if tokenizer.decode(ids) != text:
+                raise DataError(
+                    f"order {order_name!r}: {name} unit {index} does not survive tokenization "
+                    f"(starts {text[:20]!r}); the text holds a character the {tokenizer.name} "
+                    "tokenizer cannot keep (U+2581); use reorder: tokens"
+                )
+        lengths = np.fromiter((len(e) for e in encoded), np.int64, len(encoded))
+        out[name] = SequenceSet(
+            np.concatenate(encoded) if encoded else np.zeros(0, np.int32),
+            np.concatenate([[0], np.cumsum(lengths)]).astype(np.int64),
+            vocab_size=tokenizer.vocab_size,
+            doc_ids=units.doc_ids,
+            n_bytes=units.n_bytes,
+        )
+    return out, tokenizer
 
 
 def _configure(parser: argparse.ArgumentParser) -> None:

@@ -39,6 +39,7 @@ from ..data import Ragged, SequenceSet, resolve_train_sample
 from ..errors import DataError
 from . import run_stage
 from .fit import training_units
+from .units import SPAN_IDS_FILE
 
 __all__ = ["collect", "main"]
 
@@ -197,22 +198,30 @@ def _data_hash(units: SequenceSet) -> str:
 
 def _order_losses(
     wdir: Path, where: tuple[str, str, str], cell_seeds: list[int], test: SequenceSet
-) -> tuple[np.ndarray, np.ndarray, Ragged, list[Any]]:
+) -> tuple[np.ndarray, np.ndarray, Ragged | None, list[Any]]:
     """One (source, model, order) over its seeds; ``cell_seeds[k]`` is the seed of the cell
     holding seed ``k``'s results (:func:`retrograde.config.fitted_seed`).
 
     Returns ``(unit_nll, end_nll, natural, curves)``: (n_seeds, n_units) nats per test unit,
     the end marker's share of them, the seed-averaged per-position losses in natural order
-    (end marker last), one curve a seed.
+    (end marker last; None when the order acted on characters before a learned tokenizer),
+    one curve a seed.
     """
     source, model, order = where
-    positions_path = wdir / str(order_dir(source, order)) / "positions_test.npy"
-    if not positions_path.is_file():
+    folder = wdir / str(order_dir(source, order))
+    positions_path = folder / "positions_test.npy"
+    positions = None
+    if (folder / "tokenizer.json").is_file():
+        # Orders acted on characters before tokenizing: the order's own test tokens, which
+        # do not map to natural positions one to one.
+        test = SequenceSet.load(folder / "test")
+    elif positions_path.is_file():
+        positions = np.load(positions_path, allow_pickle=False)
+    else:
         raise DataError(
             f"order {order!r} of source {source!r} was never written "
             f"({positions_path.name} missing); run `retrograde run`"
         )
-    positions = np.load(positions_path, allow_pickle=False)
     # Each unit has len + 1 scores (end marker last): offsets of the flat score arrays.
     score_offsets = np.concatenate([[0], np.cumsum(test.lengths + 1)]).astype(np.int64)
     unit_nll, end_nll, losses, curves = [], [], [], []
@@ -221,9 +230,10 @@ def _order_losses(
         logprobs = Ragged(values, score_offsets)
         unit_nll.append(stats.unit_nll(logprobs))
         end_nll.append(-values[score_offsets[1:] - 1])  # the last score of each unit
-        losses.append(stats.natural_order_losses(logprobs, positions, test).values)
+        if positions is not None:
+            losses.append(stats.natural_order_losses(logprobs, positions, test).values)
         curves.append(curve)
-    natural = Ragged(np.mean(losses, axis=0), score_offsets)
+    natural = Ragged(np.mean(losses, axis=0), score_offsets) if positions is not None else None
     return np.stack(unit_nll), np.stack(end_nll), natural, curves
 
 
@@ -258,7 +268,7 @@ def _model_results(
     floors: Any,
     replicates: dict[str, Any] | None = None,
     seed_rows: list[dict[str, Any]] | None = None,
-) -> tuple[dict[str, Any], dict[str, Ragged], dict[str, Any]]:
+) -> tuple[dict[str, Any], dict[str, Ragged | None], dict[str, Any]]:
     """One model on one source: (its table leaves, natural-order losses, curves) per order.
 
     ``replicates``, when given, receives what each order's interval was drawn from (for the
@@ -269,7 +279,7 @@ def _model_results(
     cell_seeds = [fitted_seed(study, model, seed) for seed in seeds]
     unit_nll: dict[str, np.ndarray] = {}
     end_nll: dict[str, np.ndarray] = {}
-    natural: dict[str, Ragged] = {}
+    natural: dict[str, Ragged | None] = {}
     curves: dict[str, Any] = {}
     for order in study.orders:
         where = (source, model, order)
@@ -296,7 +306,29 @@ def _model_results(
         seed_rows += _seed_rows(
             wdir, source, model, unit_nll, curves, seeds, study.reference_order, test, cell_seeds
         )
+    if any(losses is None for losses in natural.values()):
+        _per_character(wdir, source, leaves)
     return leaves, natural, curves
+
+
+def _per_character(wdir: Path, source: str, leaves: dict[str, dict[str, Any]]) -> None:
+    """Leaves of a source whose orders act on characters before a learned tokenizer.
+
+    Its units are characters, so :func:`stats.summarize_model` gave bits per character;
+    each order's own tokens give its ``bits_per_token`` (not comparable across orders).
+    """
+    for order, leaf in leaves.items():
+        own = SequenceSet.load(wdir / str(order_dir(source, order)) / "test")
+        bits = leaf["bits_per_token"] * leaf["tokens"]  # total bits, over characters
+        leaf["bits_per_character"] = leaf["bits_per_token"]
+        leaf["characters"] = leaf["tokens"]
+        n_tokens = max(int(len(own.tokens)), 1)
+        leaf["tokens"] = int(len(own.tokens))
+        leaf["bits_per_token"] = stats.rounded(bits / n_tokens)
+        if "floor_bits_per_token" in leaf:  # the same floor, spread over this order's tokens
+            floor_bits = leaf["floor_bits_per_token"] * leaf["characters"] / n_tokens
+            leaf["floor_bits_per_token"] = stats.rounded(floor_bits)
+            leaf["excess_bits_per_token"] = stats.rounded(bits / n_tokens - floor_bits)
 
 
 def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
@@ -324,12 +356,23 @@ def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
                 wdir, source, model, config, test, floors, draws, cells
             )
             table[source][model], curves[source][model] = leaves, model_curves
+            if info.get("reorder") == "characters":
+                continue  # no natural positions: no profile, no spans
+            mapped = {order: losses for order, losses in natural.items() if losses is not None}
             profiles[source][model] = stats.position_profile(
-                natural, reference_order=reference, n_buckets=stats_config.position_buckets
+                mapped, reference_order=reference, n_buckets=stats_config.position_buckets
             )
-            if info.get("spans"):
-                named = {k: (int(v[0]), int(v[1])) for k, v in info["spans"].items()}
-                spans.setdefault(source, {})[model] = stats.span_breakdown(natural, named)
+            named = _spans_of(folder, info)
+            if named:
+                spans.setdefault(source, {})[model] = stats.span_breakdown(
+                    mapped,
+                    named,
+                    reference_order=reference,
+                    doc_ids=test.doc_ids,
+                    level=stats_config.level,
+                    n_boot=stats_config.n_boot,
+                    seed=stats_config.seed,
+                )
     stats.adjust_holm(table, reference_order=reference)
     stats.simultaneous_intervals(table, replicates, reference_order=reference)
     flags = [
@@ -350,10 +393,39 @@ def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
             "test_units_sha256": data_hashes,
             "params": config.to_dict(),
         },
-        "warnings": _seed_warnings(study) + flags + _sweep_notes(study),
+        "warnings": _seed_warnings(study) + flags + _sweep_notes(study) + _unit_notes(wdir, study),
         "level": stats_config.level,
         "cells": cells,
     }
+
+
+def _unit_notes(wdir: Path, study: StudyConfig) -> list[str]:
+    """Which unit to compare, for sources whose orders act on characters before tokenizing."""
+    notes = []
+    for source in study.sources:
+        info = json.loads((wdir / str(units_dir(source)) / "info.json").read_text("utf-8"))
+        if info.get("reorder") == "characters":
+            fitted = (
+                "a tokenizer fitted on each order's own text"
+                if info.get("fit") == "per_order"
+                else "one tokenizer fitted on the natural text"
+            )
+            notes.append(
+                f"source {source!r}: orders act on characters, then {fitted} tokenizes, so "
+                "token counts differ between orders; compare bits per byte (or "
+                "bits_per_character in metrics.json) of the natural text, not bits per "
+                "token; gaps are ratios of total NLL and need no unit"
+            )
+    return notes
+
+
+def _spans_of(folder: Path, info: dict[str, Any]) -> dict[str, Any]:
+    """The named spans of a source's test units: per-unit masks from ``span_ids.npy``
+    (records sources), else the fixed ranges of ``info.json`` (calibration sources)."""
+    labels = folder / "test" / SPAN_IDS_FILE
+    if info.get("span_names") and labels.is_file():
+        return stats.span_masks(np.load(labels, allow_pickle=False), list(info["span_names"]))
+    return {k: (int(v[0]), int(v[1])) for k, v in (info.get("spans") or {}).items()}
 
 
 def _seed_warnings(study: StudyConfig) -> list[str]:

@@ -2,8 +2,11 @@
 
 ``python -m retrograde.stages.units --source NAME`` (wdir: the pipeline folder) reads
 ``study.sources.NAME`` from ``params.yaml`` and writes ``data/NAME/units/``: the three
-split folders, ``info.json``, and ``tokenizer.json`` (file sources) or ``floors.npy``
-(calibration sources: exact nats per test unit, end marker included). The units come from
+split folders, ``info.json``, and ``tokenizer.json`` (file sources) and ``floors.npy``
+(calibration sources, and records that carry their exact NLL: exact nats per test unit,
+end marker included). A source with per-unit spans (``records``) also writes
+``<split>/span_ids.npy`` ((n_tokens,) int16, the span of every natural-order token, an
+index into ``info.json``'s ``span_names``; -1 for none). The units come from
 :func:`retrograde.sources.source_units`, as ``retrograde check`` makes them.
 """
 
@@ -39,7 +42,10 @@ from ..data import (
 from ..errors import DataError, PluginError, RetrogradeError
 from . import run_stage
 
-__all__ = ["configured_units", "main"]
+__all__ = ["SPAN_IDS_FILE", "configured_units", "main"]
+
+#: the per-token span labels of a split, beside its tokens
+SPAN_IDS_FILE = "span_ids.npy"
 
 
 def configured_units(name: str, spec: SourceConfig, root: Path) -> Any:
@@ -115,13 +121,18 @@ def _body(args: argparse.Namespace) -> None:
     wdir = Path(args.params).resolve()
     spec = load_params(wdir).study.sources[args.source]
     made = configured_units(args.source, spec, (wdir / args.root).resolve())
-    kind = "file" if made.floors is None else "calibration"
+    from .. import sources
+
+    calibration = getattr(sources.registry.get(spec.name), "is_calibration", False)
+    kind = "calibration" if calibration else "file"
     info: dict[str, Any] = {"source": args.source, "kind": kind, "name": spec.name, **made.info}
     info["n_units"] = {name: len(units) for name, units in made.splits.items()}
     info["n_tokens"] = {name: int(len(units.tokens)) for name, units in made.splits.items()}
     with atomic_dir(wdir / str(units_dir(args.source))) as tmp:
         for split, units in made.splits.items():
             units.save(tmp / split)
+            if made.span_ids is not None:  # per-token span labels beside the tokens
+                np.save(tmp / split / SPAN_IDS_FILE, made.span_ids[split])
         atomic_write_json(tmp / "info.json", info)
         if made.floors is not None:
             np.save(tmp / "floors.npy", made.floors)

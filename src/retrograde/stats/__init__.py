@@ -14,7 +14,8 @@ every number written out goes through :func:`rounded`.
   decomposition), :func:`mean_squares`, :func:`satterthwaite_df`;
 - training: :func:`still_falling`, :func:`worse_than_baseline` (signs of an under-trained
   model);
-- profiles: :func:`position_profile`, :func:`span_breakdown`, :func:`segment_breakdown`;
+- profiles: :func:`position_profile`, :func:`span_breakdown` (with per-unit spans:
+  :func:`span_masks`), :func:`segment_breakdown`;
 - resampling kernels: :func:`bootstrap_totals`, :func:`sign_flip_pvalue`,
   :func:`bootstrap_pvalue`, :func:`holm`.
 """
@@ -44,7 +45,7 @@ from ._gaps import (
 )
 from ._intervals import GapInterval, gap_interval, mean_squares, satterthwaite_df
 from ._numbers import SIGNIFICANT_DIGITS, rounded
-from ._profiles import position_profile, segment_breakdown, span_breakdown
+from ._profiles import position_profile, segment_breakdown, span_breakdown, span_masks
 from ._scoring import bits_per_byte, bits_per_token, natural_order_losses, unit_nll
 from ._simultaneous import simultaneous_intervals
 from ._training import BASELINE_NGRAM_ORDER, STEEP_FALL, still_falling, worse_than_baseline
@@ -81,6 +82,7 @@ __all__ = [
     "sign_flip_pvalue",
     "simultaneous_intervals",
     "span_breakdown",
+    "span_masks",
     "still_falling",
     "summarize_model",
     "unit_nll",

@@ -17,10 +17,12 @@ import numpy as np
 
 from ..data import Ragged, SequenceSet
 from ..errors import DataError
-from ..validation import check_int
+from ..validation import check_float, check_int
+from ._bootstrap import resample_counts
+from ._gaps import MIN_DOCUMENTS_FOR_GROUPING
 from ._numbers import rounded
 
-__all__ = ["position_profile", "segment_breakdown", "span_breakdown"]
+__all__ = ["position_profile", "segment_breakdown", "span_breakdown", "span_masks"]
 
 _LN2 = math.log(2.0)
 
@@ -134,18 +136,69 @@ def position_profile(
     }
 
 
-def span_breakdown(
-    natural_losses: Mapping[str, Ragged], spans: Mapping[str, tuple[int, int]]
-) -> dict[str, dict[str, dict[str, Any]]]:
-    """Loss per named natural-order span, as bits per token and perplexity, for every order.
+Spans = Mapping[str, "tuple[int, int] | np.ndarray"]
 
-    ``spans[name] = (start, end)`` selects token positions ``start <= j < end`` of each unit
-    (clipped to the unit; the end marker is never in a span). Perplexity is ``2 ** bits``.
+
+def span_masks(span_ids: np.ndarray, names: list[str]) -> dict[str, np.ndarray]:
+    """Per-token span labels (``span_ids.npy`` of a split) as one boolean mask per span name.
+
+    Examples
+    --------
+    >>> masks = span_masks(np.array([0, 2, 1, 1, -1]), ["a", "b", "separators"])
+    >>> {name: mask.tolist() for name, mask in masks.items()}["b"]
+    [False, False, True, True, False]
+    """
+    labels = np.asarray(span_ids)
+    return {name: labels == k for k, name in enumerate(names)}
+
+
+def _token_mask(
+    span: tuple[int, int] | np.ndarray, name: str, positions: np.ndarray, length: np.ndarray
+) -> np.ndarray:
+    """(n_tokens,) bool: the natural-order tokens in ``span`` (a fixed range or a mask)."""
+    if isinstance(span, np.ndarray):
+        if span.shape != positions.shape:
+            raise DataError(
+                f"span {name!r}: its mask has {span.size} entries for {positions.size} test "
+                "tokens; span labels must come from the same test units"
+            )
+        return span.astype(bool)
+    start, end = int(span[0]), int(span[1])
+    if not 0 <= start <= end:
+        raise DataError(f"span {name!r}: ({start}, {end}) is not a range 0 <= start <= end")
+    return (positions >= start) & (positions < end) & (positions < length)
+
+
+def span_breakdown(
+    natural_losses: Mapping[str, Ragged],
+    spans: Spans,
+    *,
+    reference_order: str | None = None,
+    doc_ids: np.ndarray | None = None,
+    level: float = 0.95,
+    n_boot: int = 2000,
+    seed: int = 0,
+) -> dict[str, dict[str, dict[str, Any]]]:
+    """Loss per named natural-order span for every order, and its difference to the reference.
+
+    ``spans[name]`` is either a fixed range ``(start, end)`` of token positions
+    ``start <= j < end`` in every unit (clipped to the unit; calibration sources), or a
+    (n_tokens,) boolean mask over the natural-order test tokens, concatenated unit by unit
+    (per-unit spans such as the fields of a ``records`` source, see :func:`span_masks`).
+    The end marker is never in a span. Perplexity is ``2 ** bits_per_token``.
+
+    With ``reference_order``, every span of every other order also gets ``diff_bits_per_unit``:
+    the mean over test units of (the span's bits in this order minus in the reference
+    order), with a percentile bootstrap interval (``diff_bits_per_unit_low``/``_high``) that
+    resamples units (whole documents when ``doc_ids`` holds at least
+    ``MIN_DOCUMENTS_FOR_GROUPING`` of them), the same draws for every span and order. The
+    losses are seed-averaged, so the interval holds the test-set sampling only.
 
     Returns
     -------
     dict
-        ``{order: {span: {"bits_per_token", "perplexity", "bits_per_unit", "tokens"}}}``.
+        ``{order: {span: {"bits_per_token", "perplexity", "bits_per_unit", "tokens"[,
+        "diff_bits_per_unit", "diff_bits_per_unit_low", "diff_bits_per_unit_high"]}}}``.
 
     Examples
     --------
@@ -154,17 +207,31 @@ def span_breakdown(
     {'bits_per_token': 2.0, 'perplexity': 4.0, 'bits_per_unit': 2.0, 'tokens': 1}
     """
     orders, lengths = _check_same_units(natural_losses)
-    positions = natural_losses[orders[0]].positions()
-    token_length = np.repeat(lengths - 1, lengths)
+    if reference_order is not None and reference_order not in natural_losses:
+        raise DataError(f"reference order {reference_order!r} has no span losses")
+    first = natural_losses[orders[0]]
+    is_token = first.positions() < np.repeat(lengths - 1, lengths)  # drop end markers
+    positions = first.positions()[is_token]  # (n_tokens,) natural position in the unit
+    token_length = np.repeat(lengths - 1, lengths - 1)
+    unit_of_token = np.repeat(np.arange(len(lengths), dtype=np.int64), lengths - 1)
     n_units = len(lengths)
+    token_losses = {o: natural_losses[o].values[is_token] / _LN2 for o in orders}  # bits
+    masks = {name: _token_mask(span, name, positions, token_length) for name, span in spans.items()}
+    # (n_orders, n_spans, n_units) bits of each span in each unit.
+    per_unit = np.array(
+        [
+            [
+                np.bincount(unit_of_token[mask], weights=token_losses[o][mask], minlength=n_units)
+                for mask in masks.values()
+            ]
+            for o in orders
+        ]
+    ).reshape(len(orders), len(masks), n_units)
     result: dict[str, dict[str, dict[str, Any]]] = {order: {} for order in orders}
-    for name, (start, end) in spans.items():
-        if not 0 <= start <= end:
-            raise DataError(f"span {name!r}: ({start}, {end}) is not a range 0 <= start <= end")
-        inside = (positions >= start) & (positions < end) & (positions < token_length)
-        n_inside = int(inside.sum())
-        for order in orders:
-            bits = float(natural_losses[order].values[inside].sum()) / _LN2
+    for k, (name, mask) in enumerate(masks.items()):
+        n_inside = int(mask.sum())
+        for index, order in enumerate(orders):
+            bits = float(per_unit[index, k].sum())
             per_token = bits / n_inside if n_inside else float("nan")
             result[order][name] = {
                 "bits_per_token": rounded(per_token) if n_inside else None,
@@ -172,6 +239,38 @@ def span_breakdown(
                 "bits_per_unit": rounded(bits / max(n_units, 1)),
                 "tokens": n_inside,
             }
+    if reference_order is None or n_units == 0:
+        return result
+    level = check_float(
+        "stats 'span_breakdown'", "level", level, 0.0, 1.0, low_open=True, high_open=True
+    )
+    n_boot = check_int("stats 'span_breakdown'", "n_boot", n_boot, 10)
+    group, n_groups = np.arange(n_units), n_units
+    if doc_ids is not None:
+        _, document = np.unique(np.asarray(doc_ids), return_inverse=True)
+        if document.max() + 1 >= MIN_DOCUMENTS_FOR_GROUPING:
+            group, n_groups = document.ravel(), int(document.max()) + 1
+    differences = per_unit - per_unit[orders.index(reference_order)][None]  # (o, s, n_units)
+    flat = differences.reshape(-1, n_units)  # (n_orders * n_spans, n_units)
+    by_group = np.zeros((flat.shape[0], n_groups))
+    np.add.at(by_group.T, group, flat.T)
+    rng = np.random.default_rng(seed)
+    replicates = np.empty((n_boot, flat.shape[0]))
+    chunk = max(1, min(n_boot, 4_000_000 // max(n_groups, 1)))
+    for start in range(0, n_boot, chunk):
+        size = min(chunk, n_boot - start)
+        replicates[start : start + size] = resample_counts(n_groups, size, rng) @ by_group.T
+    replicates /= n_units  # mean over units of each resample
+    tail = (1.0 - level) / 2.0
+    lows, highs = np.quantile(replicates, [tail, 1.0 - tail], axis=0)
+    means = flat.mean(axis=1)
+    for row, (index, k) in enumerate(np.ndindex(len(orders), len(masks))):
+        if orders[index] == reference_order:
+            continue  # its difference to itself is 0 by definition
+        leaf = result[orders[index]][list(masks)[k]]
+        leaf["diff_bits_per_unit"] = rounded(means[row])
+        leaf["diff_bits_per_unit_low"] = rounded(lows[row])
+        leaf["diff_bits_per_unit_high"] = rounded(highs[row])
     return result
 
 
