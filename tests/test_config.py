@@ -78,6 +78,8 @@ def test_default_config_composes_into_the_documented_shape(host):
             "code": None,
             "seeds": None,
             "sources": None,
+            "train_fraction": 1.0,
+            "tune": None,
             "numerics_version": 2,
             "package_version": __version__,
             "trainer_sha256": None,

@@ -34,6 +34,7 @@ __all__ = [
     "StudyConfig",
     "SweepConfig",
     "TokenizerConfig",
+    "TuneConfig",
     "UnitsConfig",
     "check_keys",
     "check_required",
@@ -103,6 +104,21 @@ class OrderConfig:
 
 
 @dataclass
+class TuneConfig:
+    """``study.models.M.tune``: the settings every order of model ``M`` is tried with.
+
+    The settings are the grid of ``space`` when ``trials`` covers it, else a random sample
+    of ``trials`` distinct settings drawn with ``seed`` (``config.tune_settings``).
+    """
+
+    trials: int = 0
+    space: dict[str, list[Any]] = field(default_factory=dict)
+    seed: int = 0
+    #: the trial models it expanded into, name -> setting (``{param: value}``)
+    models: dict[str, dict[str, Any]] | None = _composed()
+
+
+@dataclass
 class ModelConfig:
     #: a registered family or a dotted path; required (no family is assumed)
     family: str
@@ -114,6 +130,11 @@ class ModelConfig:
     seeds: list[int] | None = None
     #: the sources this model is fitted on (names in ``study.sources``); all when null
     sources: list[str] | None = None
+    #: the share of the training units the fit uses: a nested subsample, seeded by the
+    #: cell's seed, the same units for every order (``data.nested_subsample``)
+    train_fraction: float = 1.0
+    #: a search space every order is tuned over (on validation loss); see TuneConfig
+    tune: TuneConfig | None = None
     numerics_version: int | None = _composed()
     package_version: str | None = _composed()
     #: a trainer outside the repository: the sha256 of its program and files
@@ -125,8 +146,13 @@ class SweepConfig:
     model: str = ""  # the base model (a key of study.models)
     parameter: str = ""  # a key of that model's params
     values: list[Any] = field(default_factory=list)
+    #: another sweep's name: this sweep then expands every model of that one (context x
+    #: data size), and each of its models remembers the other sweep's value
+    within: str | None = None
     #: the models the sweep expanded into, name -> value
     models: dict[str, Any] | None = _composed()
+    #: with ``within``: model name -> the value of the other sweep it was made from
+    groups: dict[str, Any] | None = _composed()
 
 
 @dataclass
@@ -137,6 +163,15 @@ class StudyConfig:
     seeds: list[int] = field(default_factory=lambda: [0, 1, 2])
     reference_order: str = "forward"
     sweeps: dict[str, SweepConfig] = field(default_factory=dict)
+    #: hold one budget equal across orders: ``epochs`` (no early stopping) or
+    #: ``train_tokens`` (torch families need params.token_budget); null holds nothing
+    equal_budget: str | None = None
+    #: tuned models: name -> its TuneConfig with the trial models it expanded into
+    tuning: dict[str, TuneConfig] | None = _composed()
+
+    def trial_models(self) -> set[str]:
+        """The models that exist only as tuning trials (not rows of the table)."""
+        return {t for tune in (self.tuning or {}).values() for t in (tune.models or {})}
 
     def seeds_of(self, model: str) -> list[int]:
         """The seeds ``model`` is fitted with (its own, else the study's)."""
@@ -273,7 +308,7 @@ def normalize(raw: dict[str, Any]) -> dict[str, Any]:
         return out
     for group, name_key, keep in (
         ("orders", "name", set()),
-        ("models", "family", {"code", "seeds", "sources"}),
+        ("models", "family", {"code", "seeds", "sources", "train_fraction", "tune"}),
         ("sources", "name", _SOURCE_KEYS),
     ):
         entries = study.get(group)

@@ -11,6 +11,7 @@ layer needs is imported from here (``from retrograde.data import SequenceSet``);
 - :func:`prepare_units` — cut, split by a salted content hash, fit the vocabulary on train;
 - the one rule for split fractions (:func:`check_fractions`) and for unit cutting
   (:func:`check_units`), with the package's only defaults;
+- nested subsamples of the training units for the data-size sweep (:func:`nested_subsample`);
 - atomic file writing (a temporary sibling, then a rename).
 """
 
@@ -29,6 +30,7 @@ from ._files import (
 )
 from ._sequences import FORMAT, INT32_LIMIT, MAX_VOCAB_SIZE, Ragged, SequenceSet, index_dtype
 from ._splits import DEFAULT_FRACTIONS, DEFAULT_SALT, SPLITS, assign_splits, check_fractions
+from ._subsample import nested_subsample, subsample_size
 from ._units import (
     DEFAULT_UNIT_MODE,
     REMAINDERS,
@@ -58,6 +60,8 @@ __all__ = [
     "atomic_write_json",
     "atomic_write_text",
     "check_fractions",
+    "nested_subsample",
+    "subsample_size",
     "check_units",
     "index_dtype",
     "open_for_writing",
