@@ -11,6 +11,8 @@ every number written out goes through :func:`rounded`.
   each row), :func:`below_floor`, the report's cautions;
 - training: :func:`still_falling`, :func:`worse_than_baseline` (signs of an under-trained
   model);
+- fairness: :func:`best_trials` (each order's tuning trial, by validation loss),
+  :func:`mean_budget`, :func:`unequal_budgets` (orders that consumed different budgets);
 - profiles: :func:`position_profile`, :func:`span_breakdown`, :func:`segment_breakdown`;
 - resampling kernels: :func:`bootstrap_totals`, :func:`sign_flip_pvalue`,
   :func:`bootstrap_pvalue`, :func:`holm`.
@@ -26,6 +28,14 @@ from ._bootstrap import (
     resample_counts,
     seed_weight_scale,
     sign_flip_pvalue,
+)
+from ._fairness import (
+    BUDGET_FIELDS,
+    BUDGET_TOLERANCE,
+    COMPARED_BUDGETS,
+    best_trials,
+    mean_budget,
+    unequal_budgets,
 )
 from ._gaps import (
     FLOOR_Z,
@@ -45,6 +55,9 @@ from ._training import BASELINE_NGRAM_ORDER, STEEP_FALL, still_falling, worse_th
 
 __all__ = [
     "BASELINE_NGRAM_ORDER",
+    "BUDGET_FIELDS",
+    "BUDGET_TOLERANCE",
+    "COMPARED_BUDGETS",
     "FLOOR_Z",
     "MIN_DOCUMENTS_FOR_GROUPING",
     "MIN_SEEDS_FOR_TRAINING_NOISE",
@@ -52,6 +65,7 @@ __all__ = [
     "STEEP_FALL",
     "adjust_holm",
     "below_floor",
+    "best_trials",
     "bits_per_byte",
     "bits_per_token",
     "bootstrap_pvalue",
@@ -59,6 +73,7 @@ __all__ = [
     "group_sums",
     "grouping_warning",
     "holm",
+    "mean_budget",
     "natural_order_losses",
     "position_profile",
     "resample_counts",
@@ -71,6 +86,7 @@ __all__ = [
     "span_breakdown",
     "still_falling",
     "summarize_model",
+    "unequal_budgets",
     "unit_nll",
     "worse_than_baseline",
 ]
