@@ -16,7 +16,7 @@ import pytest
 
 from retrograde import stats
 from retrograde.config import TuneConfig, compose, load_params, tune_settings
-from retrograde.data import nested_subsample
+from retrograde.data import SequenceSet, nested_subsample
 from retrograde.errors import ConfigError
 from retrograde.stages import fit as fit_stage
 from retrograde.stages import reorder as reorder_stage
@@ -277,3 +277,92 @@ def test_orders_whose_budgets_differ_by_more_than_5_percent_are_named():
     assert len(lines) == 1 and "train_tokens differing by 30%" in lines[0]
     equal = {"forward": {"train_tokens": 100}, "reverse": {"train_tokens": 104}}
     assert stats.unequal_budgets(equal) == {}
+
+
+# ------------------------------------------------------------------ data size, closed form
+K_STATES = 4  # the markov source's vocab_size
+LENGTH = 64  # its unit length
+FRACTIONS = [0.0625, 0.125, 0.25, 0.5, 1.0]
+
+
+def test_data_size_learning_curve_follows_the_closed_form():
+    """A bigram on a first-order Markov chain: excess over the floor = A + B / U_train.
+
+    Outside reference (a textbook second-order expansion, stated from memory): the maximum-
+    likelihood (and add-constant) estimate of a K-outcome distribution from n draws has
+    expected KL divergence (K - 1) / (2 n) + O(1/n^2) nats per prediction, because
+    KL(p || p_hat) ~ 1/2 sum_i (p_hat_i - p_i)^2 / p_i and E (p_hat_i - p_i)^2 =
+    p_i (1 - p_i) / n; for add-beta estimators see Braess & Sauer, "Bernstein polynomials
+    and learning theory", J. Approx. Theory 128 (2004). Summed over the bigram's contexts
+    (state s seen ~ pi_s * 64 U times, with K + 1 outcomes: the K states and the end marker;
+    the begin marker seen U times, with K outcomes) the excess per test token is B / U
+    with B = (K * K / 2 + (K - 1) / 2) / 64. A is what no bigram can learn: the end marker
+    after every 64th token, -(63 ln(63/64) + ln(1/64)) / 64 nats per token (the floor gives
+    the fixed length probability 1). Interpolated Kneser-Ney smoothing changes O(1/n^2)
+    terms. The fits go through the fit stage's core with ``train_fraction`` (nested
+    subsamples), 16 seeds a fraction so the chi-square spread of each fit averages out.
+    """
+    from retrograde import sources
+    from retrograde.config import ModelConfig
+
+    source = sources.make("markov", vocab_size=K_STATES, order=1, length=LENGTH, chain_seed=0)
+    units = source.generate(2400, seed=0)
+    train, valid, test = (
+        units.subset(np.arange(a, b)) for a, b in ((0, 1600), (0, 0), (1600, 2400))
+    )
+    floor, n_tokens = float(source.nll(test).sum()), len(test.tokens)
+    inverse_units, excess = [], []
+    for fraction in FRACTIONS:
+        spec = ModelConfig(family="ngram", params={"order": 2}, train_fraction=fraction)
+        nats = [
+            -fit_stage.fit_cell(spec, {"train": train, "valid": valid, "test": test}, seed=s)[
+                1
+            ].sum()
+            for s in range(16 if fraction < 1 else 1)  # every seed trains on all units at 1.0
+        ]
+        inverse_units.append(1 / round(fraction * len(train)))
+        excess.append((float(np.mean(nats)) - floor) / n_tokens)
+    slope, intercept = np.polyfit(inverse_units, excess, 1)
+    assert slope == pytest.approx((K_STATES * K_STATES / 2 + (K_STATES - 1) / 2) / LENGTH, rel=0.2)
+    end_marker = -((LENGTH - 1) * np.log((LENGTH - 1) / LENGTH) + np.log(1 / LENGTH)) / LENGTH
+    assert intercept == pytest.approx(end_marker, abs=5e-4)
+    assert excess == sorted(excess, reverse=True)  # more data, less excess
+
+
+@pytest.mark.slow
+def test_data_size_sweep_runs_nested_subsamples_and_draws_them_against_training_tokens(tmp_path):
+    root = tmp_path / "host"
+    with resources.as_file(resources.files("retrograde") / "conf") as conf:
+        shutil.copytree(conf, root / "conf" / "retrograde")
+    values = [0.0625, 0.25, 1.0]
+    wdir = run_grid(
+        root,
+        [
+            "source=[markov]",
+            "study=smoke",
+            "study.models.ngram.params.order=2",
+            f"+study.sweeps.data={{model: ngram, parameter: train_fraction, values: {values}}}",
+            "study.seeds=[0,1]",
+            "stats.n_boot=50",
+        ],
+    )
+    table = json.loads((wdir / "metrics.json").read_text())["markov"]
+    train = SequenceSet.load(wdir / "data/markov/units/train")
+    names = [f"ngram_train_fraction{str(v).replace('.', 'p')}" for v in values]
+    sweep = list(csv.DictReader(io.StringIO((wdir / "plots/sweep_data.csv").read_text())))
+    for value, name in zip(values, names, strict=True):
+        for order in ("forward", "reverse"):
+            leaf = table[name][order]
+            # a counting family reads its units once: tokens seen = subsample tokens + ends
+            subsets = [train.subset(nested_subsample(len(train), value, s)) for s in (0, 1)]
+            seen = np.mean([len(u.tokens) + len(u) for u in subsets])
+            assert leaf["budget"]["train_tokens"] == pytest.approx(seen)
+            drawn = [r for r in sweep if r["model"] == name and r["order"] == order]
+            assert float(drawn[0]["x"]) == pytest.approx(np.mean([len(u.tokens) for u in subsets]))
+    # sixteen times the data, less excess over the floor (about 0.002 bits, by the closed
+    # form of the test above)
+    for order in ("forward", "reverse"):
+        small, full = (
+            table[name][order]["excess_bits_per_token"] for name in (names[0], names[-1])
+        )
+        assert small - full > 0.001

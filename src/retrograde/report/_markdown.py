@@ -286,7 +286,9 @@ def markdown_budget(table: Table, cells: Sequence[Mapping[str, Any]]) -> str:
         ]
         for model, orders in models.items():
             for order in orders:
-                group = [c for c in mine if c["model"] == model and c["order"] == order]
+                # a tuned row's cells are its winning trial's in this order
+                fitted = orders[order].get("tuned_model", model)
+                group = [c for c in mine if c["model"] == fitted and c["order"] == order]
                 cells_text = [
                     f"`{model}`",
                     f"`{order}`",
