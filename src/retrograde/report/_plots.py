@@ -423,7 +423,7 @@ def sweep_figure(
         else:
             xs = [row["x"] + dodge * position for row in mine]
         style = _style(index + 1)
-        label = order if group is None else f"{order}, {sweep.get('group_parameter')}={group}"
+        label = order if group is None else f"{order} ({sweep.get('group_parameter')} {group})"
         ax.errorbar(
             xs,
             [row["gap_pct"] for row in mine],
