@@ -416,14 +416,15 @@ def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
 def _seed_warnings(study: StudyConfig) -> list[str]:
     """The report's caution about too few seeds, naming the models when not all share it."""
     few: dict[int, list[str]] = {}
-    for model in study.models:
+    rows = [m for m in study.models if m not in study.trial_models()]
+    for model in rows:
         n_seeds = len(study.seeds_of(model))
         if stats.seed_warning(n_seeds):
             few.setdefault(n_seeds, []).append(model)
     warnings = []
     for n_seeds, models in few.items():
         text = str(stats.seed_warning(n_seeds))
-        if len(models) < len(study.models):
+        if len(models) < len(rows):
             names = ", ".join(repr(m) for m in models)
             text = f"model{'s' if len(models) > 1 else ''} {names}: {text}"
         warnings.append(text)
