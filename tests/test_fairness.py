@@ -366,3 +366,33 @@ def test_data_size_sweep_runs_nested_subsamples_and_draws_them_against_training_
             table[name][order]["excess_bits_per_token"] for name in (names[0], names[-1])
         )
         assert small - full > 0.001
+
+
+def test_a_report_row_says_when_its_budget_differs_from_the_reference_orders():
+    from retrograde.report import render_report
+
+    def leaf(gap, tokens):
+        zero = gap == 0
+        return {
+            "bits_per_token": 2.0,
+            "gap_pct": gap,
+            "gap_pct_low": 0.0 if zero else gap - 1,
+            "gap_pct_high": 0.0 if zero else gap + 1,
+            **({} if zero else {"p_value_holm": 0.5}),
+            "budget": {"train_tokens": tokens, "steps": 10, "n_params": 7},
+        }
+
+    table = {
+        "s": {"m": {"forward": leaf(0.0, 100), "reverse": leaf(2.0, 130), "rot": leaf(1.0, 102)}}
+    }
+    cells = [
+        {"source": "s", "model": "m", "order": o, "train_tokens": t, "steps": 10, "n_params": 7}
+        for o, t in (("forward", 100), ("reverse", 130), ("rot", 102))
+    ]
+    text = render_report(table, spans={}, provenance={}, warnings=[], figures=[], cells=cells)
+    rows = {
+        line.split("|")[2].strip(): line for line in text.splitlines() if line.startswith("| `m`")
+    }
+    assert rows["`reverse`"].endswith("| train_tokens +30.0% **(>5%)** |")
+    assert rows["`rot`"].endswith("| train_tokens +2.0% |")
+    assert rows["`forward`"].endswith("| reference |")
