@@ -274,7 +274,7 @@ def test_orders_whose_budgets_differ_by_more_than_5_percent_are_named():
     }
     lines = table_stage._budget_flags(table, "forward")
     assert table["s"]["m"]["reverse"]["budget_unequal"] == ["train_tokens"]
-    assert len(lines) == 1 and "train_tokens differing by 30%" in lines[0]
+    assert len(lines) == 1 and "train_tokens by 30% (forward 100, reverse 130)" in lines[0]
     equal = {"forward": {"train_tokens": 100}, "reverse": {"train_tokens": 104}}
     assert stats.unequal_budgets(equal) == {}
 

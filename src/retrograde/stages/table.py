@@ -440,16 +440,19 @@ def _budget_flags(table: dict[str, Any], reference: str) -> list[str]:
             unequal = stats.unequal_budgets({o: leaf["budget"] for o, leaf in leaves.items()})
             for leaf in leaves.values():
                 leaf["budget_unequal"] = sorted(unequal)
-            for field, spread in unequal.items():
-                values = ", ".join(
-                    f"{order} {leaf['budget'][field]:,.0f}" for order, leaf in leaves.items()
-                )
-                lines.append(
-                    f"source {source!r}: model {model!r}: its orders consumed {field} differing "
-                    f"by {spread:.0%} (mean per fit: {values}), more than "
-                    f"{stats.BUDGET_TOLERANCE:.0%}; the gap mixes the order with the budget "
-                    "(hold one equal with study.equal_budget)"
-                )
+            if not unequal:
+                continue
+            differing = ", ".join(
+                f"{field} by {spread:.0%} ("
+                + ", ".join(f"{o} {leaf['budget'][field]:,.0f}" for o, leaf in leaves.items())
+                + ")"
+                for field, spread in unequal.items()
+            )
+            lines.append(
+                f"source {source!r}: model {model!r}: its orders consumed budgets differing by "
+                f"more than {stats.BUDGET_TOLERANCE:.0%}, {differing} (means per fit); the gap "
+                "mixes the order with the budget (hold one equal with study.equal_budget)"
+            )
     return lines
 
 
