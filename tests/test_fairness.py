@@ -399,3 +399,39 @@ def test_a_report_row_says_when_its_budget_differs_from_the_reference_orders():
     assert rows["`reverse`"].endswith("| train_tokens +30.0% **(>5%)** |")
     assert rows["`rot`"].endswith("| train_tokens +2.0% |")
     assert rows["`forward`"].endswith("| reference |")
+
+
+def test_a_sweep_within_another_draws_one_line_per_order_and_value_against_x():
+    from retrograde.report import _plots as plots
+
+    def leaf(gap):
+        zero = gap == 0
+        return {
+            "bits_per_token": 1.0,
+            "gap_pct": gap,
+            "gap_pct_low": gap - (0 if zero else 1),
+            "gap_pct_high": gap + (0 if zero else 1),
+            **({} if zero else {"p_value_holm": 0.01, "significant": True}),
+        }
+
+    models = {
+        f"m_w{w}_f{f}": {"forward": leaf(0.0), "reverse": leaf(w * f)}
+        for w in (2, 4)
+        for f in (1, 2)
+    }
+    sweep = {
+        "source": "s",
+        "parameter": "train_fraction",
+        "models": {name: float(name[-1]) / 2 for name in models},
+        "x": {name: 1000.0 * int(name[-1]) for name in models},
+        "x_label": "training tokens (mean over seeds)",
+        "groups": {name: int(name[3]) for name in models},
+        "group_parameter": "window",
+    }
+    rows = plots.sweep_rows(sweep, {"s": models})
+    assert {(r["group"], r["x"]) for r in rows} == {(w, 1000.0 * f) for w in (2, 4) for f in (1, 2)}
+    figure = plots.sweep_figure("data", sweep, {"s": models})
+    ax = figure.axes[0]
+    labels = [t.get_text() for t in ax.get_legend().get_texts()]
+    assert labels == ["reverse (window 2)", "reverse (window 4)"]
+    assert ax.get_xscale() == "log" and ax.get_xlabel() == "training tokens (mean over seeds)"

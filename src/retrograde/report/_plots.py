@@ -459,7 +459,9 @@ def sweep_figure(
     ax.set_ylabel(f"gap to {reference or 'reference order'} (%)")
     ax.set_title(f"sweep {name} on {sweep['source']}")
     if orders:
-        ax.legend(title="order", fontsize="small")
+        within = sweep.get("group_parameter")
+        title = "order" if within is None else f"order ({within}: the other sweep's value)"
+        ax.legend(title=title, fontsize="small")
     caption = _interval_caption(table, level)
     if sweep.get("x_label"):
         caption = f"{parameter} swept; x = training tokens of the subsample. " + caption
