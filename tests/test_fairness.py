@@ -160,6 +160,17 @@ def test_equal_epochs_switch_off_early_stopping(root):
         ),
         (["+study.equal_budget=flops"], "study.equal_budget='flops' is invalid"),
         (
+            ["+study.models.g={family: gru, params: {}}", "+study.equal_budget=train_tokens"],
+            "study.models.g.params.token_budget is not set",
+        ),
+        (
+            [
+                "+study.models.g={family: gru, params: {token_budget: 500}}",
+                "+study.equal_budget=epochs",
+            ],
+            "study.models.g.params.token_budget=500 ends training by tokens",
+        ),
+        (
             [
                 "+study.models.mlp={family: mlp, params: {epochs: 5, patience: 2}}",
                 "+study.equal_budget=epochs",
