@@ -446,3 +446,19 @@ def test_a_sweep_within_another_draws_one_line_per_order_and_value_against_x():
     labels = [t.get_text() for t in ax.get_legend().get_texts()]
     assert labels == ["reverse (window 2)", "reverse (window 4)"]
     assert ax.get_xscale() == "log" and ax.get_xlabel() == "training tokens (mean over seeds)"
+
+
+def test_docstring_examples_of_the_fairness_modules_run():
+    import doctest
+
+    import retrograde.config._tuning
+    import retrograde.data._subsample
+    import retrograde.stats._fairness
+
+    for module in (
+        retrograde.config._tuning,
+        retrograde.data._subsample,
+        retrograde.stats._fairness,
+    ):
+        failures, _ = doctest.testmod(module, optionflags=doctest.ELLIPSIS)
+        assert failures == 0, module.__name__
