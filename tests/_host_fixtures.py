@@ -121,19 +121,29 @@ def dvc_events(host: Path) -> dict[str, list[str]]:
 
 def lock_without_measured(lock: str) -> str:
     """``dvc.lock`` without the hashes of what holds measured times (a cell's budget.json,
-    the table's cells.csv and report.md): the cell folders (as outs, and as the table's
-    deps), cells.csv and report.md."""
+    the table's cells.csv, report.md and metrics.json's budgets): the cell folders (as
+    outs, and as the table's deps), cells.csv, report.md and metrics.json."""
     kept, skip = [], False
     for line in lock.splitlines():
         stripped = line.strip()
         if stripped.startswith("- path:"):
             path = stripped.split(":", 1)[1].strip()
-            skip = path.startswith("cells") or path == "report.md"
+            skip = path.startswith("cells") or path in ("report.md", "metrics.json")
         elif not stripped.startswith(("md5:", "size:", "nfiles:", "hash:")):
             skip = False
         if not (skip and stripped.startswith(("md5:", "size:", "nfiles:"))):
             kept.append(line)
     return "\n".join(kept)
+
+
+def metrics_without_times(metrics: str) -> str:
+    """``metrics.json`` text without the lines of the leaves' measured ``cpu_s``/``wall_s``
+    (each leaf's budget holds their mean over seeds: docs/statistics.md)."""
+    return "\n".join(
+        line
+        for line in metrics.splitlines()
+        if not line.strip().startswith(('"cpu_s"', '"wall_s"'))
+    )
 
 
 def report_without_measured(report: str) -> str:

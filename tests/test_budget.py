@@ -1,5 +1,5 @@
 """What each fit cost (budget.json), per-seed values (cells.csv) and the report's data and
-budget section; times never reach metrics.json."""
+budget section; every leaf of metrics.json holds the mean budget over its seeds."""
 
 from __future__ import annotations
 
@@ -14,7 +14,7 @@ import pytest
 
 from retrograde import families
 from retrograde.config import fitted_seed, load_params
-from retrograde.data import SequenceSet
+from retrograde.data import SequenceSet, resample_train
 from retrograde.stages import fit as fit_stage
 from retrograde.stages import reorder as reorder_stage
 from retrograde.stages import table as table_stage
@@ -68,7 +68,8 @@ def test_every_cell_records_its_budget_under_the_agreed_names(pipeline):
 
 
 def test_ngram_budget_is_one_pass_over_the_training_positions_and_its_stored_counts(pipeline):
-    train = SequenceSet.load(pipeline / "data/corpus/orders/forward/train")
+    # seed 0's half-sample of the training units (train_sample auto is half for an n-gram)
+    train = resample_train(SequenceSet.load(pipeline / "data/corpus/orders/forward/train"), 0)
     found = budget(pipeline, "ngram")
     # one counting pass over every token and every end marker, by hand
     assert found["train_tokens"] == len(train.tokens) + len(train)
@@ -136,14 +137,26 @@ def test_cells_csv_has_one_row_per_fit_with_per_seed_bits_gap_and_budget(pipelin
         assert row["wall_s"] == str(budget(pipeline, row["model"], row["order"], fitted)["wall_s"])
 
 
-def test_report_shows_test_sizes_and_budget_and_metrics_hold_no_times(pipeline):
+def test_report_shows_test_sizes_and_budget_and_every_leaf_its_mean_budget(pipeline):
     report = (pipeline / "report.md").read_text()
     test = SequenceSet.load(pipeline / "data/corpus/units/test")
     assert "## Data and budget" in report
     assert f"Test set: {len(test):,} units, {len(test.tokens):,} tokens" in report
     assert "| `mlp` | `forward` | 2 |" in report
-    text = (pipeline / "metrics.json").read_text()
-    assert "wall_s" not in text and "cpu_s" not in text
+    table = json.loads((pipeline / "metrics.json").read_text())
+    for model in ("ngram", "mlp"):
+        for order in ("forward", "reverse"):
+            leaf = table["corpus"][model][order]
+            seeds = [budget(pipeline, model, order, seed) for seed in (0, 1)]
+            assert set(leaf["budget"]) == set(BUDGET_FIELDS)
+            for field in BUDGET_FIELDS:
+                values = [b[field] for b in seeds]
+                if None in values:
+                    assert leaf["budget"][field] is None
+                else:  # the mean over seeds, by its definition
+                    assert leaf["budget"][field] == pytest.approx(np.mean(values), abs=1e-3)
+            # both orders train on the same positions for the same epochs: equal budgets
+            assert leaf["budget_unequal"] == []
 
 
 def test_the_table_is_byte_identical_when_regenerated_from_the_same_cells(pipeline):

@@ -88,6 +88,8 @@ def test_default_config_composes_into_the_documented_shape(host):
             # composed from auto: an n-gram has no randomness of its own, so the seed picks
             # half of the training units (changing how auto resolves reruns its cells)
             "train_sample": "half",
+            "train_fraction": 1.0,
+            "tune": None,
             "numerics_version": 2,
             "package_version": __version__,
             "trainer_sha256": None,
@@ -192,7 +194,7 @@ def test_a_context_sweep_holds_optimizer_steps_and_needs_the_step_budget(host):
     assert config.study.sweeps["ctx"].hold == "steps"  # said in params.yaml
     from retrograde.stages import table as table_stage
 
-    sweep = table_stage._sweeps(config.study)["ctx"]
+    sweep = table_stage._sweeps(config.study, host)["ctx"]
     assert sweep["held"] == "optimizer steps (step_budget=50)"  # the figure title says it
     assert any(
         "every value trained with the same optimizer steps" in line

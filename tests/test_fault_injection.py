@@ -12,7 +12,8 @@ Before the killed run, the host has the results of an earlier, complete run with
 seeds, and its corpus has grown since (so every stage has work to do); after the kill those results must still be there, whole (the old set, or once the
 next writer has recovered a complete staged set, the new one). Then an ordinary rerun
 must succeed and leave the same files as a run that was never interrupted, apart from
-what is measured (times in budget.json, cells.csv and the report's budget table).
+what is measured (times in budget.json, cells.csv, the budgets of metrics.json and the
+report's budget table).
 """
 
 from __future__ import annotations
@@ -123,8 +124,12 @@ def _measured_free(host: Path) -> dict[str, bytes | str]:
                 i for i, name in enumerate(lines[0].split(",")) if name not in ("cpu_s", "wall_s")
             ]
             files[rel] = "\n".join(",".join(line.split(",")[i] for i in keep) for line in lines)
-        elif rel == "report.md":  # the budget table's last two columns are times
-            files[rel] = re.sub(r"\| [0-9.–]+ \| [0-9.–]+ \|\n", "| t | t |\n", path.read_text())
+        elif rel == "report.md":  # the budget table's two time columns, before the last
+            files[rel] = re.sub(
+                r"\| [0-9.–]+ \| [0-9.–]+ \| ([^|\n]*) \|\n", r"| t | t | \1 |\n", path.read_text()
+            )
+        elif rel == "metrics.json":  # each leaf's budget holds the mean measured times
+            files[rel] = re.sub(r'"(cpu_s|wall_s)": [0-9.e+-]+', r'"\1": t', path.read_text())
         else:
             files[rel] = path.read_bytes()
     return files

@@ -7,7 +7,9 @@ turns the result into a :class:`RetrogradeConfig`:
 1. ``_target_`` entries become ``{name|family: path, params: {...}}`` (:func:`normalize`);
 2. every key is checked against the dataclass schemas; an unknown key fails with the key
    path, the allowed keys and a did-you-mean; OmegaConf checks the value types;
-3. context-length and capacity sweeps expand into named models (:func:`expand_sweeps`);
+3. context-length, capacity and data-size sweeps expand into named models
+   (:func:`expand_sweeps`), tuned models into their trial models (:func:`expand_tuning`),
+   and ``study.equal_budget`` switches off early stopping (:func:`apply_equal_budget`);
 4. every value passes its one rule (:mod:`._checks`), and every order, family, source and
    tokenizer is built once so its own parameter checks run before any work; entries get
    their full parameters and code versions, file sources their DVC dependencies
@@ -73,6 +75,7 @@ from ._schema import (
     SubsampleConfig,
     SweepConfig,
     TokenizerConfig,
+    TuneConfig,
     UnitsConfig,
     check_keys,
     check_required,
@@ -81,10 +84,19 @@ from ._schema import (
     register_configs,
     to_dict,
 )
+from ._tuning import (
+    EQUAL_BUDGETS,
+    TRAIN_FRACTION,
+    apply_equal_budget,
+    expand_tuning,
+    model_where,
+    tune_settings,
+)
 
 __all__ = [
     "CONF_DIR",
     "DVC_FILE",
+    "EQUAL_BUDGETS",
     "LOCK_FILE",
     "LOG_DIR",
     "METRICS_FILE",
@@ -102,11 +114,14 @@ __all__ = [
     "SourceConfig",
     "SplitConfig",
     "SubsampleConfig",
+    "TRAIN_FRACTION",
     "StatsConfig",
     "StudyConfig",
     "SweepConfig",
     "TokenizerConfig",
+    "TuneConfig",
     "UnitsConfig",
+    "apply_equal_budget",
     "cell_dir",
     "check_file_types",
     "check_keys",
@@ -121,6 +136,7 @@ __all__ = [
     "HOLDS",
     "check_sweep_budgets",
     "expand_sweeps",
+    "expand_tuning",
     "fit_cells",
     "fit_stage_name",
     "fitted_seed",
@@ -128,6 +144,7 @@ __all__ = [
     "grid_size",
     "ignores_seed",
     "load_params",
+    "model_where",
     "normalize",
     "order_dir",
     "params_digest",
@@ -138,6 +155,7 @@ __all__ = [
     "resolve_plugins",
     "resolved_params",
     "to_dict",
+    "tune_settings",
     "units_dir",
     "units_stage_name",
 ]
@@ -179,6 +197,8 @@ def compose(
     root = Path(root).resolve()
     config = parse(compose_raw(conf_dir or root / CONF_DIR, overrides))
     expand_sweeps(config.study)
+    expand_tuning(config.study)
+    apply_equal_budget(config.study)
     check_study(config.study)
     check_stats(config.stats)
     resolve_plugins(config.study, root)

@@ -47,6 +47,12 @@ def check_study(study: StudyConfig) -> None:
                     f"not a source{did_you_mean(source, study.sources)}; allowed: names from "
                     f"study.sources ({', '.join(study.sources)})"
                 )
+        fraction = model.train_fraction
+        if isinstance(fraction, bool) or not 0.0 < float(fraction) <= 1.0:
+            raise ConfigError(
+                f"{where}: train_fraction={fraction!r} is invalid; allowed: a number with "
+                "0 < value <= 1 (the share of the training units the fit uses)"
+            )
         if model.sources is not None and not model.sources:
             raise ConfigError(f"{where}: parameter sources=[] is invalid; allowed: null or names")
     for source in study.sources:

@@ -39,6 +39,7 @@ from ._schema import (
     TokenizerConfig,
     UnitsConfig,
 )
+from ._tuning import model_where
 
 __all__ = [
     "check_file_types",
@@ -118,7 +119,7 @@ def resolve_plugins(study: StudyConfig, root: Path) -> None:
     for name, order in study.orders.items():
         _resolve_order(f"study.orders.{name}", order)
     for name, model in study.models.items():
-        _resolve_model(f"study.models.{name}", model, root)
+        _resolve_model(model_where(study, name), model, root)
     for name, source in study.sources.items():
         _resolve_source(name, source, root)
     _check_text_parameters(study)

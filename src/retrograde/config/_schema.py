@@ -35,6 +35,7 @@ __all__ = [
     "SubsampleConfig",
     "SweepConfig",
     "TokenizerConfig",
+    "TuneConfig",
     "UnitsConfig",
     "check_keys",
     "check_required",
@@ -117,6 +118,21 @@ class OrderConfig:
 
 
 @dataclass
+class TuneConfig:
+    """``study.models.M.tune``: the settings every order of model ``M`` is tried with.
+
+    The settings are the grid of ``space`` when ``trials`` covers it, else a random sample
+    of ``trials`` distinct settings drawn with ``seed`` (``config.tune_settings``).
+    """
+
+    trials: int = 0
+    space: dict[str, list[Any]] = field(default_factory=dict)
+    seed: int = 0
+    #: the trial models it expanded into, name -> setting (``{param: value}``)
+    models: dict[str, dict[str, Any]] | None = _composed()
+
+
+@dataclass
 class ModelConfig:
     #: a registered family or a dotted path; required (no family is assumed)
     family: str
@@ -131,6 +147,12 @@ class ModelConfig:
     #: which training units each seed trains on: auto | none | half | bootstrap
     #: (docs/config.md); composing resolves ``auto`` to what the fit stage will do
     train_sample: str = "auto"
+    #: the share of the training units the fit uses: a nested subsample, seeded by the
+    #: cell's seed, the same units for every order (``data.nested_subsample``); the seed's
+    #: ``train_sample`` is then drawn from it
+    train_fraction: float = 1.0
+    #: a search space every order is tuned over (on validation loss); see TuneConfig
+    tune: TuneConfig | None = None
     numerics_version: int | None = _composed()
     package_version: str | None = _composed()
     #: a trainer outside the repository: the sha256 of its program and files
@@ -145,8 +167,13 @@ class SweepConfig:
     #: what every value trains with equally: ``steps`` (optimizer steps, the default of a
     #: context sweep), ``tokens`` (the model's token budget), or null (nothing is held)
     hold: str | None = None
+    #: another sweep's name: this sweep then expands every model of that one (context x
+    #: data size), and each of its models remembers the other sweep's value
+    within: str | None = None
     #: the models the sweep expanded into, name -> value
     models: dict[str, Any] | None = _composed()
+    #: with ``within``: model name -> the value of the other sweep it was made from
+    groups: dict[str, Any] | None = _composed()
 
 
 @dataclass
@@ -157,6 +184,15 @@ class StudyConfig:
     seeds: list[int] = field(default_factory=lambda: [0, 1, 2])
     reference_order: str = "forward"
     sweeps: dict[str, SweepConfig] = field(default_factory=dict)
+    #: hold one budget equal across orders: ``epochs`` (no early stopping) or
+    #: ``train_tokens`` (torch families need params.token_budget); null holds nothing
+    equal_budget: str | None = None
+    #: tuned models: name -> its TuneConfig with the trial models it expanded into
+    tuning: dict[str, TuneConfig] | None = _composed()
+
+    def trial_models(self) -> set[str]:
+        """The models that exist only as tuning trials (not rows of the table)."""
+        return {t for tune in (self.tuning or {}).values() for t in (tune.models or {})}
 
     def seeds_of(self, model: str) -> list[int]:
         """The seeds ``model`` is fitted with (its own, else the study's)."""
@@ -294,7 +330,11 @@ def normalize(raw: dict[str, Any]) -> dict[str, Any]:
         return out
     for group, name_key, keep in (
         ("orders", "name", set()),
-        ("models", "family", {"code", "seeds", "sources", "train_sample"}),
+        (
+            "models",
+            "family",
+            {"code", "seeds", "sources", "train_sample", "train_fraction", "tune"},
+        ),
         ("sources", "name", _SOURCE_KEYS),
     ):
         entries = study.get(group)

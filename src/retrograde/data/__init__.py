@@ -14,6 +14,7 @@ layer needs is imported from here (``from retrograde.data import SequenceSet``);
   (:func:`check_units`), with the package's only defaults;
 - which training units a seed trains on (:func:`resample_train`, :func:`resolve_train_sample`)
   for families with no randomness of their own;
+- nested subsamples of the training units for the data-size sweep (:func:`nested_subsample`);
 - atomic file writing (a temporary sibling, then a rename).
 """
 
@@ -41,6 +42,7 @@ from ._splits import (
     split_with_given,
     subsample,
 )
+from ._subsample import nested_subsample, subsample_size
 from ._train_sample import (
     DEFAULT_TRAIN_SAMPLE,
     MIN_DOCUMENT_GROUPS,
@@ -85,6 +87,8 @@ __all__ = [
     "atomic_write_json",
     "atomic_write_text",
     "check_fractions",
+    "nested_subsample",
+    "subsample_size",
     "check_units",
     "index_dtype",
     "open_for_writing",

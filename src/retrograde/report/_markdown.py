@@ -11,6 +11,7 @@ from pathlib import Path
 from typing import Any
 
 from .. import __version__
+from ._fairness import budget_vs_reference, markdown_tuning
 
 __all__ = [
     "CAUTIONS",
@@ -109,13 +110,28 @@ def is_reference_leaf(leaf: Mapping[str, Any]) -> bool:
 
 
 def table_rows(table: Table) -> list[dict[str, Any]]:
-    """One flat dict per cell: ``source``, ``model``, ``order`` and the leaf's fields."""
+    """One flat dict per cell: ``source``, ``model``, ``order`` and the leaf's fields.
+
+    A mapping field is spread into ``field.key`` columns (``budget.train_tokens``), a list
+    field joined with ``;`` (``budget_unequal``)."""
     return [
-        {"source": source, "model": model, "order": order, **leaf}
+        {"source": source, "model": model, "order": order, **_flat(leaf)}
         for source, models in table.items()
         for model, orders in models.items()
         for order, leaf in orders.items()
     ]
+
+
+def _flat(leaf: Mapping[str, Any]) -> dict[str, Any]:
+    out: dict[str, Any] = {}
+    for key, value in leaf.items():
+        if isinstance(value, Mapping):
+            out.update({f"{key}.{sub}": item for sub, item in value.items()})
+        elif isinstance(value, list):
+            out[key] = ";".join(str(item) for item in value)
+        else:
+            out[key] = value
+    return out
 
 
 def fields_present(rows: Sequence[Mapping[str, Any]]) -> list[str]:
@@ -301,6 +317,7 @@ CELL_FIELDS = (
     "gap_pct",
     "epochs",
     "last_valid_bits_per_token",
+    "valid_bits_per_token",
     "test_units",
     "test_tokens",
     "train_tokens",
@@ -343,12 +360,14 @@ def markdown_budget(table: Table, cells: Sequence[Mapping[str, Any]]) -> str:
             continue
         lines += [
             "| model | order | seeds | parameters | train tokens per fit | steps | "
-            "fit wall s (mean) | fit CPU s (mean) |",
-            "|---|---|---|---|---|---|---|---|",
+            "fit wall s (mean) | fit CPU s (mean) | budget vs reference order |",
+            "|---|---|---|---|---|---|---|---|---|",
         ]
         for model, orders in models.items():
             for order in orders:
-                group = [c for c in mine if c["model"] == model and c["order"] == order]
+                # a tuned row's cells are its winning trial's in this order
+                fitted = orders[order].get("tuned_model", model)
+                group = [c for c in mine if c["model"] == fitted and c["order"] == order]
                 cells_text = [
                     f"`{model}`",
                     f"`{order}`",
@@ -358,6 +377,7 @@ def markdown_budget(table: Table, cells: Sequence[Mapping[str, Any]]) -> str:
                     _count_text(_mean([c.get("steps") for c in group])),
                     _seconds_text(_mean([c.get("wall_s") for c in group])),
                     _seconds_text(_mean([c.get("cpu_s") for c in group])),
+                    budget_vs_reference(orders, order),
                 ]
                 lines.append("| " + " | ".join(cells_text) + " |")
         lines.append("")
@@ -396,12 +416,26 @@ def render_report(
         "",
         "Test units and tokens per source; per cell, averaged over its seeds: numbers the "
         "model learned, target positions trained on (end markers included), optimizer or "
-        "minibatch steps, and the time to fit and score. Per-seed values, times included, "
-        "are in `cells.csv`; times stay out of `metrics.json`, which is byte-identical for "
-        "the same config and data.",
+        "minibatch steps, the time to fit and score, and how the counted budgets compare "
+        "with the reference order's (beyond 5% the gap mixes the order with the budget). "
+        "Per-seed values are in `cells.csv`; each leaf of `metrics.json` holds the means "
+        "under `budget` (its times are measured, so they change when a cell is fitted "
+        "again).",
         "",
         markdown_budget(table, cells),
     ]
+    tuning = markdown_tuning(table)
+    if tuning:
+        parts += [
+            "## Tuning",
+            "",
+            "Each order of a tuned model was fitted with the same trials (settings of its "
+            "search space); each order's row uses the trial with the lowest validation loss "
+            "(mean over seeds; test units never choose). The gap of the shared setting is the "
+            "untuned model's, and the change is tuned minus shared, in percentage points.",
+            "",
+            tuning,
+        ]
     parts += ["## Cautions", ""] + [f"- {c}" for c in CAUTIONS] + [""]
     if figures:
         parts += ["## Figures", ""] + [f"![{Path(f).stem}]({f})" for f in figures] + [""]

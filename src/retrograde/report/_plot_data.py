@@ -94,13 +94,18 @@ def sweep_rows(sweep: Mapping[str, Any], table: Mapping[str, Any]) -> list[dict[
     """Long-form rows of one sweep: parameter, value, model, order, gap_pct, low, high.
 
     The swept parameter's name goes in its own column: it may itself be called ``order``
-    (an n-gram order), which must not collide with the order column.
+    (an n-gram order), which must not collide with the order column. ``x`` is what the
+    figure draws against: the sweep's ``x`` for the model (training tokens for a data-size
+    sweep) or else the value; ``group`` the value of the sweep it lies within, if any.
     """
     models = table[sweep["source"]]
+    xs, groups = sweep.get("x") or {}, sweep.get("groups") or {}
     return [
         {
             "parameter": sweep["parameter"],
             "value": value,
+            "x": xs.get(model, value),
+            "group": groups.get(model),
             "model": model,
             "order": order,
             "gap_pct": leaf["gap_pct"],

@@ -406,16 +406,24 @@ def sweep_figure(
     models = table[sweep["source"]]
     reference = _reference_of(models)
     orders = [o for o in dict.fromkeys(row["order"] for row in rows) if o != reference]
-    values = [row["value"] for row in rows]
+    groups = list(dict.fromkeys(row["group"] for row in rows))
+    series = [(group, order) for group in groups for order in orders]
+    values = [row["x"] for row in rows]
+    logarithmic = bool(sweep.get("x_label")) and bool(values) and min(values) > 0
     span = (max(values) - min(values)) if values else 0
     dodge = 0.02 * (span or 1)
-    for index, order in enumerate(orders):
-        mine = [row for row in rows if row["order"] == order]
+    for index, (group, order) in enumerate(series):
+        mine = [row for row in rows if row["order"] == order and row["group"] == group]
         leaves = [models[row["model"]][order] for row in mine]
         bounds = [_interval(leaf) for leaf in leaves]
-        shift = dodge * (index - (len(orders) - 1) / 2)
-        xs = [row["value"] + shift for row in mine]
+        position = index - (len(series) - 1) / 2
+        # dodged sideways: by a share of the axis, or by a factor on a logarithmic axis
+        if logarithmic:
+            xs = [row["x"] * 2 ** (0.04 * position) for row in mine]
+        else:
+            xs = [row["x"] + dodge * position for row in mine]
         style = _style(index + 1)
+        label = order if group is None else f"{order} ({sweep.get('group_parameter')} {group})"
         ax.errorbar(
             xs,
             [row["gap_pct"] for row in mine],
@@ -424,7 +432,7 @@ def sweep_figure(
                 [hi - r["gap_pct"] for r, (_, hi) in zip(mine, bounds, strict=True)],
             ],
             capsize=3,
-            label=order,
+            label=label,
             **style,
         )
         hollow = [
@@ -442,10 +450,12 @@ def sweep_figure(
                 label="_not significant",
                 zorder=3,
             )
+    if logarithmic:
+        ax.set_xscale("log", base=2)
     ax.axhline(0.0, color="grey", linewidth=0.8)
-    if values and all(float(v).is_integer() for v in values):
+    if values and not logarithmic and all(float(v).is_integer() for v in values):
         ax.xaxis.set_major_locator(MaxNLocator(integer=True))
-    ax.set_xlabel(f"{parameter} (swept value)")
+    ax.set_xlabel(sweep.get("x_label") or f"{parameter} (swept value)")
     ax.set_ylabel(f"gap to {reference or 'reference order'} (%)")
     held = sweep.get("held")
     ax.set_title(
@@ -453,8 +463,13 @@ def sweep_figure(
         fontsize="medium",
     )
     if orders:
-        ax.legend(title="order", fontsize="small")
-    _caption(figure, _interval_caption(table, level))
+        within = sweep.get("group_parameter")
+        title = "order" if within is None else f"order ({within}: the other sweep's value)"
+        ax.legend(title=title, fontsize="small")
+    caption = _interval_caption(table, level)
+    if sweep.get("x_label"):
+        caption = f"{parameter} swept; x = training tokens of the subsample. " + caption
+    _caption(figure, caption)
     return figure
 
 
@@ -582,7 +597,17 @@ def write_plots(
     if spans and _span_panels(spans):
         _save(span_figure(spans, level), folder, "spans.png", written)
     for name, sweep in sweeps.items():
-        fields = ["parameter", "value", "model", "order", "gap_pct", "gap_pct_low", "gap_pct_high"]
+        fields = [
+            "parameter",
+            "value",
+            "x",
+            "group",
+            "model",
+            "order",
+            "gap_pct",
+            "gap_pct_low",
+            "gap_pct_high",
+        ]
         (folder / f"sweep_{name}.csv").write_text(csv_text(sweep_rows(sweep, table), fields))
         _save(sweep_figure(name, sweep, table, level), folder, f"sweep_{name}.png", written)
     return written

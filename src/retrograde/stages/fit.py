@@ -13,7 +13,14 @@
   families), ``n_params`` (numbers learned), ``cpu_s`` and ``wall_s`` (fit, test scoring and
   the normalization probe, trainer processes included). Times differ between runs, so they
   stay out of ``metrics.json``; the table stage puts them in ``cells.csv`` and the report.
+- ``valid.json``        the fitted model's score on the validation units: ``nats``,
+  ``tokens``, ``units`` and ``bits_per_token`` (``null`` values without validation units);
+  the table stage picks a tuned model's best trial by it, never by the test units
 - ``fit.log``           what happened; on a crash it ends with the traceback
+
+A model with ``train_fraction`` f < 1 trains (and stops early) on a nested subsample of the
+training units drawn from the cell's seed (:func:`retrograde.data.nested_subsample`): the
+same units for every order, validation and test units unchanged.
 
 A crash becomes one line naming the cell and its ``fit.log`` (exit status 2).
 """
@@ -43,6 +50,7 @@ from ..data import (
     SequenceSet,
     atomic_write_bytes,
     atomic_write_json,
+    nested_subsample,
     open_for_writing,
     resample_train,
     resolve_train_sample,
@@ -50,7 +58,7 @@ from ..data import (
 from ..errors import FitError, RetrogradeError
 from . import run_stage
 
-__all__ = ["BUDGET_FIELDS", "cell_budget", "fit_cell", "main", "training_units"]
+__all__ = ["BUDGET_FIELDS", "cell_budget", "fit_cell", "main", "training_units", "valid_score"]
 
 #: the fields of ``budget.json``, in order
 BUDGET_FIELDS = ("train_tokens", "steps", "cpu_s", "wall_s", "n_params")
@@ -59,6 +67,20 @@ BUDGET_FIELDS = ("train_tokens", "steps", "cpu_s", "wall_s", "n_params")
 def _plain(value: Any) -> Any:
     """A numpy scalar as the Python number it holds; anything else unchanged."""
     return value.item() if isinstance(value, np.generic) else value
+
+
+def valid_score(model: Any, valid: SequenceSet) -> dict[str, Any]:
+    """``valid.json``: the fitted model's validation nats, tokens, units and bits per token."""
+    if not len(valid):
+        return {"nats": None, "tokens": 0, "units": 0, "bits_per_token": None}
+    nats = -float(np.sum(model.logprobs(valid).values))
+    tokens = int(len(valid.tokens))
+    return {
+        "nats": nats,
+        "tokens": tokens,
+        "units": len(valid),
+        "bits_per_token": nats / float(np.log(2)) / max(tokens, 1),
+    }
 
 
 def fit_cell(
@@ -85,10 +107,13 @@ def fit_cell(
     model = families.make(model_spec.family, **model_spec.params)
     train, valid, test = splits["train"], splits["valid"], splits["test"]
     note(f"fit {model_spec.family} {model_spec.params} seed={seed}")
+    total = len(train)
     scheme = resolve_train_sample(model_spec.train_sample, model)
-    if scheme != "none":
-        note(f"train sample: {scheme} of {len(train)} units chosen by seed {seed}")
     train = training_units(model_spec, model, train, seed)
+    if float(model_spec.train_fraction) < 1.0:
+        note(f"train_fraction {model_spec.train_fraction}: a nested subsample of {total} units")
+    if scheme != "none":
+        note(f"train sample: {scheme} chosen by seed {seed}")
     note(
         f"train {len(train)} units / {len(train.tokens)} tokens; valid {len(valid)}; test {len(test)}"
     )
@@ -129,12 +154,17 @@ def fit_cell(
 def training_units(
     model_spec: ModelConfig, family: Any, train: SequenceSet, seed: int
 ) -> SequenceSet:
-    """The training units seed ``seed`` of ``model_spec`` trains on.
+    """The training units seed ``seed`` of ``model_spec`` trains on, the same units in
+    every order (both draws depend on the seed and the unit count alone).
 
-    All of them, or with ``train_sample`` (``auto`` for a ``family`` class or instance
-    without randomness of its own) a sample chosen by the seed alone
-    (:func:`retrograde.data.resample_train`), the same units in every order.
+    First ``train_fraction`` < 1 keeps a nested subsample of them
+    (:func:`retrograde.data.nested_subsample`: the data-size sweep); then ``train_sample``
+    (``auto`` for a ``family`` class or instance without randomness of its own) draws the
+    seed's sample of what is left (:func:`retrograde.data.resample_train`).
     """
+    fraction = float(model_spec.train_fraction)
+    if fraction < 1.0:
+        train = train.subset(nested_subsample(len(train), fraction, seed))
     scheme = resolve_train_sample(model_spec.train_sample, family)
     if scheme == "none" or not len(train):  # an empty split: the family says so itself
         return train
@@ -205,6 +235,8 @@ def _body(args: argparse.Namespace) -> None:
                 cpu_s=_cpu_seconds() - cpu_started,
                 wall_s=time.perf_counter() - wall_started,
             )
+            validation = valid_score(model, splits["valid"])  # after the clock: not a fit cost
+            print(f"valid bits/token {validation['bits_per_token']}", file=log, flush=True)
             # Counts only: the log is hashed with the cell, its times are in budget.json.
             counts = {k: v for k, v in budget.items() if k not in ("cpu_s", "wall_s")}
             print(f"budget {counts} (times in budget.json)", file=log, flush=True)
@@ -214,6 +246,7 @@ def _body(args: argparse.Namespace) -> None:
             atomic_write_bytes(cell / "test_logprobs.npy", buffer.getvalue())
             atomic_write_json(cell / "curve.json", curve)
             atomic_write_json(cell / "budget.json", budget)
+            atomic_write_json(cell / "valid.json", validation)
         except Exception as exc:
             traceback.print_exc(file=log)
             reason = (

@@ -4,7 +4,17 @@
 names (never a glob, so cells left over from a larger grid are ignored), the test
 log-probabilities; it writes ``metrics.json`` (``{source: {model: {order: leaf}}}``),
 ``report.md``, ``cells.csv`` (one row per fit cell: per-seed bits and gap, the cell's
-``budget.json``) and ``plots/`` through :func:`retrograde.report.write_all`.
+``budget.json`` and validation score) and ``plots/`` through
+:func:`retrograde.report.write_all`.
+
+Fair comparisons: every leaf carries ``budget`` (each ``budget.json`` field, mean over
+seeds), and ``budget_unequal`` names the counted budgets (``train_tokens``, ``steps``,
+``n_params``) on which the model's orders differ by more than 5%. A tuned model's row
+compares, per order, the trial with the lowest validation loss (never the test loss); its
+leaves add ``tuned_params`` (the winning setting), ``tuned_model``,
+``valid_bits_per_token``, ``shared_gap_pct`` (the gap of the shared setting) and
+``tuning_gap_change_pct`` (tuned minus shared, in percentage points). Trial models are
+not rows of their own; their cells are in ``cells.csv``.
 """
 
 from __future__ import annotations
@@ -25,6 +35,7 @@ import numpy as np
 
 from .. import __version__, stats
 from ..config import (
+    TRAIN_FRACTION,
     ModelConfig,
     RetrogradeConfig,
     StudyConfig,
@@ -58,15 +69,19 @@ def _read_cell(wdir: Path, source: str, model: str, order: str, seed: int) -> tu
     return values, curve
 
 
-#: what a cell's budget.json holds (written by the fit stage); missing in older cells
-_BUDGET_FIELDS = ("train_tokens", "steps", "cpu_s", "wall_s", "n_params")
-
-
 def _read_budget(wdir: Path, source: str, model: str, order: str, seed: int) -> dict[str, Any]:
     """The cell's ``budget.json`` (``None`` for every field when an older fit wrote none)."""
     path = wdir / str(cell_dir(source, model, order, seed)) / "budget.json"
     found = json.loads(path.read_text(encoding="utf-8")) if path.is_file() else {}
-    return {key: found.get(key) for key in _BUDGET_FIELDS}
+    return {key: found.get(key) for key in stats.BUDGET_FIELDS}
+
+
+def _read_valid(wdir: Path, source: str, model: str, order: str, seed: int) -> float | None:
+    """The cell's validation bits per token (``valid.json``); None when it has none."""
+    path = wdir / str(cell_dir(source, model, order, seed)) / "valid.json"
+    found = json.loads(path.read_text(encoding="utf-8")) if path.is_file() else {}
+    value = found.get("bits_per_token")
+    return float(value) if isinstance(value, (int, float)) else None
 
 
 def _seed_rows(
@@ -102,10 +117,17 @@ def _seed_rows(
                     ),
                     "test_units": len(test),
                     "test_tokens": int(len(test.tokens)),
+                    "valid_bits_per_token": _rounded_or_none(
+                        _read_valid(wdir, source, model, order, cell_seeds[row])
+                    ),
                     **_read_budget(wdir, source, model, order, cell_seeds[row]),
                 }
             )
     return rows
+
+
+def _rounded_or_none(value: float | None) -> float | None:
+    return None if value is None else stats.rounded(value)
 
 
 def _baseline_bits(
@@ -268,26 +290,33 @@ def _model_results(
     floors: Any,
     replicates: dict[str, Any] | None = None,
     seed_rows: list[dict[str, Any]] | None = None,
+    chosen: dict[str, str] | None = None,
 ) -> tuple[dict[str, Any], dict[str, Ragged | None], dict[str, Any]]:
     """One model on one source: (its table leaves, natural-order losses, curves) per order.
 
     ``replicates``, when given, receives what each order's interval was drawn from (for the
-    simultaneous intervals); ``seed_rows`` one row per fit cell (:func:`_seed_rows`)."""
+    simultaneous intervals); ``seed_rows`` one row per fit cell (:func:`_seed_rows`);
+    ``chosen`` names, per order, the (trial) model whose cells stand for ``model`` in that
+    order."""
     study, stats_config = config.study, config.stats
     seeds = study.seeds_of(model)
+    cell_model = {order: (chosen or {}).get(order, model) for order in study.orders}
     # a model that ignores the seed was fitted once: every seed reads that cell
-    cell_seeds = [fitted_seed(study, model, seed) for seed in seeds]
+    cell_seeds = {
+        order: [fitted_seed(study, cell_model[order], seed) for seed in seeds]
+        for order in study.orders
+    }
     unit_nll: dict[str, np.ndarray] = {}
     end_nll: dict[str, np.ndarray] = {}
     natural: dict[str, Ragged | None] = {}
     curves: dict[str, Any] = {}
     for order in study.orders:
-        where = (source, model, order)
+        where = (source, cell_model[order], order)
         unit_nll[order], end_nll[order], natural[order], curves[order] = _order_losses(
-            wdir, where, cell_seeds, test
+            wdir, where, cell_seeds[order], test
         )
         if floors is not None:
-            _check_floor(unit_nll[order], floors, where, cell_seeds, test)
+            _check_floor(unit_nll[order], floors, where, cell_seeds[order], test)
     leaves = stats.summarize_model(
         unit_nll,
         reference_order=study.reference_order,
@@ -302,9 +331,16 @@ def _model_results(
         seed=stats_config.seed,
         gap_distributions=replicates,
     )
+    for order, leaf in leaves.items():
+        budgets = [
+            _read_budget(wdir, source, cell_model[order], order, s) for s in cell_seeds[order]
+        ]
+        leaf["budget"] = stats.mean_budget(budgets)
     if seed_rows is not None:
+        # (no trial stands for the model here: every order's cells are the model's own)
+        fitted = cell_seeds[study.reference_order]
         seed_rows += _seed_rows(
-            wdir, source, model, unit_nll, curves, seeds, study.reference_order, test, cell_seeds
+            wdir, source, model, unit_nll, curves, seeds, study.reference_order, test, fitted
         )
     if any(losses is None for losses in natural.values()):
         _per_character(wdir, source, leaves)
@@ -331,6 +367,76 @@ def _per_character(wdir: Path, source: str, leaves: dict[str, dict[str, Any]]) -
             leaf["excess_bits_per_token"] = stats.rounded(bits / n_tokens - floor_bits)
 
 
+def _point_gap(unit_nll: dict[str, np.ndarray], order: str, reference: str) -> float:
+    """The point gap (%) from seed-averaged totals, as :func:`stats.summarize_model` has it."""
+    total = float(unit_nll[order].sum(axis=1).mean())
+    reference_total = float(unit_nll[reference].sum(axis=1).mean())
+    return 100.0 * (total / reference_total - 1.0)
+
+
+def _tuned_trials(
+    wdir: Path,
+    source: str,
+    model: str,
+    config: RetrogradeConfig,
+    test: SequenceSet,
+    floors: Any,
+    seed_rows: list[dict[str, Any]],
+) -> tuple[dict[str, str], dict[str, dict[str, Any]]]:
+    """Pick each order's trial of tuned ``model`` by validation loss (never test).
+
+    Returns ``(chosen, extra)``: ``{order: trial model}`` and, per order, the leaf fields
+    a tuned row adds. Appends the rows of the shared cells and of every trial's cells to
+    ``seed_rows``.
+    """
+    study = config.study
+    tune = (study.tuning or {})[model]
+    settings = tune.models or {}
+    seeds, orders, reference = study.seeds_of(model), list(study.orders), study.reference_order
+    valid_bits: dict[str, dict[str, float]] = {}
+    for trial in settings:
+        valid_bits[trial] = {}
+        for order in orders:
+            scores = [
+                _read_valid(wdir, source, trial, order, fitted_seed(study, trial, seed))
+                for seed in seeds
+            ]
+            missing = [seed for seed, score in zip(seeds, scores, strict=True) if score is None]
+            if missing:
+                raise DataError(
+                    f"cell {source}/{trial}/{order}/seed{missing[0]} has no validation score "
+                    "(valid.json), which tuning picks by; give the source validation units "
+                    "(split fractions) and fit it again with `retrograde run`"
+                )
+            valid_bits[trial][order] = float(np.mean([float(v or 0.0) for v in scores]))
+    chosen = stats.best_trials(valid_bits, orders)
+    shared: dict[str, np.ndarray] = {}
+    for name in [model, *settings]:
+        cell_seeds = [fitted_seed(study, name, seed) for seed in seeds]
+        unit_nll, curves = {}, {}
+        for order in orders:
+            unit_nll[order], _, _, curves[order] = _order_losses(
+                wdir, (source, name, order), cell_seeds, test
+            )
+            if floors is not None:
+                _check_floor(unit_nll[order], floors, (source, name, order), cell_seeds, test)
+        seed_rows += _seed_rows(
+            wdir, source, name, unit_nll, curves, seeds, reference, test, cell_seeds
+        )
+        if name == model:
+            shared = unit_nll
+    extra = {
+        order: {
+            "tuned_model": chosen[order],
+            "tuned_params": dict(settings[chosen[order]]),
+            "valid_bits_per_token": stats.rounded(valid_bits[chosen[order]][order]),
+            "shared_gap_pct": stats.rounded(_point_gap(shared, order, reference)),
+        }
+        for order in orders
+    }
+    return chosen, extra
+
+
 def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
     """The keyword arguments of :func:`retrograde.report.write_all` for this grid."""
     check_stats(config.stats)  # the rule composition applied, again on what was read
@@ -350,11 +456,20 @@ def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
         data_hashes[source] = _data_hash(test)
         floors = np.load(folder / "floors.npy") if (folder / "floors.npy").is_file() else None
         table[source], profiles[source], curves[source] = {}, {}, {}
-        for model in study.models_on(source):
+        trials = study.trial_models()
+        for model in [m for m in study.models_on(source) if m not in trials]:
             draws = replicates.setdefault(source, {}).setdefault(model, {})
+            chosen: dict[str, str] | None = None
+            extra: dict[str, dict[str, Any]] = {}
+            if model in (study.tuning or {}):
+                chosen, extra = _tuned_trials(wdir, source, model, config, test, floors, cells)
             leaves, natural, model_curves = _model_results(
-                wdir, source, model, config, test, floors, draws, cells
+                wdir, source, model, config, test, floors, draws, None if chosen else cells, chosen
             )
+            for order, fields in extra.items():
+                leaves[order].update(fields)
+                change = leaves[order]["gap_pct"] - fields["shared_gap_pct"]
+                leaves[order]["tuning_gap_change_pct"] = stats.rounded(change)
             table[source][model], curves[source][model] = leaves, model_curves
             if info.get("reorder") == "characters":
                 continue  # no natural positions: no profile, no spans
@@ -375,7 +490,7 @@ def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
                 )
     stats.adjust_holm(table, reference_order=reference)
     stats.simultaneous_intervals(table, replicates, reference_order=reference)
-    flags = [
+    flags = _budget_flags(table, reference) + [
         line
         for source in study.sources
         for line in _training_flags(
@@ -387,7 +502,7 @@ def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
         "profiles": profiles,
         "spans": spans,
         "curves": curves,
-        "sweeps": _sweeps(study),
+        "sweeps": _sweeps(study, wdir),
         "provenance": {
             "package_version": __version__,
             "test_units_sha256": data_hashes,
@@ -431,33 +546,85 @@ def _spans_of(folder: Path, info: dict[str, Any]) -> dict[str, Any]:
 def _seed_warnings(study: StudyConfig) -> list[str]:
     """The report's caution about too few seeds, naming the models when not all share it."""
     few: dict[int, list[str]] = {}
-    for model in study.models:
+    rows = [m for m in study.models if m not in study.trial_models()]
+    for model in rows:
         n_seeds = len(study.seeds_of(model))
         if stats.seed_warning(n_seeds):
             few.setdefault(n_seeds, []).append(model)
     warnings = []
     for n_seeds, models in few.items():
         text = str(stats.seed_warning(n_seeds))
-        if len(models) < len(study.models):
+        if len(models) < len(rows):
             names = ", ".join(repr(m) for m in models)
             text = f"model{'s' if len(models) > 1 else ''} {names}: {text}"
         warnings.append(text)
     return warnings
 
 
-def _sweeps(study: StudyConfig) -> dict[str, Any]:
-    """One report sweep per (sweep, source): ``{source, parameter, models: {name: value}}``."""
+def _budget_flags(table: dict[str, Any], reference: str) -> list[str]:
+    """Mark, in every leaf, the counted budgets its model's orders differ on by more than
+    5% (``budget_unequal``); return the report's warning lines."""
+    lines = []
+    for source, models in table.items():
+        for model, leaves in models.items():
+            unequal = stats.unequal_budgets({o: leaf["budget"] for o, leaf in leaves.items()})
+            for leaf in leaves.values():
+                leaf["budget_unequal"] = sorted(unequal)
+            if not unequal:
+                continue
+            differing = ", ".join(
+                f"{field} by {spread:.0%} ("
+                + ", ".join(f"{o} {leaf['budget'][field]:,.0f}" for o, leaf in leaves.items())
+                + ")"
+                for field, spread in unequal.items()
+            )
+            lines.append(
+                f"source {source!r}: model {model!r}: its orders consumed budgets differing by "
+                f"more than {stats.BUDGET_TOLERANCE:.0%}, {differing} (means per fit); the gap "
+                "mixes the order with the budget (hold one equal with study.equal_budget)"
+            )
+    return lines
+
+
+def _train_tokens(wdir: Path, source: str, spec: ModelConfig, seeds: list[int]) -> float:
+    """Tokens in the training units model ``spec`` trains on (its ``train_fraction``, then
+    its seed's ``train_sample``), mean over ``seeds``: what the fit stage trains on."""
+    from .. import families
+
+    train = SequenceSet.load(wdir / str(units_dir(source)) / "train")
+    family = families.registry.get(spec.family)
+    sizes = [len(training_units(spec, family, train, seed).tokens) for seed in seeds]
+    return float(np.mean(sizes))
+
+
+def _sweeps(study: StudyConfig, wdir: Path) -> dict[str, Any]:
+    """One report sweep per (sweep, source): ``{source, parameter, models: {name: value}}``.
+
+    A data-size sweep (parameter ``train_fraction``) adds ``x: {name: training tokens}``
+    and ``x_label``, so it is drawn against training tokens; a sweep within another adds
+    ``groups: {name: the other sweep's value}`` and ``group_parameter``.
+    """
     out = {}
     for name, sweep in study.sweeps.items():
         sources = study.sources_of(sweep.model)
         for source in sources:
             key = name if len(sources) == 1 else f"{name}-{source}"
-            out[key] = {
+            entry: dict[str, Any] = {
                 "source": source,
                 "parameter": sweep.parameter,
                 "models": sweep.models or {},
                 "held": _held(study, sweep),
             }
+            if sweep.parameter == TRAIN_FRACTION:
+                entry["x"] = {
+                    model: _train_tokens(wdir, source, study.models[model], study.seeds_of(model))
+                    for model in (sweep.models or {})
+                }
+                entry["x_label"] = "training tokens (mean over seeds)"
+            if sweep.within is not None:
+                entry["groups"] = sweep.groups or {}
+                entry["group_parameter"] = study.sweeps[sweep.within].parameter
+            out[key] = entry
     return out
 
 

@@ -14,6 +14,8 @@ every number written out goes through :func:`rounded`.
   decomposition), :func:`mean_squares`, :func:`satterthwaite_df`;
 - training: :func:`still_falling`, :func:`worse_than_baseline` (signs of an under-trained
   model);
+- fairness: :func:`best_trials` (each order's tuning trial, by validation loss),
+  :func:`mean_budget`, :func:`unequal_budgets` (orders that consumed different budgets);
 - profiles: :func:`position_profile`, :func:`span_breakdown` (with per-unit spans:
   :func:`span_masks`), :func:`segment_breakdown`;
 - resampling kernels: :func:`bootstrap_totals`, :func:`sign_flip_pvalue`,
@@ -32,6 +34,14 @@ from ._bootstrap import (
     sign_flip_pvalue,
 )
 from ._end_marker import end_marker_cost
+from ._fairness import (
+    BUDGET_FIELDS,
+    BUDGET_TOLERANCE,
+    COMPARED_BUDGETS,
+    best_trials,
+    mean_budget,
+    unequal_budgets,
+)
 from ._gaps import (
     FLOOR_Z,
     INTERVALS,
@@ -52,6 +62,9 @@ from ._training import BASELINE_NGRAM_ORDER, STEEP_FALL, still_falling, worse_th
 
 __all__ = [
     "BASELINE_NGRAM_ORDER",
+    "BUDGET_FIELDS",
+    "BUDGET_TOLERANCE",
+    "COMPARED_BUDGETS",
     "FLOOR_Z",
     "INTERVALS",
     "MIN_DOCUMENTS_FOR_GROUPING",
@@ -61,6 +74,7 @@ __all__ = [
     "GapInterval",
     "adjust_holm",
     "below_floor",
+    "best_trials",
     "bits_per_byte",
     "bits_per_token",
     "bootstrap_pvalue",
@@ -70,6 +84,7 @@ __all__ = [
     "group_sums",
     "grouping_warning",
     "holm",
+    "mean_budget",
     "mean_squares",
     "natural_order_losses",
     "position_profile",
@@ -85,6 +100,7 @@ __all__ = [
     "span_masks",
     "still_falling",
     "summarize_model",
+    "unequal_budgets",
     "unit_nll",
     "worse_than_baseline",
 ]
