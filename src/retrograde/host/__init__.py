@@ -9,6 +9,7 @@ does, as functions the command line only calls:
 - :func:`run_pipeline` — ``retrograde run``: compose, write, ``dvc repro``, tidy the lock;
 - :func:`check_host`, :func:`check_file` — ``retrograde check``;
 - :func:`plan_shard`, :func:`reproduce_shard` — ``retrograde plan``;
+- :func:`rank_orders` — ``retrograde rank``: screen a space of orders, confirm the top k;
 - :func:`read_table_at` — the gap table at a git revision (``compare``, ``table``);
 - :func:`prepare_demo` — the throwaway demo host.
 
@@ -35,6 +36,7 @@ from ._lock import pipeline_lock
 from ._lockfile import normalize_lock_order, order_lock_entries, ordered_keys
 from ._parallel import log_path_for, repro_argv, run_stages_in_parallel, stale_stages
 from ._plan import Shard, parse_shard, plan_shard, reproduce_shard, shard_of
+from ._rank import RANK_DIR, RankResult, rank_orders
 from ._repo import (
     HostRepo,
     dvc_argv,
@@ -67,11 +69,13 @@ __all__ = [
     "GITIGNORE",
     "IGNORE_RULES",
     "MARKER",
+    "RANK_DIR",
     "SOURCE_CONFIG",
     "UNITS_BEGIN",
     "UNITS_END",
     "HostRepo",
     "InstallResult",
+    "RankResult",
     "RunResult",
     "Shard",
     "cell_status",
@@ -102,6 +106,7 @@ __all__ = [
     "plan_shard",
     "planned_files",
     "prepare_demo",
+    "rank_orders",
     "read_table_at",
     "read_text",
     "render_dvc_yaml",
