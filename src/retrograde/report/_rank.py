@@ -201,7 +201,21 @@ def rank_figure(result: Mapping[str, Any]) -> Figure:
             markerfacecolor=colour if row["significant"] else "white",
         )
     left.axvline(0.0, color="black", linewidth=1, linestyle="--")
+    left.annotate(
+        f"reference\n'{reference}'",
+        (0.0, 1.0),
+        xycoords=("data", "axes fraction"),
+        xytext=(3, -3),
+        textcoords="offset points",
+        fontsize=8,
+        va="top",
+    )
     left.set_yticks(range(len(rows)), [row["order"] for row in reversed(rows)])
+    left.set_ylim(-0.7, len(rows) - 0.3)
+    low_end = min([0.0, *(row["gap_pct_low"] for row in rows)])
+    high_end = max([0.0, *(row["gap_pct_high"] for row in rows)])
+    pad = 0.08 * max(high_end - low_end, 1e-6)
+    left.set_xlim(low_end - pad, high_end + 3 * pad)  # room for the reference label
     left.set_xlabel(f"gap % vs reference '{reference}' (negative = fewer bits)")
     left.set_title(f"{result['source']} / {result['model']}: confirmed on test")
     left.grid(axis="x", alpha=0.3)
@@ -220,7 +234,8 @@ def rank_figure(result: Mapping[str, Any]) -> Figure:
             style = {"color": colours[name], "marker": "o"}
         else:
             style = {"color": "0.7", "marker": ".", "linewidth": 0.8}
-        right.plot(xs, ys, **style, label=name if name == reference or name in top else None)
+        label = f"{name} (reference)" if name == reference else name if name in top else None
+        right.plot(xs, ys, **style, label=label)
     right.set_xlabel("training units (screening round)")
     right.set_ylabel("proxy bits per validation token")
     right.set_title(f"screening: {result['screening']['proxy']['family']}, grey = eliminated")
