@@ -231,7 +231,13 @@ def test_the_recommendation_names_the_best_and_whether_the_runner_up_is_distingu
     )
     text = recommendation(overlapping, "f", level=0.95, n_candidates=5)
     assert text.startswith("Train in order `a`")
-    assert "not distinguishable from `b`" in text
+    assert "not clearly better than `b`" in text
+    lead = rank_rows(
+        {"f": {}, "a": _leaf(-5.0, -7.0, -3.0, True), "b": _leaf(-2.0, -4.0, 1.0, False)}, "f"
+    )
+    text = recommendation(lead, "f", level=0.95, n_candidates=2)
+    assert "the only candidate the test separates from the reference" in text
+    assert "its lead over them is not established" in text
     apart = rank_rows(
         {"f": {}, "a": _leaf(-9.0, -10.0, -8.0, True), "b": _leaf(-4.0, -6.0, -2.0, True)}, "f"
     )

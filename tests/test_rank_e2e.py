@@ -20,12 +20,12 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from _host_fixtures import new_host, sh
+from _host_fixtures import new_host, new_pipeline_host, sh, snapshot
 from retrograde.cli import main
 from retrograde.host import rank_orders
 from retrograde.sources import make
 
-pytestmark = [pytest.mark.dvc, pytest.mark.slow]
+pytestmark = pytest.mark.dvc
 
 N_BITS = 12
 OVERRIDES = ["source=[records]", "+rank=search"]
@@ -89,6 +89,7 @@ def _records_host(root: Path) -> Path:
     return host
 
 
+@pytest.mark.slow
 def test_rank_recommends_an_x_first_order_and_widening_fits_only_new_candidates(tmp_path, capsys):
     host = _records_host(tmp_path)
     capsys.readouterr()  # init's report
@@ -128,3 +129,37 @@ def test_rank_recommends_an_x_first_order_and_widening_fits_only_new_candidates(
     fitted = [stage for stage in again.events["ran"] if stage.startswith("fit@")]
     assert all("stride_step2" in stage for stage in fitted), fitted
     assert again.result["ranking"][0]["order"] in X_FIRST
+
+
+@pytest.mark.parametrize(
+    ("block", "expected"),
+    [
+        ("space: {bogus: {}}\ntop_k: 1", "rank.space.bogus: unknown order 'bogus'"),
+        ("space: {reverse: {}, stride: {step: [2]}}\ntop_k: 3", "rank.top_k=3 is more than"),
+        ("space: {reverse: {}}\nmodel: nope", "rank.model='nope'"),
+        ("space: {reverse: {}}\ntop_kk: 1", "unknown config key 'rank.top_kk'"),
+    ],
+)
+def test_a_bad_rank_block_is_one_line_exit_2_and_writes_nothing(tmp_path, capsys, block, expected):
+    host = new_pipeline_host(tmp_path / "host")
+    (host / "conf" / "retrograde" / "rank").mkdir()
+    text = "# @package rank\nsource: corpus\nmodel: ngram\n" + block + "\n"
+    if "model: nope" in block:
+        text = text.replace("model: ngram\n", "")
+    (host / "conf" / "retrograde" / "rank" / "search.yaml").write_text(text)
+    capsys.readouterr()
+    before = snapshot(host)
+    status = main(["rank", "--dir", str(host), "+rank=search"])
+    out, err = capsys.readouterr()
+    assert status == 2
+    assert out == ""
+    assert len(err.strip().splitlines()) == 1, err
+    assert expected in err
+    assert snapshot(host) == before
+
+
+def test_rank_without_a_rank_block_says_how_to_add_one(tmp_path, capsys):
+    host = new_pipeline_host(tmp_path / "host")
+    capsys.readouterr()
+    assert main(["rank", "--dir", str(host)]) == 2
+    assert "+rank=NAME" in capsys.readouterr().err

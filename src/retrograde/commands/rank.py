@@ -37,7 +37,12 @@ def configure(parser: argparse.ArgumentParser) -> None:
 
 def run(args: argparse.Namespace) -> int:
     jobs = check_int("option 'rank'", "jobs", args.jobs, low=1)
-    found = rank_orders(args.dir, args.overrides, jobs=jobs)
+    found = rank_orders(
+        args.dir,
+        args.overrides,
+        jobs=jobs,
+        note=lambda line: print(f"retrograde rank: {line}", file=sys.stderr, flush=True),
+    )
     result = found.result
     events = found.events
     print(

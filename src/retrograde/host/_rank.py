@@ -24,7 +24,7 @@ block are put back to the study's own composition before the command returns.
 from __future__ import annotations
 
 import os
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -47,7 +47,9 @@ from ..data import SPLITS, SequenceSet, atomic_write_json, atomic_write_text
 from ..validation import check_int
 from ._driver import compose_for, parse_repro_line, stage_environment, write_pipeline_files
 from ._lock import pipeline_lock
+from ._lockfile import normalize_lock_order
 from ._parallel import run_stages_in_parallel
+from ._progress import Progress
 from ._repo import HostRepo, run_dvc
 from ._screening import screen
 
@@ -82,21 +84,30 @@ def _dvc_repro(host: HostRepo, targets: list[str], log_name: str) -> dict[str, l
 
 
 def _confirm(host: HostRepo, grid: RetrogradeConfig, jobs: int) -> dict[str, list[str]]:
-    """Reproduce the grid's fit cells (with their reorder and units stages)."""
-    fits = [host.target(fit_stage_name(*cell)) for cell in grid.cells()]
-    if jobs == 1:
-        return _dvc_repro(host, fits, "rank-confirm.log")
+    """Reproduce the grid's reorder stages (units upstream), then its fit cells, ``jobs`` at
+    a time, each reported as it starts and ends (as ``run`` reports them)."""
     source = next(iter(grid.study.sources))
     reorders = [host.target(reorder_stage_name(source, order)) for order in grid.study.orders]
     events = _dvc_repro(host, reorders, "rank-confirm.log")
-    run_stages_in_parallel(host.root, [fit_stage_name(*cell) for cell in grid.cells()], jobs)
+    fits = [fit_stage_name(*cell) for cell in grid.cells()]
+    with Progress(len(fits)) as progress:
+        run_stages_in_parallel(host.root, fits, jobs, progress=progress)
+    for event, stages in progress.counts().items():
+        events.setdefault(event, []).extend(stages)
     return events
 
 
 def rank_orders(
-    host_dir: str | os.PathLike[str], overrides: Sequence[str] = (), *, jobs: int = 1
+    host_dir: str | os.PathLike[str],
+    overrides: Sequence[str] = (),
+    *,
+    jobs: int = 1,
+    note: Callable[[str], None] | None = None,
 ) -> RankResult:
-    """Screen the rank block's space, confirm the top k as fit cells, rank them (module doc)."""
+    """Screen the rank block's space, confirm the top k as fit cells, rank them (module doc).
+
+    ``note`` receives one line per step (the command prints them to stderr)."""
+    say = note or (lambda line: None)
     from ..stages.table import collect
 
     jobs = check_int("option 'rank'", "jobs", jobs, low=1)
@@ -116,6 +127,7 @@ def rank_orders(
             folder = host.pipeline_dir / str(units_dir(rank.source))
             splits = {name: SequenceSet.load(folder / name) for name in SPLITS if name != "test"}
             screening = rank.screening
+            say(f"screening {len(candidates)} candidates with {proxy.family} on validation")
             rounds = screen(
                 candidates,
                 (reference, config.study.orders[reference]),
@@ -128,6 +140,11 @@ def rank_orders(
                 cache_dir=out_dir / "screen",
             )
             top = rounds[-1].kept
+            for number, done in enumerate(rounds, start=1):
+                say(
+                    f"round {number}: {done.train_units} training units, "
+                    f"{len(done.bits_per_token) - 1} scored, kept {', '.join(done.kept)}"
+                )
             grid = rank_grid(config, {name: candidates[name] for name in top})
             write_pipeline_files(host, grid)
             with stage_environment(host):
@@ -135,6 +152,7 @@ def rank_orders(
             collected = collect(host.pipeline_dir, grid)
         finally:
             write_pipeline_files(host, config)  # the study's own params and units block
+        normalize_lock_order(host.root)  # dvc.lock in stage-file order, as `run` leaves it
         result = _result(config, grid, candidates, proxy, rounds, collected, reference)
         written = _write(out_dir, result)
     return RankResult(host, result, written, events)

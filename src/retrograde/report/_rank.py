@@ -106,10 +106,18 @@ def recommendation(
             f"than the reference `{reference}` (gap {_interval(best)}), a difference the "
             f"test distinguishes ({kind})."
         )
-        if close:
+        tied = [row for row in close if row in better]
+        untested = [row for row in close if row not in better]
+        if tied:
             sure = (
-                f" It is not distinguishable from {_names(close)}, whose intervals overlap "
-                "its own: any of them is as good on this evidence."
+                f" It is not clearly better than {_names(tied)}, also better than the "
+                "reference, whose intervals overlap its own: either serves on this evidence."
+            )
+        elif untested:
+            sure = (
+                f" It is the only candidate the test separates from the reference; the "
+                f"intervals of {_names(untested)} overlap its own, so its lead over them is "
+                "not established."
             )
         else:
             sure = " Its interval overlaps no other candidate's: it is the clear best."
