@@ -100,6 +100,15 @@ def test_a_bad_rank_block_is_one_line_naming_the_key(space, rank, expected):
     assert "\n" not in message
 
 
+def test_a_candidate_may_not_take_the_name_of_a_different_study_order():
+    config = config_with({"rotate": {"shift": [2]}})
+    config.study.orders["rotate_shift2"] = OrderConfig(name="rotate", params={"shift": 5})
+    with pytest.raises(ConfigError, match="rename that study order"):
+        rank_candidates(config)
+    config.study.orders["rotate_shift2"] = OrderConfig(name="rotate", params={"shift": 2})
+    assert list(rank_candidates(config)) == ["rotate_shift2"]  # the same order: shared
+
+
 def test_a_config_without_a_rank_block_says_how_to_add_one():
     config = config_with({"reverse": {}})
     config.rank = None

@@ -144,6 +144,14 @@ def rank_candidates(config: RetrogradeConfig) -> dict[str, OrderConfig]:
     ]
     for name in same:  # the reference is always fitted; as a candidate it would be its own gap
         del found[name]
+    for name, entry in found.items():
+        other = study.orders.get(name)
+        if other is not None and (other.name, other.params) != (entry.name, entry.params):
+            raise ConfigError(
+                f"{_WHERE}.space: candidate {name!r} is also the name of study.orders.{name}, "
+                f"a different order ({other.name} {other.params}); rename that study order "
+                "(the two would share one DVC stage and folder)"
+            )
     if not found:
         raise ConfigError(
             f"{_WHERE}.space and {_WHERE}.orders hold no candidate besides the reference order "
