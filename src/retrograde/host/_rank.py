@@ -55,6 +55,10 @@ from ._screening import screen
 
 __all__ = ["RANK_DIR", "RankResult", "rank_orders"]
 
+#: the family-wise level of the Holm verdicts: ``collect`` adjusts at stats.adjust_holm's
+#: default alpha of 0.05
+FAMILY_LEVEL = 0.95
+
 #: where the ranking is written, relative to the pipeline folder
 RANK_DIR = "rank"
 
@@ -176,9 +180,10 @@ def _result(
         "model": rank.model,
         "reference_order": reference,
         "level": config.stats.level,
+        "family_level": FAMILY_LEVEL,
         "ranking": rows,
         "recommendation": report.recommendation(
-            rows, reference, level=config.stats.level, n_candidates=len(candidates)
+            rows, reference, level=FAMILY_LEVEL, n_candidates=len(candidates)
         ),
         "leaves": leaves,
         "candidates": {name: to_dict(entry) for name, entry in candidates.items()},

@@ -79,6 +79,9 @@ def recommendation(
 ) -> str:
     """The sentence a reader acts on, saying how sure it is.
 
+    ``level`` is the family-wise confidence of the Holm-adjusted verdicts (0.95 for the
+    table stage's alpha of 0.05).
+
     - a candidate significantly better than the reference: train in the best of those; it
       says whether the runners-up are distinguishable from it (their intervals overlap);
     - none better, some worse: keep the reference and name the worse ones;
@@ -86,8 +89,9 @@ def recommendation(
     """
     confirmed = len(rows)
     kind = (
-        f"simultaneous intervals at the level Holm used for each row over {confirmed} "
-        f"confirmed candidate{'s' if confirmed != 1 else ''} (stats.level {level:g})"
+        f"simultaneous intervals over the {confirmed} confirmed "
+        f"candidate{'s' if confirmed != 1 else ''}, Holm-adjusted, family-wise level "
+        f"{100 * level:g}%"
     )
     scope = (
         f"Only the best {confirmed} of {n_candidates} candidates by the proxy on the "
@@ -198,7 +202,9 @@ def rank_figure(result: Mapping[str, Any]) -> Figure:
     left, right = figure.subplots(1, 2, gridspec_kw={"width_ratios": [1.1, 1.0]})
     for position, row in enumerate(reversed(rows)):
         low, high = row["gap_pct_low"], row["gap_pct_high"]
-        colour = "tab:blue" if row["gap_pct"] < 0 else "tab:red"
+        colour = (
+            "0.55" if not row["significant"] else "tab:blue" if row["gap_pct"] < 0 else "tab:red"
+        )
         left.plot([low, high], [position, position], color=colour, linewidth=2)
         left.plot(
             [row["gap_pct"]],
@@ -252,7 +258,8 @@ def rank_figure(result: Mapping[str, Any]) -> Figure:
     figure.text(
         0.01,
         0.01,
-        "filled marker: Holm-significant; bars: simultaneous intervals",
+        "filled marker: Holm-significant (blue better, red worse than the reference; grey "
+        "not distinguishable); bars: simultaneous intervals",
         fontsize=8,
     )
     figure.tight_layout(rect=(0, 0.04, 1, 1))
