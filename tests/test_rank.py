@@ -24,7 +24,7 @@ from retrograde.config import (
     rank_grid,
 )
 from retrograde.errors import ConfigError
-from retrograde.host._screening import screen, training_subset
+from retrograde.host import screen, training_subset
 from retrograde.report import RANK_FIELDS, format_rank, rank_rows, recommendation
 
 

@@ -61,6 +61,7 @@ from ._scaffold import (
     planned_files,
     source_config,
 )
+from ._screening import SCREEN_CACHE_VERSION, ScreenRound, proxy_bits, screen, training_subset
 from ._stagefile import UNITS_BEGIN, UNITS_END, render_dvc_yaml
 
 __all__ = [
@@ -70,12 +71,14 @@ __all__ = [
     "IGNORE_RULES",
     "MARKER",
     "RANK_DIR",
+    "SCREEN_CACHE_VERSION",
     "SOURCE_CONFIG",
     "UNITS_BEGIN",
     "UNITS_END",
     "HostRepo",
     "InstallResult",
     "RankResult",
+    "ScreenRound",
     "RunResult",
     "Shard",
     "cell_status",
@@ -106,6 +109,7 @@ __all__ = [
     "plan_shard",
     "planned_files",
     "prepare_demo",
+    "proxy_bits",
     "rank_orders",
     "read_table_at",
     "read_text",
@@ -120,9 +124,11 @@ __all__ = [
     "run_pipeline",
     "run_stages_in_parallel",
     "run_tool",
+    "screen",
     "shard_of",
     "source_config",
     "stage_environment",
     "stale_stages",
+    "training_subset",
     "write_pipeline_files",
 ]
