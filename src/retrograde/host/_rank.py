@@ -48,7 +48,7 @@ from ..validation import check_int
 from ._driver import compose_for, parse_repro_line, stage_environment, write_pipeline_files
 from ._lock import pipeline_lock
 from ._lockfile import normalize_lock_order
-from ._parallel import run_stages_in_parallel
+from ._parallel import run_stages_in_parallel, stale_stages
 from ._progress import Progress
 from ._repo import HostRepo, run_dvc
 from ._screening import screen
@@ -94,10 +94,13 @@ def _confirm(host: HostRepo, grid: RetrogradeConfig, jobs: int) -> dict[str, lis
     reorders = [host.target(reorder_stage_name(source, order)) for order in grid.study.orders]
     events = _dvc_repro(host, reorders, "rank-confirm.log")
     fits = [fit_stage_name(*cell) for cell in grid.cells()]
-    with Progress(len(fits)) as progress:
-        run_stages_in_parallel(host.root, fits, jobs, progress=progress)
-    for event, stages in progress.counts().items():
-        events.setdefault(event, []).extend(stages)
+    stale = stale_stages(host.root, fits)  # one `dvc status`, not a DVC process per cell
+    events.setdefault("unchanged", []).extend(name for name in fits if name not in stale)
+    if stale:
+        with Progress(len(stale)) as progress:
+            run_stages_in_parallel(host.root, stale, jobs, progress=progress)
+        for event, stages in progress.counts().items():
+            events.setdefault(event, []).extend(stages)
     return events
 
 
