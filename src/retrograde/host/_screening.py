@@ -114,7 +114,8 @@ def proxy_bits(
         except (ValueError, KeyError, TypeError):
             pass  # unreadable: computed again and replaced
     transform = orders.make(order.name, **order.params)
-    orders.verify_bijection(transform, valid, order_name=order.name)
+    for units in (train, valid):
+        orders.verify_bijection(transform, units, order_name=order.name)
     model = families.make(proxy.family, **proxy.params)
     logprobs = model.fit_logprobs(
         transform.apply_set(train), None, transform.apply_set(valid), seed=seed
