@@ -163,3 +163,31 @@ def test_rank_without_a_rank_block_says_how_to_add_one(tmp_path, capsys):
     capsys.readouterr()
     assert main(["rank", "--dir", str(host)]) == 2
     assert "+rank=NAME" in capsys.readouterr().err
+
+
+@pytest.mark.slow
+def test_rank_on_a_symmetric_truth_says_no_order_is_distinguishable(tmp_path, capsys):
+    # A stationary Markov chain read backwards is again a Markov chain of the same order
+    # and entropy rate (time reversal of a stationary chain; fact of the trade, no source),
+    # so an n-gram model of that order fits both directions alike.
+    host = new_host(tmp_path / "host")
+    assert main(["init", "--dir", str(host)]) == 0
+    (host / "conf" / "retrograde" / "rank").mkdir()
+    (host / "conf" / "retrograde" / "rank" / "symmetric.yaml").write_text(
+        textwrap.dedent("""\
+            # @package rank
+            source: markov
+            model: ngram
+            proxy: {family: ngram, params: {order: 2}}
+            space: {reverse: {}}
+            top_k: 1
+            """)
+    )
+    capsys.readouterr()
+    argv = ["rank", "--dir", str(host), "--format", "json", "source=[markov]", "+rank=symmetric"]
+    assert main(argv) == 0
+    out, err = capsys.readouterr()
+    ranking = json.loads(out)
+    assert [entry["order"] for entry in ranking] == ["reverse"]
+    assert not any(entry["significant"] for entry in ranking)
+    assert "no order is distinguishable from the reference" in err
