@@ -100,6 +100,24 @@ def test_a_bad_rank_block_is_one_line_naming_the_key(space, rank, expected):
     assert "\n" not in message
 
 
+def test_list_valued_parameters_name_candidates_readably():
+    # A field-permutation order (records) joins a space as any registered order does.
+    from retrograde.config import candidate_name
+
+    assert candidate_name("fields", {"fields": ["total", "a", "b"]}) == "fields_fieldstotal_a_b"
+    assert candidate_name("rotate", {"shift": -2}) == "rotate_shiftm2"
+    assert candidate_name("segment_reverse", {"separators": [0, 5]}) == (
+        "segment_reverse_separators0_5"
+    )
+
+
+def test_the_rank_may_measure_against_another_study_order():
+    config = config_with({"rotate": {"shift": [1]}}, reference_order="mine")
+    grid = rank_grid(config, rank_candidates(config))
+    assert grid.study.reference_order == "mine"
+    assert list(grid.study.orders) == ["mine", "rotate_shift1"]
+
+
 def test_a_candidate_may_not_take_the_name_of_a_different_study_order():
     config = config_with({"rotate": {"shift": [2]}})
     config.study.orders["rotate_shift2"] = OrderConfig(name="rotate", params={"shift": 5})
