@@ -36,7 +36,7 @@ from ._lock import pipeline_lock
 from ._lockfile import normalize_lock_order, order_lock_entries, ordered_keys
 from ._parallel import log_path_for, repro_argv, run_stages_in_parallel, stale_stages
 from ._plan import Shard, parse_shard, plan_shard, reproduce_shard, shard_of
-from ._rank import RANK_DIR, RankResult, rank_orders
+from ._rank import RANK_DIR, SCREEN_DIR, RankResult, rank_orders
 from ._repo import (
     HostRepo,
     dvc_argv,
@@ -72,6 +72,7 @@ __all__ = [
     "MARKER",
     "RANK_DIR",
     "SCREEN_CACHE_VERSION",
+    "SCREEN_DIR",
     "SOURCE_CONFIG",
     "UNITS_BEGIN",
     "UNITS_END",

@@ -5,7 +5,7 @@
    value is refused before any work.
 2. Bring the source's ``units`` stage up to date through DVC (a grid of that source alone).
 3. Screen: successive halving with the proxy on the validation split
-   (:mod:`retrograde.host._screening`; cached by content hash under ``rank/screen/``).
+   (:mod:`retrograde.host._screening`; cached by content hash under ``screen/``).
 4. Confirm: the top ``k`` and the reference order become the orders of a grid of one
    source and one model (:func:`retrograde.config.rank_grid`), reproduced with ``dvc
    repro`` as ordinary ``reorder`` and ``fit`` cells. A cell fitted before (by an earlier
@@ -43,7 +43,7 @@ from ..config import (
     units_dir,
     units_stage_name,
 )
-from ..data import SPLITS, SequenceSet, atomic_write_json, atomic_write_text
+from ..data import SPLITS, SequenceSet, atomic_dir, atomic_write_json, atomic_write_text
 from ..validation import check_int
 from ._driver import compose_for, parse_repro_line, stage_environment, write_pipeline_files
 from ._lock import pipeline_lock
@@ -53,14 +53,16 @@ from ._progress import Progress
 from ._repo import HostRepo, run_dvc
 from ._screening import screen
 
-__all__ = ["RANK_DIR", "RankResult", "rank_orders"]
+__all__ = ["RANK_DIR", "SCREEN_DIR", "RankResult", "rank_orders"]
 
 #: the family-wise level of the Holm verdicts: ``collect`` adjusts at stats.adjust_holm's
 #: default alpha of 0.05
 FAMILY_LEVEL = 0.95
 
-#: where the ranking is written, relative to the pipeline folder
+#: where the ranking is written (replaced whole), relative to the pipeline folder
 RANK_DIR = "rank"
+#: the screening cache, relative to the pipeline folder
+SCREEN_DIR = "screen"
 
 
 @dataclass
@@ -114,9 +116,9 @@ def rank_orders(
     """Screen the rank block's space, confirm the top k as fit cells, rank them (module doc).
 
     ``note`` receives one line per step (the command prints them to stderr)."""
-    say = note or (lambda line: None)
     from ..stages.table import collect
 
+    say = note or (lambda line: None)
     jobs = check_int("option 'rank'", "jobs", jobs, low=1)
     host, config = compose_for(host_dir, overrides)
     candidates = rank_candidates(config)
@@ -124,7 +126,6 @@ def rank_orders(
     rank = config.rank
     assert rank is not None
     reference = rank_reference(config)
-    out_dir = host.pipeline_dir / RANK_DIR
     with pipeline_lock(host.root, "retrograde rank"):
         try:
             base = rank_grid(config, {})
@@ -144,7 +145,7 @@ def rank_orders(
                 eta=screening.eta,
                 min_fraction=screening.min_fraction,
                 seed=screening.seed,
-                cache_dir=out_dir / "screen",
+                cache_dir=host.pipeline_dir / SCREEN_DIR,
             )
             top = rounds[-1].kept
             for number, done in enumerate(rounds, start=1):
@@ -161,7 +162,7 @@ def rank_orders(
             write_pipeline_files(host, config)  # the study's own params and units block
         normalize_lock_order(host.root)  # dvc.lock in stage-file order, as `run` leaves it
         result = _result(config, grid, candidates, proxy, rounds, collected, reference)
-        written = _write(out_dir, result)
+        written = _write(host.pipeline_dir / RANK_DIR, result)
     return RankResult(host, result, written, events)
 
 
@@ -209,9 +210,11 @@ def _result(
 
 
 def _write(out_dir: Path, result: dict[str, Any]) -> list[Path]:
-    """``rank.json``, ``rank.md`` and ``rank.png``, each replaced atomically."""
-    paths = [out_dir / "rank.json", out_dir / "rank.md", out_dir / "rank.png"]
-    atomic_write_json(paths[0], result)
-    atomic_write_text(paths[1], report.format_rank(result, "markdown"))
-    report.write_rank_figure(result, paths[2])
-    return paths
+    """``rank.json``, ``rank.md`` and ``rank.png``, published together: the folder is
+    written aside and replaces the previous ranking whole (never a mix of two runs)."""
+    names = ["rank.json", "rank.md", "rank.png"]
+    with atomic_dir(out_dir) as tmp:
+        atomic_write_json(tmp / names[0], result)
+        atomic_write_text(tmp / names[1], report.format_rank(result, "markdown"))
+        report.write_rank_figure(result, tmp / names[2])
+    return [out_dir / name for name in names]

@@ -11,8 +11,8 @@ are confirmed on it afterwards, so choosing them does not bias the confirmation.
 Screening fits are not DVC stages. Each is small (a proxy on part of the training data)
 and there are many of them: one DVC stage apiece would cost more than the fit (a DVC
 process and its locking per fit) and would need a stage matrix over (candidate, round) in
-the fixed stage file. Instead each result is cached under ``pipelines/retrograde/rank/
-screen/`` by the sha256 of everything it depends on: the proxy's resolved params with its
+the fixed stage file. Instead each result is cached under ``pipelines/retrograde/screen/``
+(git-ignored) by the sha256 of everything it depends on: the proxy's resolved params with its
 family's numerics version, the order's resolved params, the package version, the exact
 training and validation units (their bytes) and the seed. A wider space or another round
 computes only new keys; a changed input makes a new key, so a stale score is never read.
