@@ -193,3 +193,19 @@ def test_rank_on_a_symmetric_truth_says_no_order_is_distinguishable(tmp_path, ca
     assert [entry["order"] for entry in ranking] == ["reverse"]
     assert not any(entry["significant"] for entry in ranking)
     assert "no order is distinguishable from the reference" in err
+
+
+def test_rank_dry_lists_the_candidates_and_writes_nothing(tmp_path, capsys):
+    host = new_pipeline_host(tmp_path / "host")
+    (host / "conf" / "retrograde" / "rank").mkdir()
+    (host / "conf" / "retrograde" / "rank" / "search.yaml").write_text(
+        "# @package rank\nsource: corpus\nmodel: ngram\n"
+        "space: {reverse: {}, block_reverse: {size: [2, 4]}}\ntop_k: 2\n"
+    )
+    capsys.readouterr()
+    before = snapshot(host)
+    assert main(["rank", "--dir", str(host), "--dry", "+rank=search"]) == 0
+    out = capsys.readouterr().out
+    assert out.startswith("3 candidates for source 'corpus'; the best 2 by ngram")
+    assert "  block_reverse_size4: block_reverse {'size': 4}" in out
+    assert snapshot(host) == before

@@ -6,7 +6,8 @@ and ranks them against the reference order on the test split with Holm-adjusted 
 (:func:`retrograde.host.rank_orders`). Prints the ranked table and the recommendation
 (``markdown``), or a JSON list, best first, of ``{order, gap_pct, gap_pct_low,
 gap_pct_high, significant}`` (the recommendation then goes to stderr). Writes
-``pipelines/retrograde/rank/rank.{json,md,png}``.
+``pipelines/retrograde/rank/rank.{json,md,png}``. ``--dry`` checks the rank block and
+lists the candidates, writing nothing.
 """
 
 from __future__ import annotations
@@ -14,7 +15,7 @@ from __future__ import annotations
 import argparse
 import sys
 
-from ..host import rank_orders
+from ..host import plan_rank, rank_orders
 from ..report import format_rank
 from ..validation import check_int
 
@@ -31,12 +32,26 @@ def configure(parser: argparse.ArgumentParser) -> None:
         help="markdown: table and recommendation; json: the ranked list (default: markdown)",
     )
     parser.add_argument(
+        "--dry", action="store_true", help="check the rank block and list the candidates"
+    )
+    parser.add_argument(
         "overrides", nargs="*", help="Hydra overrides, e.g. +rank=search rank.top_k=2"
     )
 
 
 def run(args: argparse.Namespace) -> int:
     jobs = check_int("option 'rank'", "jobs", args.jobs, low=1)
+    if args.dry:
+        config, candidates = plan_rank(args.dir, args.overrides)
+        rank = config.rank
+        assert rank is not None
+        print(
+            f"{len(candidates)} candidates for source {rank.source!r}; the best {rank.top_k} "
+            f"by {rank.proxy.family} on validation are confirmed with model {rank.model!r}:"
+        )
+        for name, entry in candidates.items():
+            print(f"  {name}: {entry.name} {entry.params}")
+        return 0
     found = rank_orders(
         args.dir,
         args.overrides,

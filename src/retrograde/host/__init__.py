@@ -36,7 +36,7 @@ from ._lock import pipeline_lock
 from ._lockfile import normalize_lock_order, order_lock_entries, ordered_keys
 from ._parallel import log_path_for, repro_argv, run_stages_in_parallel, stale_stages
 from ._plan import Shard, parse_shard, plan_shard, reproduce_shard, shard_of
-from ._rank import RANK_DIR, SCREEN_DIR, RankResult, rank_orders
+from ._rank import RANK_DIR, SCREEN_DIR, RankResult, plan_rank, rank_orders
 from ._repo import (
     HostRepo,
     dvc_argv,
@@ -107,6 +107,7 @@ __all__ = [
     "parse_repro_line",
     "parse_shard",
     "pipeline_lock",
+    "plan_rank",
     "plan_shard",
     "planned_files",
     "prepare_demo",

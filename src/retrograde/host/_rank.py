@@ -53,7 +53,7 @@ from ._progress import Progress
 from ._repo import HostRepo, run_dvc
 from ._screening import screen
 
-__all__ = ["RANK_DIR", "SCREEN_DIR", "RankResult", "rank_orders"]
+__all__ = ["RANK_DIR", "SCREEN_DIR", "RankResult", "plan_rank", "rank_orders"]
 
 #: the family-wise level of the Holm verdicts: ``collect`` adjusts at stats.adjust_holm's
 #: default alpha of 0.05
@@ -104,6 +104,16 @@ def _confirm(host: HostRepo, grid: RetrogradeConfig, jobs: int) -> dict[str, lis
         for event, stages in progress.counts().items():
             events.setdefault(event, []).extend(stages)
     return events
+
+
+def plan_rank(
+    host_dir: str | os.PathLike[str], overrides: Sequence[str] = ()
+) -> tuple[RetrogradeConfig, dict[str, OrderConfig]]:
+    """The composed config and the checked candidates of its space; nothing is written."""
+    host, config = compose_for(host_dir, overrides)
+    candidates = rank_candidates(config)
+    rank_proxy(config, host.root)
+    return config, candidates
 
 
 def rank_orders(
