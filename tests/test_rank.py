@@ -283,3 +283,30 @@ def test_the_recommendation_says_when_no_order_is_distinguishable_from_the_refer
     assert (
         "no candidate is distinguishably better" in text and "`a` is distinguishably worse" in text
     )
+
+
+def test_a_proxy_that_crashes_is_one_line_naming_the_screening_fit(tmp_path, monkeypatch):
+    from retrograde import families
+    from retrograde.errors import FitError
+
+    class Broken:
+        def fit_logprobs(self, *args, **kwargs):
+            raise ZeroDivisionError("division by zero")
+
+    monkeypatch.setattr(families, "make", lambda *args, **kwargs: Broken())
+    proxy = ModelConfig(family="ngram", params={"order": 2})
+    with pytest.raises(
+        FitError, match=r"rank.proxy: screening fit of 'ngram' in order forward {} on 8 training"
+    ):
+        screen(
+            {"reverse": OrderConfig(name="reverse")},
+            ("forward", OrderConfig(name="forward")),
+            proxy,
+            {"train": _units(8, 1), "valid": _units(4, 2)},
+            top_k=1,
+            eta=2,
+            min_fraction=1.0,
+            seed=0,
+            cache_dir=tmp_path,
+        )
+    assert not list(tmp_path.glob("*.json"))  # nothing cached for a failed fit

@@ -33,6 +33,7 @@ import numpy as np
 from .. import __version__
 from ..config import ModelConfig, OrderConfig, to_dict
 from ..data import SequenceSet, atomic_write_json, atomic_write_text
+from ..errors import FitError, RetrogradeError
 
 __all__ = ["SCREEN_CACHE_VERSION", "ScreenRound", "proxy_bits", "screen", "training_subset"]
 
@@ -116,10 +117,19 @@ def proxy_bits(
     transform = orders.make(order.name, **order.params)
     for units in (train, valid):
         orders.verify_bijection(transform, units, order_name=order.name)
-    model = families.make(proxy.family, **proxy.params)
-    logprobs = model.fit_logprobs(
-        transform.apply_set(train), None, transform.apply_set(valid), seed=seed
-    )
+    try:
+        model = families.make(proxy.family, **proxy.params)
+        logprobs = model.fit_logprobs(
+            transform.apply_set(train), None, transform.apply_set(valid), seed=seed
+        )
+    except RetrogradeError:
+        raise
+    except Exception as exc:  # a family's own bug: one line naming the fit, cause chained
+        raise FitError(
+            f"rank.proxy: screening fit of {proxy.family!r} in order {order.name} "
+            f"{order.params} on {len(train)} training units failed "
+            f"({type(exc).__name__}: {exc}); rerun with --debug for the traceback"
+        ) from exc
     nats = -float(np.asarray(logprobs.values, dtype=np.float64).sum())
     bits = nats / math.log(2) / max(int(len(valid.tokens)), 1)
     if path is not None:
