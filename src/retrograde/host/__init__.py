@@ -32,7 +32,7 @@ from ._driver import (
     write_pipeline_files,
 )
 from ._file_check import check_file, format_file_check, parse_order_spec, read_text
-from ._lock import pipeline_lock
+from ._lock import pipeline_lock, release_dead_dvc_locks
 from ._lockfile import normalize_lock_order, order_lock_entries, ordered_keys
 from ._parallel import log_path_for, repro_argv, run_stages_in_parallel, stale_stages
 from ._plan import Shard, parse_shard, plan_shard, reproduce_shard, shard_of
@@ -115,6 +115,7 @@ __all__ = [
     "rank_orders",
     "read_table_at",
     "read_text",
+    "release_dead_dvc_locks",
     "render_dvc_yaml",
     "repro_argv",
     "reproduce_shard",

@@ -9,6 +9,14 @@ system releases it when its process ends, however it ends, so a killed command n
 leaves a stale lock behind. The file holds who took it (command, process id, time), for
 the refusal message.
 
+A command killed while DVC ran leaves DVC's own record of the paths its processes were
+using (``.dvc/tmp/rwlock``). DVC forgets an entry whose process is gone, but not one
+whose process is a zombie - a killed process that nothing has reaped, as happens in a
+container whose first process does not reap orphans (many CI runners) - and then refuses
+every later run ("is busy"). Holding the pipeline lock, no other retrograde command can be
+using them, so :func:`pipeline_lock` drops the entries of dead and zombie processes, through
+DVC's own guarded edit of that file; entries of live processes are never touched.
+
 The stage processes DVC starts run under the lock of the command that started ``dvc
 repro``; they check in turn that ``params.yaml`` is still the file that command composed
 (``retrograde.config.params_digest``, passed in the environment).
@@ -28,7 +36,7 @@ from typing import IO, Any
 from ..config import LOG_DIR
 from ..errors import HostRepoError
 
-__all__ = ["LOCK_NAME", "pipeline_lock"]
+__all__ = ["LOCK_NAME", "pipeline_lock", "release_dead_dvc_locks"]
 
 LOCK_NAME = ".lock"
 
@@ -64,6 +72,47 @@ def _holder(path: Path) -> str:
     )
 
 
+def _gone(pid: int) -> bool:
+    """Whether process ``pid`` no longer runs (absent, or a zombie nothing has reaped)."""
+    import psutil  # a dependency of DVC
+
+    try:
+        return bool(psutil.Process(pid).status() == psutil.STATUS_ZOMBIE)
+    except psutil.NoSuchProcess:
+        return True
+    except psutil.Error:  # pragma: no cover - access denied: treat it as alive
+        return False
+
+
+def release_dead_dvc_locks(root: str | os.PathLike[str]) -> list[int]:
+    """Drop the entries of dead or zombie processes from DVC's ``rwlock``; their pids."""
+    path = Path(root) / ".dvc" / "tmp" / "rwlock"
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+        infos = [*data.get("write", {}).values()]
+        infos += [info for entries in data.get("read", {}).values() for info in entries]
+        pids = {int(info["pid"]) for info in infos}
+    except (OSError, ValueError, TypeError, KeyError, AttributeError):
+        return []  # no file, or one DVC itself will complain about
+    dead = sorted(pid for pid in pids if _gone(pid))
+    if not dead:
+        return []
+    from dvc.fs import localfs
+    from dvc.rwlock import _edit_rwlock
+
+    with _edit_rwlock(str(path.parent), localfs, False) as lock:
+        for key, info in list(lock["write"].items()):
+            if info["pid"] in dead:
+                del lock["write"][key]
+        for key, entries in list(lock["read"].items()):
+            kept = [info for info in entries if info["pid"] not in dead]
+            if kept:
+                lock["read"][key] = kept
+            else:
+                del lock["read"][key]
+    return dead
+
+
 @contextlib.contextmanager
 def pipeline_lock(root: str | os.PathLike[str], command: str) -> Iterator[None]:
     """Hold the pipeline folder's exclusive lock for the body, or refuse at once.
@@ -92,6 +141,7 @@ def pipeline_lock(root: str | os.PathLike[str], command: str) -> Iterator[None]:
         info = {"command": command, "pid": os.getpid(), "started": time.time()}
         handle.write(json.dumps(info))
         handle.flush()
+        release_dead_dvc_locks(root)
         try:
             yield
         finally:
