@@ -25,6 +25,10 @@ COMMANDS: dict[str, tuple[str, str]] = {
         "retrograde.commands.run",
         "compose the config, reproduce the pipeline, print the table",
     ),
+    "rank": (
+        "retrograde.commands.rank",
+        "screen a space of orders with a cheap proxy, confirm the best against the reference",
+    ),
     "table": ("retrograde.commands.table", "print the gap table of the last run"),
     "compare": ("retrograde.commands.compare", "diff the gap table between two git revisions"),
     "demo": ("retrograde.commands.demo", "run a demo study in a throwaway host repository"),

@@ -27,7 +27,10 @@ __all__ = [
     "FitCell",
     "ModelConfig",
     "OrderConfig",
+    "ProxyConfig",
+    "RankConfig",
     "RetrogradeConfig",
+    "ScreeningConfig",
     "SourceConfig",
     "SplitConfig",
     "StatsConfig",
@@ -230,9 +233,50 @@ class FitCell:
 
 
 @dataclass
+class ProxyConfig:
+    """The cheap family ``retrograde rank`` screens candidates with (on the validation split)."""
+
+    family: str = "ngram"
+    params: dict[str, Any] = field(default_factory=dict)
+
+
+@dataclass
+class ScreeningConfig:
+    """Successive halving: round 1 trains the proxy on ``min_fraction`` of the training
+    units; each later round keeps the best ``1/eta`` (never fewer than ``top_k``) and
+    multiplies the fraction by ``eta``, up to all training units."""
+
+    eta: int = 2
+    min_fraction: float = 0.25
+    seed: int = 0
+
+
+@dataclass
+class RankConfig:
+    """``retrograde rank``: which order of ``source`` should ``model`` be trained in?
+
+    ``space`` maps a registered order name to lists of parameter values (every combination
+    is one candidate, e.g. ``{block_reverse: {size: [2, 4]}}``); ``orders`` adds entries of
+    ``study.orders`` (custom orders) as they are.
+    """
+
+    source: str = ""
+    model: str = ""
+    proxy: ProxyConfig = field(default_factory=ProxyConfig)
+    #: the order gaps are measured against; ``study.reference_order`` when null
+    reference_order: str | None = None
+    space: dict[str, dict[str, Any]] = field(default_factory=dict)
+    orders: list[str] = field(default_factory=list)
+    top_k: int = 3
+    screening: ScreeningConfig = field(default_factory=ScreeningConfig)
+
+
+@dataclass
 class RetrogradeConfig:
     study: StudyConfig = field(default_factory=StudyConfig)
     stats: StatsConfig = field(default_factory=StatsConfig)
+    #: what ``retrograde rank`` searches; a command setting, never written to params.yaml
+    rank: RankConfig | None = None
     #: every fit stage, keyed by what DVC appends to ``fit@`` (``source-model-order-seed``)
     fits: dict[str, FitCell] | None = _composed()
 
@@ -241,8 +285,11 @@ class RetrogradeConfig:
         return [(c.source, c.model, c.order, c.seed) for c in (self.fits or {}).values()]
 
     def to_dict(self) -> dict[str, Any]:
-        """The plain dict written to ``params.yaml`` (field order kept)."""
-        return to_dict(self)
+        """The plain dict written to ``params.yaml`` (field order kept; no ``rank`` block,
+        which only ``retrograde rank`` reads and no stage depends on)."""
+        out = to_dict(self)
+        out.pop("rank", None)
+        return out
 
 
 def register_configs() -> None:

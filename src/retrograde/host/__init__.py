@@ -10,6 +10,7 @@ does, as functions the command line only calls:
   :class:`ClusterOptions` — its ``--cluster`` (fit stages as Dask tasks);
 - :func:`check_host`, :func:`check_file` — ``retrograde check``;
 - :func:`plan_shard`, :func:`reproduce_shard` — ``retrograde plan``;
+- :func:`rank_orders` — ``retrograde rank``: screen a space of orders, confirm the top k;
 - :func:`read_table_at` — the gap table at a git revision (``compare``, ``table``);
 - :func:`prepare_demo` — the throwaway demo host.
 
@@ -54,6 +55,7 @@ from ._parallel import (
     stale_stages,
 )
 from ._plan import Shard, parse_shard, plan_shard, reproduce_shard, shard_of
+from ._rank import RANK_DIR, SCREEN_DIR, RankResult, plan_rank, rank_orders
 from ._repo import (
     HostRepo,
     dvc_argv,
@@ -78,6 +80,7 @@ from ._scaffold import (
     planned_files,
     source_config,
 )
+from ._screening import SCREEN_CACHE_VERSION, ScreenRound, proxy_bits, screen, training_subset
 from ._stagefile import UNITS_BEGIN, UNITS_END, render_dvc_yaml
 
 __all__ = [
@@ -87,12 +90,17 @@ __all__ = [
     "GITIGNORE",
     "IGNORE_RULES",
     "MARKER",
+    "RANK_DIR",
+    "SCREEN_CACHE_VERSION",
+    "SCREEN_DIR",
     "SOURCE_CONFIG",
     "UNITS_BEGIN",
     "UNITS_END",
     "ClusterOptions",
     "HostRepo",
     "InstallResult",
+    "RankResult",
+    "ScreenRound",
     "RunResult",
     "Shard",
     "StageRun",
@@ -127,12 +135,15 @@ __all__ = [
     "parse_repro_line",
     "parse_shard",
     "pipeline_lock",
-    "release_dead_dvc_locks",
+    "plan_rank",
     "plan_shard",
     "planned_files",
     "prepare_demo",
+    "proxy_bits",
+    "rank_orders",
     "read_table_at",
     "read_text",
+    "release_dead_dvc_locks",
     "render_dvc_yaml",
     "repro_argv",
     "reproduce_shard",
@@ -145,10 +156,12 @@ __all__ = [
     "run_stage_batches",
     "run_stages_in_parallel",
     "run_tool",
+    "screen",
     "shard_of",
     "source_config",
     "stage_log",
     "stage_environment",
     "stale_stages",
+    "training_subset",
     "write_pipeline_files",
 ]

@@ -10,6 +10,8 @@ drawn (:func:`write_all`).
 - :func:`format_table` — the table as ``markdown``, ``json`` or ``csv`` text;
 - :func:`check_table` — a table read from a file, refused in one line unless printable;
 - :func:`table_warnings` — cautions that follow from the table itself;
+- :func:`rank_rows`, :func:`recommendation`, :func:`format_rank`, :func:`write_rank_figure`
+  — ``retrograde rank``'s ranked table, its sentence and its figure;
 - :func:`compare_tables`, :func:`format_changes` — what changed between two tables.
 """
 
@@ -23,6 +25,14 @@ from ._markdown import (
     is_reference_leaf,
     render_report,
     table_rows,
+)
+from ._rank import (
+    RANK_FIELDS,
+    format_rank,
+    rank_figure,
+    rank_rows,
+    recommendation,
+    write_rank_figure,
 )
 from ._write import (
     FORMATS,
@@ -41,6 +51,7 @@ __all__ = [
     "CONCLUSION",
     "FORMATS",
     "LEAF_FIELDS",
+    "RANK_FIELDS",
     "REQUIRED_FIELDS",
     "STAGING",
     "STATUSES",
@@ -49,10 +60,15 @@ __all__ = [
     "compare_tables",
     "format_changes",
     "format_table",
+    "format_rank",
     "is_reference_leaf",
+    "rank_figure",
+    "rank_rows",
+    "recommendation",
     "recover_report",
     "render_report",
     "table_rows",
     "table_warnings",
     "write_all",
+    "write_rank_figure",
 ]
