@@ -147,15 +147,23 @@ def metrics_without_times(metrics: str) -> str:
 
 
 def report_without_measured(report: str) -> str:
-    """``report.md`` without the measured times: the last two cells (fit wall and CPU
-    seconds) of each row of the budget tables."""
-    kept, in_budget = [], False
+    """``report.md`` without the measured times: the cells of the budget tables' fit wall
+    and CPU seconds columns (found by their headers) read ``(time)``."""
+    kept: list[str] = []
+    timed: list[int] = []  # the columns of the current table that hold times
     for line in report.splitlines():
         if "fit wall s" in line:
-            in_budget = True
+            timed = [
+                i
+                for i, cell in enumerate(line.split("|"))
+                if "fit wall s" in cell or "fit CPU s" in cell
+            ]
         elif not line.startswith("|"):
-            in_budget = False
-        elif in_budget and not line.startswith("|---"):
-            line = "|".join(line.split("|")[:-3]) + "| (time) | (time) |"
+            timed = []
+        elif timed and not line.startswith("|---"):
+            cells = line.split("|")
+            for i in timed:
+                cells[i] = " (time) "
+            line = "|".join(cells)
         kept.append(line)
     return "\n".join(kept)

@@ -357,6 +357,8 @@ def test_data_size_sweep_runs_nested_subsamples_and_draws_them_against_training_
             "source=[markov]",
             "study=smoke",
             "study.models.ngram.params.order=2",
+            # the subsample alone: no half-sample of it (checked below by its own sizes)
+            "++study.models.ngram.train_sample=none",
             f"+study.sweeps.data={{model: ngram, parameter: train_fraction, values: {values}}}",
             "study.seeds=[0,1]",
             "stats.n_boot=50",

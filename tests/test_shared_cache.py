@@ -19,8 +19,8 @@ import yaml
 
 from _host_fixtures import DVC, dvc_events, new_pipeline_host, sh
 
-SMOKE = "study=smoke"  # 2 fit stages (the n-gram is fitted once per order)
-FITS = [f"fit@corpus-ngram-{order}-0" for order in ("forward", "reverse")]
+SMOKE = "study=smoke"  # 4 fit cells
+FITS = [f"fit@corpus-ngram-{order}-{seed}" for order in ("forward", "reverse") for seed in (0, 1)]
 
 
 # ---------------------------------------------------------------- the recipe in docs/ci.md
@@ -74,7 +74,7 @@ def test_the_documented_shard_and_final_jobs_fit_each_cell_once_and_the_final_jo
     assert sorted(planned) == sorted(FITS)  # each cell in exactly one shard
     for i in (1, 2):  # a shard fits its own cells and no other
         cells = clones[f"shard{i}"] / "pipelines/retrograde/cells/corpus/ngram"
-        assert len(list(cells.glob("*/seed*"))) == 1
+        assert len(list(cells.glob("*/seed*"))) == 2
 
     final = _bash(blocks["ci-gather"], clones["final"], OVERRIDES=SMOKE)
     events = dvc_events(clones["final"])  # DVC's own words, from run's log
@@ -85,8 +85,8 @@ def test_the_documented_shard_and_final_jobs_fit_each_cell_once_and_the_final_jo
     for name in FITS:
         assert f"Stage 'pipelines/retrograde/dvc.yaml:{name}' is cached - skipping run" in log
     # ... and is the very bytes the shard that fitted it produced.
-    for order, seed in (("forward", 0), ("reverse", 0)):
-        fitted_by = clones["shard1" if order == "forward" else "shard2"]
+    for order, seed in (("forward", 0), ("reverse", 1)):
+        fitted_by = clones["shard1" if seed == 0 else "shard2"]
         path = Path(f"pipelines/retrograde/cells/corpus/ngram/{order}/seed{seed}/test_logprobs.npy")
         assert (clones["final"] / path).read_bytes() == (fitted_by / path).read_bytes()
     assert (clones["final"] / "pipelines/retrograde/metrics.json").is_file()
