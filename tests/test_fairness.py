@@ -286,9 +286,18 @@ def test_orders_whose_budgets_differ_by_more_than_5_percent_are_named():
             }
         }
     }
-    lines = table_stage._budget_flags(table, "forward")
+    from retrograde.config import ModelConfig, StudyConfig
+
+    study = StudyConfig(models={"m": ModelConfig(family="mlp")})
+    lines = table_stage._budget_flags(table, "forward", study)
     assert table["s"]["m"]["reverse"]["budget_unequal"] == ["train_tokens"]
     assert len(lines) == 1 and "train_tokens by 30% (forward 100, reverse 130)" in lines[0]
+    # an n-gram stores the types each order's data holds: its n_params is not a budget
+    table["s"]["m"]["reverse"]["budget"] = {"train_tokens": 100, "steps": 10, "n_params": 9}
+    assert len(table_stage._budget_flags(table, "forward", study)) == 1  # mlp: flagged
+    ngram = StudyConfig(models={"m": ModelConfig(family="ngram")})
+    assert table_stage._budget_flags(table, "forward", ngram) == []
+    assert table["s"]["m"]["reverse"]["budget_unequal"] == []
     equal = {"forward": {"train_tokens": 100}, "reverse": {"train_tokens": 104}}
     assert stats.unequal_budgets(equal) == {}
 

@@ -52,6 +52,10 @@ class Family(ABC):
     #: once, before its first fit, instead of every fit stage paying for them
     #: (:mod:`retrograde.stages.server`).
     warm_imports: ClassVar[tuple[str, ...]] = ()
+    #: Whether ``n_parameters()`` counts what the data put there (an n-gram's stored types)
+    #: rather than a size the config chose: orders of one model then differ in it by
+    #: nature, so the table does not flag that difference as an unequal budget.
+    parameters_follow_data: ClassVar[bool] = False
     #: the parameter a context-length sweep varies (None: the family names none)
     context_parameter: ClassVar[str | None] = None
     #: what a sweep can hold equal across its values (``steps``, ``tokens``) -> the

@@ -58,6 +58,8 @@ class NGram(Family):
     numerics_version: ClassVar[int] = 2
     #: counting is exact: the seed only chooses the training sample (retrograde.data.resample_train)
     has_own_randomness: ClassVar[bool] = False
+    #: n_parameters() counts the n-gram types each order's data holds
+    parameters_follow_data: ClassVar[bool] = True
     #: small, fast parameters for the conformance test and the docs
     example_params: ClassVar[dict[str, Any]] = {"order": 3}
 

@@ -490,7 +490,7 @@ def collect(wdir: Path, config: RetrogradeConfig) -> dict[str, Any]:
                 )
     stats.adjust_holm(table, reference_order=reference)
     stats.simultaneous_intervals(table, replicates, reference_order=reference)
-    flags = _budget_flags(table, reference) + [
+    flags = _budget_flags(table, reference, study) + [
         line
         for source in study.sources
         for line in _training_flags(
@@ -561,13 +561,26 @@ def _seed_warnings(study: StudyConfig) -> list[str]:
     return warnings
 
 
-def _budget_flags(table: dict[str, Any], reference: str) -> list[str]:
+def _budget_flags(table: dict[str, Any], reference: str, study: StudyConfig) -> list[str]:
     """Mark, in every leaf, the counted budgets its model's orders differ on by more than
-    5% (``budget_unequal``); return the report's warning lines."""
+    5% (``budget_unequal``); return the report's warning lines.
+
+    A family whose parameter count follows the data (``Family.parameters_follow_data``:
+    an n-gram stores the types each order's data holds) is not compared on ``n_params``:
+    no setting could hold it equal."""
+    from .. import families
+
     lines = []
     for source, models in table.items():
         for model, leaves in models.items():
-            unequal = stats.unequal_budgets({o: leaf["budget"] for o, leaf in leaves.items()})
+            family = families.registry.get(study.models[model].family)
+            fields = [
+                field
+                for field in stats.COMPARED_BUDGETS
+                if field != "n_params" or not getattr(family, "parameters_follow_data", False)
+            ]
+            budgets = {o: leaf["budget"] for o, leaf in leaves.items()}
+            unequal = stats.unequal_budgets(budgets, fields)
             for leaf in leaves.values():
                 leaf["budget_unequal"] = sorted(unequal)
             if not unequal:
