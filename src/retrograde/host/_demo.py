@@ -101,11 +101,11 @@ def next_steps(folder: Path) -> str:
     # `make demo` runs .venv/bin/retrograde without activating the environment.
     installed = Path(sys.executable).parent / "retrograde"
     command = "retrograde" if shutil.which("retrograde") == str(installed) else str(installed)
+    figures = ", ".join(sorted(p.name for p in (pipeline / "plots").glob("*.png"))) or "none"
     return f"""
 The table above is in {pipeline / "report.md"} (with its cautions and each cell's
 budget), {pipeline / "metrics.json"} and {pipeline / "cells.csv"} (per seed); figures
-are in {pipeline / "plots"}/ (gaps.png, learning_curves.png, position_profile.png,
-position_profile_relative.png). The corpus is INVENTED demo data.
+are in {pipeline / "plots"}/ ({figures}). The corpus is INVENTED demo data.
 
 Try next, inside {folder}:
   1. edit conf/retrograde/study/demo.yaml (e.g. ngram order: 8 -> 5), then
