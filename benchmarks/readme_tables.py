@@ -262,7 +262,7 @@ def pipeline_section(result: dict[str, Any]) -> list[str]:
             f"{summary['noop_over_bare_cpu_jobs1']:.2f} / {summary['noop_over_bare_cpu_jobs2']:.2f}",
         ],
         [
-            "`metrics.json` the same bytes for every `--jobs`",
+            "`metrics.json` the same bytes for every `--jobs` (but for measured times)",
             "yes",
             "yes" if summary["same_results_for_every_jobs"] else "NO",
         ],
@@ -274,8 +274,13 @@ def pipeline_section(result: dict[str, Any]) -> list[str]:
         _machine(result),
         "",
         f"{g['sources']} sources x {g['orders']} orders x {g['models']} models x {g['seeds']} "
-        f"seeds = {cells} grid cells in {g['fit_stages']} fit stages (the n-gram ignores the "
-        "seed: one fit per source and order). CPU is every process's (`os.wait4`).",
+        f"seeds = {cells} grid cells in {g['fit_stages']} fit stages"
+        + (
+            " (each seed of the n-gram trains on its own half-sample: a fit per cell)"
+            if g["fit_stages"] == cells
+            else " (a model that ignores the seed is fitted once per source and order)"
+        )
+        + ". CPU is every process's (`os.wait4`).",
         "",
         _table(["check", "target", "measured"], checks),
         "",
