@@ -20,6 +20,7 @@ from __future__ import annotations
 import contextlib
 import glob
 import inspect
+import json
 import os
 import re
 import stat
@@ -306,6 +307,21 @@ def find_lone_carriage_return(path: Path | str, data: bytes) -> None:
 
 
 _LONE_CR = re.compile(rb"\r(?!\n)")
+
+
+def json_object(line: str, where: str) -> dict[str, Any]:
+    """One line of a JSONL file as the JSON object it must hold; else one line naming
+    ``where`` (``file:line``)."""
+    try:
+        record = json.loads(line)
+    except json.JSONDecodeError as exc:
+        raise DataError(
+            f"{where}: invalid JSON at column {exc.colno} ({exc.msg}); "
+            "each line must be one JSON object"
+        ) from None
+    if not isinstance(record, dict):
+        raise DataError(f"{where}: expected a JSON object, got {type(record).__name__}")
+    return record
 
 
 def iter_lines(path: Path, errors: str) -> Iterator[tuple[int, str, int]]:

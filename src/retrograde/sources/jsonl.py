@@ -16,7 +16,7 @@ import numpy as np
 from ..data import SPLITS, Document
 from ..errors import DataError
 from ..validation import invalid
-from ._base import EncodedFileSource, iter_lines
+from ._base import EncodedFileSource, iter_lines, json_object
 
 __all__ = ["JsonlSource"]
 
@@ -100,15 +100,7 @@ class JsonlSource(EncodedFileSource):
             )
 
     def _parse(self, line: str, where: str, doc_id: int) -> Document:
-        try:
-            record = json.loads(line)
-        except json.JSONDecodeError as exc:
-            raise DataError(
-                f"{where}: invalid JSON at column {exc.colno} ({exc.msg}); "
-                "each line must be one JSON object"
-            ) from None
-        if not isinstance(record, dict):
-            raise DataError(f"{where}: expected a JSON object, got {type(record).__name__}")
+        record = json_object(line, where)
         if self.field not in record:
             keys = ", ".join(sorted(record)) or "none"
             raise DataError(

@@ -32,7 +32,7 @@ from typing import Any
 from ..data import FIELD_SEPARATOR, Document
 from ..errors import DataError
 from ..validation import invalid
-from ._base import EncodedFileSource, iter_lines
+from ._base import EncodedFileSource, iter_lines, json_object
 
 __all__ = ["SEPARATOR_SPAN", "RecordsSource"]
 
@@ -122,15 +122,7 @@ class RecordsSource(EncodedFileSource):
             )
 
     def _parse(self, line: str, where: str, doc_id: int) -> Document:
-        try:
-            record = json.loads(line)
-        except json.JSONDecodeError as exc:
-            raise DataError(
-                f"{where}: invalid JSON at column {exc.colno} ({exc.msg}); "
-                "each line must be one JSON object"
-            ) from None
-        if not isinstance(record, dict):
-            raise DataError(f"{where}: expected a JSON object, got {type(record).__name__}")
+        record = json_object(line, where)
         values = [self._field_text(record, key, where) for key in self.fields]
         text = FIELD_SEPARATOR.join(values)
         return Document(
