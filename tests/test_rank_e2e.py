@@ -160,6 +160,37 @@ def test_a_bad_rank_block_is_one_line_exit_2_and_writes_nothing(tmp_path, capsys
     assert snapshot(host) == before
 
 
+@pytest.mark.parametrize(
+    ("block", "expected"),
+    [
+        ("space: {reverse: {}, stride: {step: [2]}}\ntop_k: 3", "rank.top_k=3 is more than"),
+        ("space: {reverse: {}}\ntop_kk: 1", "unknown config key 'rank.top_kk'"),
+    ],
+)
+def test_check_validates_the_rank_block_as_rank_would(tmp_path, capsys, block, expected):
+    host = new_pipeline_host(tmp_path / "host")
+    (host / "conf" / "retrograde" / "rank").mkdir()
+    text = "# @package rank\nsource: corpus\nmodel: ngram\n" + block + "\n"
+    (host / "conf" / "retrograde" / "rank" / "search.yaml").write_text(text)
+    capsys.readouterr()
+    before = snapshot(host)
+    status = main(["check", "--dir", str(host), "+rank=search"])
+    out, err = capsys.readouterr()
+    assert (status, out) == (2, "")
+    assert len(err.strip().splitlines()) == 1 and expected in err, err
+    assert snapshot(host) == before  # refused before check writes params.yaml
+    # a good block: one line naming the candidates, and the same list as rank --dry
+    (host / "conf" / "retrograde" / "rank" / "search.yaml").write_text(
+        "# @package rank\nsource: corpus\nmodel: ngram\nspace: {reverse: {}, rotate: {shift: [1, 2]}}\ntop_k: 2\n"
+    )
+    assert main(["check", "--dir", str(host), "--json", "+rank=search"]) == 0
+    report = json.loads(capsys.readouterr().out)
+    assert report["rank"]["candidates"] == ["reverse", "rotate_shift1", "rotate_shift2"]
+    assert report["rank"]["top_k"] == 2
+    assert main(["check", "--dir", str(host), "+rank=search"]) == 0
+    assert "rank: 3 candidate orders for source 'corpus'" in capsys.readouterr().out
+
+
 def test_rank_without_a_rank_block_says_how_to_add_one(tmp_path, capsys):
     host = new_pipeline_host(tmp_path / "host")
     capsys.readouterr()

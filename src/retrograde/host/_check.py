@@ -196,11 +196,13 @@ def check_host(host_dir: str, overrides: Sequence[str] = ()) -> dict[str, Any]:
     """
     host, config = compose_for(host_dir, overrides)
     study = config.study
+    rank = _check_rank(config, host.root)  # before anything is written, as rank --dry
     _check_source_files(host, config)
     sources = round_trip_orders(host.root, config)
     cells = cell_status(host, config)
     written = cells.pop("written")
     return {
+        **({"rank": rank} if rank is not None else {}),
         "written": written,
         "grid": {
             "sources": list(study.sources),
@@ -214,6 +216,25 @@ def check_host(host_dir: str, overrides: Sequence[str] = ()) -> dict[str, Any]:
         },
         "round_trip": sources,
         "cells": cells,
+    }
+
+
+def _check_rank(config: Any, root: Path) -> dict[str, Any] | None:
+    """The config's ``rank`` block checked as ``retrograde rank --dry`` checks it (values,
+    the space of candidates, the proxy family); None without one. Raises ``ConfigError``."""
+    if config.rank is None:
+        return None
+    from ..config import rank_candidates, rank_proxy
+
+    candidates = rank_candidates(config)
+    rank_proxy(config, root)
+    rank = config.rank
+    return {
+        "source": rank.source,
+        "model": rank.model,
+        "proxy": rank.proxy.family,
+        "top_k": int(rank.top_k),
+        "candidates": list(candidates),
     }
 
 
@@ -257,6 +278,13 @@ def format_host_check(
             lines.append(f"  subsample: {cap} of {before} units kept (subsample.max_units)")
         if "vocabulary" in info:
             lines += format_vocabulary(source, info["vocabulary"], vocabulary_limit)
+    rank = report.get("rank")
+    if rank:
+        lines.append(
+            f"rank: {len(rank['candidates'])} candidate orders for source {rank['source']!r}; "
+            f"the best {rank['top_k']} by {rank['proxy']} on validation would be confirmed "
+            f"with model {rank['model']!r} (`retrograde rank`): ok"
+        )
     cells = report["cells"]
     for source, stages in cells.get("stale_inputs", {}).items():
         lines.append(
