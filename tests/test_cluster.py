@@ -6,6 +6,7 @@ import json
 import subprocess
 import sys
 import textwrap
+from pathlib import Path
 
 import pytest
 
@@ -148,6 +149,73 @@ class Crashing(Family):
     def next_token_probs(self, contexts):
         raise NotImplementedError
 """
+
+
+WORKER_KILLING_FAMILY = """\
+import os
+import signal
+from pathlib import Path
+
+from retrograde.families.ngram import NGram
+
+def _dask_worker_pid():
+    # The nearest ancestor started by multiprocessing (a LocalCluster worker process).
+    pid = os.getppid()
+    while pid > 1:
+        if b"spawn_main" in Path(f"/proc/{pid}/cmdline").read_bytes():
+            return pid
+        pid = int(Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[1])
+    raise RuntimeError("this fit does not run below a Dask worker process")
+
+
+class KillsItsWorker(NGram):
+    name = "kills_its_worker"
+
+    def fit(self, train, valid=None, seed=0):
+        try:  # only the first fit, of any cell, on any worker (the flag file is new)
+            flag = os.open(os.environ["KILL_FLAG"], os.O_CREAT | os.O_EXCL | os.O_WRONLY)
+        except FileExistsError:
+            return super().fit(train, valid, seed=seed)
+        worker = _dask_worker_pid()
+        os.write(flag, str(worker).encode())
+        os.close(flag)
+        os.kill(worker, signal.SIGKILL)  # the worker is lost mid-cell
+        os._exit(1)  # and this fit with it
+"""
+
+
+@pytest.mark.slow
+@pytest.mark.dvc
+def test_a_lost_worker_s_cell_is_fitted_again_on_another_and_the_run_completes(
+    tmp_path, capsys, monkeypatch
+):
+    plain = new_pipeline_host(tmp_path / "plain")
+    spread = new_pipeline_host(tmp_path / "cluster")
+    plugins = tmp_path / "plugins"
+    plugins.mkdir()
+    (plugins / "worker_killers.py").write_text(WORKER_KILLING_FAMILY)
+    monkeypatch.setenv("PYTHONPATH", str(plugins))  # the workers start with this environment
+    monkeypatch.syspath_prepend(str(plugins))  # compose builds the family in this process
+    model = ["~study.models.ngram", "+study.models.k={_target_: worker_killers.KillsItsWorker}"]
+    flag = tmp_path / "worker-killed"
+    flag.write_text("")  # the plain run (no cluster) must never kill
+    monkeypatch.setenv("KILL_FLAG", str(flag))
+    status, out_plain, err = _run(capsys, "--dir", str(plain), *SMOKE, *model)
+    assert status == 0, err
+    flag.unlink()  # the cluster's first fit kills its worker
+    status, out_cluster, err = _run(
+        capsys, "--dir", str(spread), "--cluster", "local:2", *SMOKE, *model
+    )
+    assert status == 0, err
+    # a worker process really was killed mid-cell (its pid is gone, or a zombie)
+    worker = int(flag.read_text())
+    stat = Path(f"/proc/{worker}/stat")
+    assert not stat.exists() or stat.read_text().rsplit(")", 1)[1].split()[0] == "Z"
+    assert out_cluster == out_plain  # every cell was fitted after all: the same gap table
+    metrics = [
+        metrics_without_times((h / PIPELINE / "metrics.json").read_text()) for h in (plain, spread)
+    ]
+    assert metrics[0] == metrics[1]
 
 
 @pytest.mark.slow
