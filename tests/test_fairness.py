@@ -475,3 +475,25 @@ def test_docstring_examples_of_the_fairness_modules_run():
     ):
         failures, _ = doctest.testmod(module, optionflags=doctest.ELLIPSIS)
         assert failures == 0, module.__name__
+
+
+def test_a_difference_the_table_does_not_compare_is_shown_but_not_flagged():
+    from retrograde.report._fairness import budget_vs_reference
+
+    # an n-gram's n_params counts what each order's data holds: the table leaves it out of
+    # budget_unequal (Family.parameters_follow_data), so the report shows it unflagged
+    orders = {
+        "forward": {
+            **{"gap_pct": 0.0, "gap_pct_low": 0.0, "gap_pct_high": 0.0},  # the reference
+            "budget": {"train_tokens": 100, "n_params": 100},
+        },
+        "reverse": {
+            "gap_pct": 1.0,
+            "p_value_holm": 0.5,
+            "budget": {"train_tokens": 100, "n_params": 160},
+            "budget_unequal": [],
+        },
+    }
+    assert budget_vs_reference(orders, "reverse") == "n_params +60.0%"
+    orders["reverse"]["budget_unequal"] = ["n_params"]  # a family whose size is a setting
+    assert budget_vs_reference(orders, "reverse") == "n_params +60.0% **(>5%)**"

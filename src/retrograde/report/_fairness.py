@@ -56,7 +56,8 @@ def markdown_tuning(table: Table) -> str:
 
 def budget_vs_reference(orders: Mapping[str, Mapping[str, Any]], order: str) -> str:
     """How ``order``'s counted budgets compare with the reference order's, for a report row:
-    ``equal``, or each field that differs (``train_tokens +23%``), flagged beyond 5%."""
+    ``equal``, or each field that differs (``train_tokens +23%``), flagged beyond 5% when
+    the table compares that field for the model (its leaf's ``budget_unequal``)."""
     from ._markdown import is_reference_leaf
 
     reference = next((o for o, leaf in orders.items() if is_reference_leaf(leaf)), None)
@@ -66,6 +67,10 @@ def budget_vs_reference(orders: Mapping[str, Mapping[str, Any]], order: str) -> 
     if order == reference:
         return "reference"
     theirs = orders[reference].get("budget") or {}
+    # flagged: the fields the table compares for this model (an n-gram's n_params counts
+    # what its data holds, so it is shown but not flagged: Family.parameters_follow_data)
+    counted = orders[order].get("budget_unequal")
+    compared = _COMPARED if counted is None else tuple(counted)
     parts = []
     for field in _COMPARED:
         a, b = mine.get(field), theirs.get(field)
@@ -73,6 +78,6 @@ def budget_vs_reference(orders: Mapping[str, Mapping[str, Any]], order: str) -> 
             continue
         change = a / b - 1.0
         if abs(change) > 0.0005:
-            flag = " **(>5%)**" if abs(change) > 0.05 else ""
+            flag = " **(>5%)**" if abs(change) > 0.05 and field in compared else ""
             parts.append(f"{field} {change:+.1%}{flag}")
     return "; ".join(parts) or "equal"
