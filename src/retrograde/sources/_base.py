@@ -111,6 +111,13 @@ class EncodedFileSource(FileSource):
     def paths(self) -> list[Path]:
         return expand_files(self._owner, "files", self.files)
 
+    def _no_records(self) -> DataError:
+        """The error of a JSONL source whose files hold no record at all."""
+        return DataError(
+            f"{self._owner}: no records in {', '.join(map(str, self.paths()))}; "
+            "the files are empty"
+        )
+
 
 class CalibrationSource(Source):
     """A synthetic source with an exact per-unit negative log-likelihood (the floor)."""

@@ -94,10 +94,7 @@ class JsonlSource(EncodedFileSource):
                 yield document
                 doc_id += 1
         if doc_id == 0:
-            raise DataError(
-                f"{self._owner}: no records in {', '.join(map(str, self.paths()))}; "
-                "the files are empty"
-            )
+            raise self._no_records()
 
     def _parse(self, line: str, where: str, doc_id: int) -> Document:
         record = json_object(line, where)

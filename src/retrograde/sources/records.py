@@ -116,10 +116,7 @@ class RecordsSource(EncodedFileSource):
                 yield self._parse(line, f"{path}:{line_number}", doc_id)
                 doc_id += 1
         if doc_id == 0:
-            raise DataError(
-                f"{self._owner}: no records in {', '.join(map(str, self.paths()))}; "
-                "the files are empty"
-            )
+            raise self._no_records()
 
     def _parse(self, line: str, where: str, doc_id: int) -> Document:
         record = json_object(line, where)
