@@ -167,6 +167,19 @@ def test_a_bad_record_is_one_line_naming_file_and_line(tmp_path, line, message):
         list(source.documents())
 
 
+@pytest.mark.parametrize(
+    ("name", "params"), [("records", {"fields": ["a"]}), ("jsonl", {"field": "a"})]
+)
+def test_a_file_without_records_is_one_line_naming_it(tmp_path, name, params):
+    path = tmp_path / "empty.jsonl"
+    path.write_text("\n  \n")  # blank lines only
+    source = sources.make(name, files=str(path), **params)
+    with pytest.raises(DataError) as info:
+        list(source.documents())
+    message = str(info.value)
+    assert "\n" not in message and f"no records in {path}" in message
+
+
 def test_a_bad_floor_field_names_file_and_line(tmp_path):
     path = tmp_path / "r.jsonl"
     path.write_text('{"a": "x", "p": 1.5}\n{"a": "y", "p": -2}\n')
