@@ -114,8 +114,7 @@ class EncodedFileSource(FileSource):
     def _no_records(self) -> DataError:
         """The error of a JSONL source whose files hold no record at all."""
         return DataError(
-            f"{self._owner}: no records in {', '.join(map(str, self.paths()))}; "
-            "the files are empty"
+            f"{self._owner}: no records in {', '.join(map(str, self.paths()))}; the files are empty"
         )
 
 
