@@ -49,6 +49,18 @@ def _style(index: int) -> dict[str, Any]:
     }
 
 
+def _legend_on_top(figure: Any, handles: dict[str, Any], title: str) -> None:
+    """One legend above the panels: an entry per name in ``handles`` (name -> artist)."""
+    figure.legend(
+        list(handles.values()),
+        list(handles),
+        title=title,
+        loc="outside upper center",
+        ncols=min(len(handles), 6),
+        fontsize="small",
+    )
+
+
 def _caption(figure: Figure, text: str) -> None:
     """A note under the figure, wrapped to its width (about 14 small characters an inch)."""
     width = max(40, int(figure.get_figwidth() * 14))
@@ -176,14 +188,7 @@ def gap_figure(table: Mapping[str, Any], level: float | None = None) -> Figure:
         ax.set_ylabel(f"gap to {reference or 'reference order'} (%)")
         ax.set_title(f"source: {source}")
     if handles:
-        figure.legend(
-            list(handles.values()),
-            list(handles),
-            title="model",
-            loc="outside upper center",
-            ncols=min(len(handles), 6),
-            fontsize="small",
-        )
+        _legend_on_top(figure, handles, "model")
     _caption(
         figure,
         "gap = 100 × (NLL of the order / NLL of the reference order − 1) on the same test "
@@ -528,14 +533,7 @@ def span_figure(spans: Mapping[str, Any], level: float | None = None) -> Figure:
         ax.set_ylabel(f"bits per unit minus {reference}")
         ax.set_title(f"{source} / {model}")
     if handles:
-        figure.legend(
-            list(handles.values()),
-            list(handles),
-            title="order",
-            loc="outside upper center",
-            ncols=min(len(handles), 6),
-            fontsize="small",
-        )
+        _legend_on_top(figure, handles, "order")
     shown = "95%" if level is None else f"{level:.0%}"
     _caption(
         figure,
