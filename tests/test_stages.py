@@ -598,3 +598,63 @@ def test_a_progress_bar_writes_one_log_line_per_tenth_it_crosses():
             bar.update(step)
     percents = [line.split(": ")[1].split("%")[0] for line in log.getvalue().splitlines()]
     assert percents == ["10", "40", "100"]
+
+
+def test_table_pairs_seeds_only_where_fits_of_two_orders_share_something(tmp_path):
+    # The mlp draws each order's random numbers from a stream of its own and no training
+    # sample: unpaired (Welch's form). The ngram's seeds choose half-samples, the same units
+    # in both orders: paired. (config.seeds_paired; docs/statistics.md, "Seeds and pairs")
+    from retrograde import stats
+
+    wdir = _host(
+        tmp_path / "host",
+        [
+            "source=[markov]",
+            "study=smoke",
+            "study.seeds=[0,1,2]",
+            "study.models.ngram.params.order=2",
+            "study.sources.markov.calibration.n_units=80",
+            "+study.models.net={family: mlp, params: {window: 2, hidden: 4, epochs: 2}}",
+            "stats.n_boot=50",
+        ],
+    )
+    config = load_params(wdir)
+    assert units_stage.main(["--params", str(wdir), "--source", "markov"]) == 0
+    for order in ("forward", "reverse"):
+        argv = ["--params", str(wdir), "--source", "markov", "--order", order]
+        assert reorder_stage.main(argv) == 0
+    for source, model, order, seed in config.cells():
+        argv = ["--source", source, "--model", model, "--order", order, "--seed", str(seed)]
+        assert fit_stage.main(["--params", str(wdir), *argv]) == 0
+    collected = table_stage.collect(wdir, config)
+    table = collected["table"]["markov"]
+    assert {leaf["seeds_paired"] for leaf in table["net"].values()} == {False}
+    assert {leaf["seeds_paired"] for leaf in table["ngram"].values()} == {True}
+    test = SequenceSet.load(wdir / "data/markov/units/test")
+    offsets = np.concatenate([[0], np.cumsum(test.lengths + 1)])
+    losses = {
+        order: np.stack(
+            [
+                -Ragged(
+                    np.load(wdir / f"cells/markov/net/{order}/seed{s}/test_logprobs.npy"), offsets
+                ).sums()
+                for s in (0, 1, 2)
+            ]
+        )
+        for order in ("forward", "reverse")
+    }
+    expected = {
+        paired: stats.summarize_model(
+            losses, reference_order="forward", n_tokens=test.lengths, paired_seeds=paired
+        )["reverse"]
+        for paired in (True, False)
+    }
+    leaf = table["net"]["reverse"]
+    assert (leaf["gap_pct_low"], leaf["gap_pct_high"]) == (
+        expected[False]["gap_pct_low"],
+        expected[False]["gap_pct_high"],
+    )
+    assert leaf["gap_pct_low"] != expected[True]["gap_pct_low"]
+    assert table_stage.main(["--params", str(wdir)]) == 0
+    report = (wdir / "report.md").read_text()
+    assert "Seeds of `net` are not paired across orders" in " ".join(report.split())

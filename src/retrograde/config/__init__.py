@@ -36,6 +36,7 @@ from ._grid import (
     fitted_seed,
     grid_size,
     ignores_seed,
+    seeds_paired,
 )
 from ._hydra import compose_raw, first_line
 from ._layout import (
@@ -173,6 +174,7 @@ __all__ = [
     "register_configs",
     "reorder_stage_name",
     "resolve_plugins",
+    "seeds_paired",
     "resolved_params",
     "to_dict",
     "tune_settings",

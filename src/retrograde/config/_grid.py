@@ -20,6 +20,7 @@ __all__ = [
     "fitted_seed",
     "grid_size",
     "ignores_seed",
+    "seeds_paired",
 ]
 
 #: what a sweep may hold equal across its values
@@ -127,6 +128,38 @@ def ignores_seed(spec: ModelConfig) -> bool:
     if getattr(family, "has_own_randomness", True):
         return False
     return resolve_train_sample(spec.train_sample, family) == "none"
+
+
+def seeds_paired(spec: ModelConfig) -> bool:
+    """Whether seed ``s`` of two orders of this model must be compared as a pair: the one
+    rule the table stage follows (``summarize_model(paired_seeds=...)``).
+
+    Fits of two orders with the same seed share what the seed chooses of the training units
+    (a ``train_fraction`` subsample, a ``train_sample`` draw), and, unless the family draws
+    its own random numbers from a stream of each order's own (``Family.own_stream_per_order``:
+    ``mlp``, the torch families), the random numbers themselves. Only fits that share
+    neither are independent, and only then is each order's seed variation estimated apart
+    (Welch's form, up to twice the degrees of freedom); every other model is paired, which
+    is right whatever two fits share (``docs/statistics.md``, "Seeds and pairs").
+
+    Examples
+    --------
+    >>> seeds_paired(ModelConfig(family="mlp")), seeds_paired(ModelConfig(family="ngram"))
+    (False, True)
+    >>> seeds_paired(ModelConfig(family="mlp", train_fraction=0.5))
+    True
+    >>> seeds_paired(ModelConfig(family="command", params={"command": "x"}))
+    True
+    """
+    from .. import families
+    from ..data import resolve_train_sample
+
+    family = families.registry.get(spec.family)
+    if not getattr(family, "own_stream_per_order", False):
+        return True
+    if float(spec.train_fraction) < 1.0:
+        return True
+    return resolve_train_sample(spec.train_sample, family) != "none"
 
 
 def fitted_seed(study: StudyConfig, model: str, seed: int) -> int:

@@ -15,6 +15,7 @@ layer needs is imported from here (``from retrograde.data import SequenceSet``);
 - which training units a seed trains on (:func:`resample_train`, :func:`resolve_train_sample`)
   for families with no randomness of their own;
 - nested subsamples of the training units for the data-size sweep (:func:`nested_subsample`);
+- the seed of each order's own random numbers (:func:`order_seed`);
 - atomic file writing (a temporary sibling, then a rename).
 """
 
@@ -31,6 +32,7 @@ from ._files import (
     working_directory,
     write_npz,
 )
+from ._seeds import order_seed
 from ._sequences import FORMAT, INT32_LIMIT, MAX_VOCAB_SIZE, Ragged, SequenceSet, index_dtype
 from ._splits import (
     DEFAULT_FRACTIONS,
@@ -88,6 +90,7 @@ __all__ = [
     "atomic_write_text",
     "check_fractions",
     "nested_subsample",
+    "order_seed",
     "subsample_size",
     "check_units",
     "index_dtype",

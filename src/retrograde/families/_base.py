@@ -38,7 +38,8 @@ class Family(ABC):
     #: registry name, set by each subclass
     name: ClassVar[str] = ""
     #: Version of this family's numbers: raise it whenever a change of code (not of
-    #: parameters) changes what ``fit`` or ``logprobs`` return. The composed params record
+    #: parameters) changes what ``fit`` or ``logprobs`` return, or what seed the fit stage
+    #: gives them. The composed params record
     #: it for every model, so a raise reruns exactly that family's cells.
     numerics_version: ClassVar[int] = 1
     #: Whether ``fit`` draws random numbers of its own from ``seed`` (initial weights, batch
@@ -48,6 +49,13 @@ class Family(ABC):
     #: With ``train_sample: none`` its fit ignores the seed, and the pipeline fits each
     #: (source, model, order) once (:func:`retrograde.config.ignores_seed`).
     has_own_randomness: ClassVar[bool] = True
+    #: Whether all of the family's own randomness comes from ``seed``, so the fit stage may
+    #: give each order a stream of its own (``retrograde.data.order_seed``): fits of two
+    #: orders then share no random numbers, and unless the seed also chooses their training
+    #: units the interval treats them as independent (:func:`retrograde.config.seeds_paired`).
+    #: ``False`` (the default, and the ``command`` family's: an outside trainer gets the cell's
+    #: seed as it is) keeps the cell's seed and pairs the seeds of every order.
+    own_stream_per_order: ClassVar[bool] = False
     #: Modules the family imports to fit (beyond numpy): a run's stage server imports them
     #: once, before its first fit, instead of every fit stage paying for them
     #: (:mod:`retrograde.stages.server`).

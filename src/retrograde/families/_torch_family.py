@@ -48,6 +48,10 @@ _LOGIT_BUDGET = 2**24
 class TorchFamily(Family):
     """A Family whose network is a causal PyTorch module (see :mod:`._torch_common`)."""
 
+    #: 2: the fit stage gives each order its own stream (``own_stream_per_order``)
+    numerics_version: ClassVar[int] = 2
+    #: initial weights, batch order and dropout come from ``seed`` alone
+    own_stream_per_order: ClassVar[bool] = True
     #: the parameter a context-length sweep varies
     context_parameter: ClassVar[str | None] = "context"
     #: what a sweep can hold equal across its values -> the parameter that fixes it

@@ -76,6 +76,10 @@ class MLP(Family):
     """
 
     name: ClassVar[str] = "mlp"
+    #: 2: the fit stage gives each order its own stream (``own_stream_per_order``)
+    numerics_version: ClassVar[int] = 2
+    #: initial weights and batch order come from ``seed`` alone
+    own_stream_per_order: ClassVar[bool] = True
     warm_imports: ClassVar[tuple[str, ...]] = ("scipy.sparse", "sklearn.neural_network")
     example_params: ClassVar[dict[str, Any]] = {"window": 2, "hidden": 8, "epochs": 2}
 

@@ -77,6 +77,7 @@ LEAF_FIELDS = (
     "significant",
     "seed_spread_pct",
     "seeds",
+    "seeds_paired",
     "units",
     "tokens",
     "unit_length",
@@ -384,6 +385,29 @@ def markdown_budget(table: Table, cells: Sequence[Mapping[str, Any]]) -> str:
     return "\n".join(lines)
 
 
+def _pairing_note(table: Table) -> str:
+    """How each model's seeds entered the intervals, when some were not paired ('' if all
+    were, or the table does not say)."""
+    unpaired = sorted(
+        {
+            model
+            for models in table.values()
+            for model, orders in models.items()
+            if any(leaf.get("seeds_paired") is False for leaf in orders.values())
+        }
+    )
+    if not unpaired:
+        return ""
+    names = ", ".join(f"`{model}`" for model in unpaired)
+    return (
+        f"Seeds of {names} are not paired across orders: each order's fits draw random "
+        "numbers of their own and share no training sample, so the interval estimates each "
+        "order's variation between seeds apart (Welch's form). Seeds of every other model "
+        "are paired: seed *s* of each order is one pair (the `seeds_paired` field of "
+        "`metrics.json`; docs/statistics.md)."
+    )
+
+
 def render_report(
     table: Table,
     *,
@@ -407,6 +431,7 @@ def render_report(
         "order is harder to learn than the reference. " + WHICH_GAP,
         "",
         *([CONCLUSION, ""] if _has_simultaneous(table) else []),
+        *([_pairing_note(table), ""] if _pairing_note(table) else []),
         markdown_table(table, level),
     ]
     if spans:

@@ -22,6 +22,11 @@ A model with ``train_fraction`` f < 1 trains (and stops early) on a nested subsa
 training units drawn from the cell's seed (:func:`retrograde.data.nested_subsample`): the
 same units for every order, validation and test units unchanged.
 
+A family that declares ``own_stream_per_order`` (``mlp``, the torch families) draws its own
+random numbers (initial weights, batch order) from ``order_seed(seed, order)``
+(:func:`retrograde.data.order_seed`): fits of two orders share no random numbers, while the
+training units a seed chooses stay the same in every order.
+
 A crash becomes one line naming the cell and its ``fit.log`` (exit status 2).
 """
 
@@ -52,6 +57,7 @@ from ..data import (
     atomic_write_json,
     nested_subsample,
     open_for_writing,
+    order_seed,
     resample_train,
     resolve_train_sample,
 )
@@ -88,12 +94,15 @@ def fit_cell(
     splits: dict[str, SequenceSet],
     *,
     seed: int,
+    order: str | None = None,
     log: TextIO | None = None,
 ) -> tuple[Any, np.ndarray, list[dict[str, Any]]]:
     """Fit the model ``model_spec`` describes on train (valid for early stopping).
 
     ``model_spec.train_sample`` chooses the training units seed ``seed`` sees
-    (:func:`training_units`).
+    (:func:`training_units`). A family that declares ``own_stream_per_order`` draws its
+    own random numbers from ``order_seed(seed, order)`` when ``order`` is given (what the
+    stage does), so fits of two orders share none; else from ``seed``.
 
     Returns ``(model, test_logprobs, curve)``; ``test_logprobs`` is the flat float64 array
     of the test units' log-probabilities (``len + 1`` per unit, end marker last).
@@ -107,6 +116,10 @@ def fit_cell(
     model = families.make(model_spec.family, **model_spec.params)
     train, valid, test = splits["train"], splits["valid"], splits["test"]
     note(f"fit {model_spec.family} {model_spec.params} seed={seed}")
+    fit_seed = seed
+    if order is not None and getattr(model, "own_stream_per_order", False):
+        fit_seed = order_seed(seed, order)
+        note(f"the family's own random numbers: stream {fit_seed} (seed {seed}, order {order})")
     total = len(train)
     scheme = resolve_train_sample(model_spec.train_sample, model)
     train = training_units(model_spec, model, train, seed)
@@ -122,7 +135,7 @@ def fit_cell(
     with contextlib.ExitStack() as stack:
         if log is not None:
             stack.enter_context(families.progress_log(log))
-        logprobs = model.fit_logprobs(train, valid if len(valid) else None, test, seed=seed)
+        logprobs = model.fit_logprobs(train, valid if len(valid) else None, test, seed=fit_seed)
     # Plain Python numbers only: curve.json must load anywhere (numpy ints are not JSON).
     curve = [
         {str(key): _plain(value) for key, value in epoch.items()}
@@ -227,7 +240,7 @@ def _body(args: argparse.Namespace) -> None:
             data = wdir / str(order_dir(args.source, args.order))
             splits = {s: SequenceSet.load(data / s) for s in SPLITS}
             cpu_started, wall_started = _cpu_seconds(), time.perf_counter()
-            model, values, curve = fit_cell(spec, splits, seed=args.seed, log=log)
+            model, values, curve = fit_cell(spec, splits, seed=args.seed, order=args.order, log=log)
             budget = cell_budget(
                 model,
                 training_units(spec, model, splits["train"], args.seed),

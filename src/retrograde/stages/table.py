@@ -44,6 +44,7 @@ from ..config import (
     fitted_seed,
     load_params,
     order_dir,
+    seeds_paired,
     units_dir,
 )
 from ..data import Ragged, SequenceSet, resolve_train_sample
@@ -317,6 +318,9 @@ def _model_results(
         )
         if floors is not None:
             _check_floor(unit_nll[order], floors, where, cell_seeds[order], test)
+    # Seeds are paired across orders unless no two fits of this model (of any trial that
+    # stands for it) share a training sample or random numbers (config.seeds_paired).
+    paired = any(seeds_paired(study.models[name]) for name in set(cell_model.values()))
     leaves = stats.summarize_model(
         unit_nll,
         reference_order=study.reference_order,
@@ -329,9 +333,11 @@ def _model_results(
         interval=stats_config.interval,
         n_boot=stats_config.n_boot,
         seed=stats_config.seed,
+        paired_seeds=paired,
         gap_distributions=replicates,
     )
     for order, leaf in leaves.items():
+        leaf["seeds_paired"] = paired
         budgets = [
             _read_budget(wdir, source, cell_model[order], order, s) for s in cell_seeds[order]
         ]

@@ -159,13 +159,14 @@ def summarize_model(
         percentile bootstrap with widened seed weights (:func:`retrograde.stats.bootstrap_totals`),
         kept to reproduce older tables; too wide with few seeds (``docs/statistics.md``).
     paired_seeds : bool
-        ``True`` (default; what the table stage uses): seed ``s`` of every order forms one
-        pair, and the seeds' part of the interval comes from the per-seed gaps; valid
-        whatever two fits with the same seed share (a training sample, initial weights).
-        ``False`` treats the fits of different orders as independent and estimates each
-        order's seed variation apart (Welch's form, up to twice the degrees of freedom):
-        narrower only when they really share nothing; too wide when same-seed fits are
-        alike, too narrow when they are opposed (``docs/statistics.md``).
+        ``True`` (default): seed ``s`` of every order forms one pair, and the seeds' part of
+        the interval comes from the per-seed gaps; valid whatever two fits with the same
+        seed share (a training sample, initial weights). ``False`` treats the fits of
+        different orders as independent and estimates each order's seed variation apart
+        (Welch's form, up to twice the degrees of freedom): right when they share nothing,
+        too wide when same-seed fits are alike, too narrow when they are opposed. The table
+        stage chooses per model with :func:`retrograde.config.seeds_paired`
+        (``docs/statistics.md``, "Seeds and pairs").
     n_boot, n_flips : int
         Bootstrap replicates (``interval="bootstrap"``) and Monte Carlo sign patterns.
     seed : int
