@@ -344,6 +344,26 @@ def coverage_section(result: dict[str, Any]) -> list[str]:
         for r in real["rows"]
     ]
     lines += [_table(header, rows), ""]
+    correlation = real.get("mlp_same_seed_correlation")
+    if correlation:
+        lines += [
+            "The `mlp`'s fits of the two orders draw their own random streams "
+            "(`order_seed(seed, order)`); the correlation of their per-seed totals across "
+            f"seed numbers is {correlation['mean']:+.3f} ± {correlation['standard_error']:.3f} "
+            "(mean ± standard error over repetitions; 0 expected).",
+            "",
+        ]
+    demo = result.get("demo")
+    if demo:
+        lines += [
+            f"The demo's `mlp` on `linear_gf2` ({demo['repetitions']} fresh data draws, "
+            f"{demo['seeds']} seeds per order, {demo['cpu_s']:.0f} s CPU): mean gap "
+            f"{demo['mean_gap_pct']:+.1f}%, mean seed spread {demo['mean_seed_spread_pct']:.1f}%; "
+            f"power (interval above 0) unpaired {demo['unpaired_power']:.2f}, paired "
+            f"{demo['paired_power']:.2f}; mean width unpaired {demo['unpaired_mean_width_pct']:.1f}, "
+            f"paired {demo['paired_mean_width_pct']:.1f} percentage points.",
+            "",
+        ]
     quality = [
         [
             f"`{key}`",

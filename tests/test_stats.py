@@ -588,8 +588,9 @@ def test_significant_gaps_have_intervals_that_exclude_zero():
     ("n_seeds", "paired", "widest"),
     # Paired, 3 seeds leave the seed variance 2 degrees of freedom: a t interval on them is
     # on average about 1.95x the known-variance width (t_2 quantile 4.30 x E[s]/sigma 0.886
-    # / 1.96). Unpaired (Welch) it has up to 4.
-    [(3, True, 2.1), (10, True, 1.5), (3, False, 1.6), (10, False, 1.5)],
+    # / 1.96). Unpaired (Welch; what the table uses for fits of two orders that share
+    # nothing, as here) it has up to 4: about 1.33x, the goal of at most 1.5x.
+    [(3, True, 2.1), (10, True, 1.5), (3, False, 1.5), (10, False, 1.5)],
 )
 def test_t_interval_covers_zero_at_its_level_and_is_not_much_wider_than_needed(
     n_seeds, paired, widest
