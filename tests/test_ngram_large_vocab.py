@@ -15,6 +15,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from _kn_reference import ReferenceKneserNey, grams
+from _ngram_paths import JUMP_PATHS
 from retrograde import SequenceSet
 from retrograde.data import _sequences
 from retrograde.families import make
@@ -206,14 +207,7 @@ def test_every_counting_and_scoring_path_agrees_past_the_int32_boundary(monkeypa
     assert len(model.tables_.context_keys[2]) * (vocab_size + 1) > 2**31
     default = model.logprobs(scored_set).values
     paths = {
-        "dense jumps": {"_WINDOW_LIMIT": 40},
-        "packed jumps": {"_WINDOW_LIMIT": 40, "_DENSE_KEYS": 0, "_BITSET_KEYS_PER_EVENT": 0},
-        "argsort jumps": {
-            "_WINDOW_LIMIT": 40,
-            "_DENSE_KEYS": 0,
-            "_BITSET_KEYS_PER_EVENT": 0,
-            "packed_fits": lambda space, n: False,
-        },
+        **JUMP_PATHS,
         # far context ids: in ranking steps (2**40), in the final window (2**50)
         "far ranking": {"_WINDOW_LIMIT": 1 << 40, "_jump_length": lambda *args: 1},
         "far windows": {"_WINDOW_LIMIT": 1 << 50, "_jump_length": lambda *args: 1},

@@ -16,6 +16,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from _ngram_paths import JUMP_PATHS
 from retrograde import SequenceSet
 from retrograde.families import _ngram_counts
 from retrograde.families._events import unit_event_blocks, unit_events
@@ -100,14 +101,7 @@ def random_units(rng, vocab_size, n_units, max_length=9):
 # ranked with a dense table; jumps by packed sort; the argsort fallback.
 PATHS = {
     "window": {},
-    "dense jumps": {"_WINDOW_LIMIT": 40},
-    "packed jumps": {"_WINDOW_LIMIT": 40, "_DENSE_KEYS": 0, "_BITSET_KEYS_PER_EVENT": 0},
-    "argsort jumps": {
-        "_WINDOW_LIMIT": 40,
-        "_DENSE_KEYS": 0,
-        "_BITSET_KEYS_PER_EVENT": 0,
-        "packed_fits": lambda space, n: False,
-    },
+    **JUMP_PATHS,
     # One symbol per jump and a limit that raw windows pass before shifted ones do.
     "shifted windows": {"_WINDOW_LIMIT": 10**7, "_jump_length": lambda *args: 1},
 }
