@@ -374,3 +374,15 @@ def test_a_text_separator_the_vocabulary_cannot_give_is_one_line_naming_order_an
 def test_an_order_with_text_separators_refuses_to_run_before_the_lookup():
     with pytest.raises(ConfigError, match="with_tokenizer"):
         orders.make("segment_reverse", separators=" ").apply(np.array([1, 2, 3]))
+
+
+def test_fields_order_keeps_an_empty_last_unit():
+    # Found by the property test above: an empty unit after the last token made the
+    # field count index one past the end of the tokens.
+    from retrograde import orders
+
+    order = orders.make("fields", fields=["b", "a"], natural=["a", "b"], separator=0)
+    units = SequenceSet.from_list([[3, 0, 4], []], vocab_size=5)
+    reordered = order.apply_set(units)
+    assert [list(u) for u in reordered] == [[4, 0, 3], []]
+    assert [list(u) for u in reordered] == [list(order.apply(u)) for u in units]

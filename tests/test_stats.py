@@ -745,3 +745,16 @@ def test_a_t_intervals_lower_end_stops_at_minus_100_percent():
     assert row.low == -100.0 < row.gap_pct < row.high
     low, high = row.at(0.999)
     assert low == -100.0 and high > row.high
+
+
+def test_segment_breakdown_takes_an_empty_last_unit():
+    # The separator count per unit once indexed past the tokens when the last unit was
+    # empty (the same code as the fields order's; now data.earlier_in_unit).
+    from retrograde import Ragged, SequenceSet
+    from retrograde.stats import segment_breakdown
+
+    units = SequenceSet.from_list([[1, 0, 2], []], vocab_size=3)
+    losses = Ragged(np.full(5, np.log(2.0)), np.array([0, 4, 5]))
+    out = segment_breakdown({"forward": losses}, units, separator=0, max_segments=2)
+    assert out["forward"]["segment_0"]["tokens"] == 2  # the separator and the token before
+    assert out["forward"]["segment_1+"]["tokens"] == 1

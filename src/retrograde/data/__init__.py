@@ -33,7 +33,15 @@ from ._files import (
     write_npz,
 )
 from ._seeds import order_seed
-from ._sequences import FORMAT, INT32_LIMIT, MAX_VOCAB_SIZE, Ragged, SequenceSet, index_dtype
+from ._sequences import (
+    FORMAT,
+    INT32_LIMIT,
+    MAX_VOCAB_SIZE,
+    Ragged,
+    SequenceSet,
+    earlier_in_unit,
+    index_dtype,
+)
 from ._splits import (
     DEFAULT_FRACTIONS,
     DEFAULT_SALT,
@@ -89,6 +97,7 @@ __all__ = [
     "atomic_write_json",
     "atomic_write_text",
     "check_fractions",
+    "earlier_in_unit",
     "nested_subsample",
     "order_seed",
     "subsample_size",

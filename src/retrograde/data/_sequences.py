@@ -28,7 +28,15 @@ import numpy as np
 from ..errors import DataError
 from ._files import atomic_dir
 
-__all__ = ["FORMAT", "INT32_LIMIT", "MAX_VOCAB_SIZE", "Ragged", "SequenceSet", "index_dtype"]
+__all__ = [
+    "FORMAT",
+    "INT32_LIMIT",
+    "MAX_VOCAB_SIZE",
+    "Ragged",
+    "SequenceSet",
+    "earlier_in_unit",
+    "index_dtype",
+]
 
 FORMAT = "retrograde.sequences/1"
 
@@ -269,3 +277,24 @@ class SequenceSet(Ragged):
             )
         except ValueError as exc:
             raise DataError(f"{folder}: {exc}") from exc
+
+
+def earlier_in_unit(units: Ragged, flags: np.ndarray) -> np.ndarray:
+    """For every token, how many flagged tokens come before it in its own unit.
+
+    ``flags`` is (n_tokens,) bool or 0/1 (e.g. "is a field separator"); the result is int64.
+    Empty units (anywhere, the last included) are fine.
+
+    Examples
+    --------
+    >>> units = Ragged(np.array([5, 0, 6, 0, 7, 0]), np.array([0, 3, 6, 6]))
+    >>> earlier_in_unit(units, units.values == 0).tolist()
+    [0, 0, 1, 0, 1, 1]
+    """
+    flags = np.asarray(flags, dtype=np.int64)
+    before = np.cumsum(flags) - flags  # flagged tokens before each token, in all units
+    if len(before):
+        # an empty unit's start may lie past the last token; it is repeated 0 times
+        starts = np.minimum(units.offsets[:-1], len(before) - 1)
+        before -= np.repeat(before[starts], np.diff(units.offsets))
+    return before

@@ -21,7 +21,7 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from ..data import SequenceSet
+from ..data import SequenceSet, earlier_in_unit
 from ..errors import ConfigError
 from ..validation import check_int, invalid
 from ._base import Order, _inverse_permutation
@@ -150,9 +150,7 @@ class Fields(Order):
         unit_of_token = units.row_ids()
         counts = np.bincount(unit_of_token, weights=is_separator, minlength=len(units))
         is_record = counts == n_fields - 1
-        before = np.cumsum(is_separator) - is_separator
-        if len(before):
-            before -= np.repeat(before[units.offsets[:-1]], units.lengths)
+        before = earlier_in_unit(units, is_separator)
         inside = ~is_separator & is_record[unit_of_token]
         cell = unit_of_token[inside] * n_fields + before[inside]
         lengths = np.bincount(cell, minlength=len(units) * n_fields)

@@ -30,6 +30,7 @@ from ..data import (
     Document,
     SequenceSet,
     assign_splits,
+    earlier_in_unit,
     prepare_units,
     subsample,
 )
@@ -222,9 +223,7 @@ def field_span_ids(units: SequenceSet, separator: int, n_fields: int, owner: str
             f"after tokenization, expected {n_fields - 1}; the tokenizer must keep the "
             "separator (U+001F) a token of its own and in its vocabulary (raise max_vocab)"
         )
-    before = np.cumsum(is_separator) - is_separator  # separators before each token
-    if len(before):
-        before -= np.repeat(before[units.offsets[:-1]], units.lengths)
+    before = earlier_in_unit(units, is_separator)  # separators before each token
     return np.where(is_separator == 1, n_fields, before).astype(np.int16)
 
 

@@ -15,7 +15,7 @@ from typing import Any
 
 import numpy as np
 
-from ..data import Ragged, SequenceSet
+from ..data import Ragged, SequenceSet, earlier_in_unit
 from ..errors import DataError
 from ..validation import check_float, check_int
 from ._bootstrap import resample_counts
@@ -305,8 +305,7 @@ def segment_breakdown(
         )
     is_separator = (units.tokens == separator).astype(np.int64)  # (n_tokens,)
     # Separators seen *before* each token of its unit: the separator closes its own segment.
-    before = np.cumsum(is_separator) - is_separator
-    before -= np.repeat(before[units.offsets[:-1]], units.lengths) if len(before) else 0
+    before = earlier_in_unit(units, is_separator)
     segment = np.minimum(before, max_segments - 1)  # (n_tokens,)
     token_values = np.ones(len(natural_losses[orders[0]].values), dtype=bool)
     token_values[natural_losses[orders[0]].offsets[1:] - 1] = False  # drop the end markers
